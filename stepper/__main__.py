@@ -1,0 +1,5 @@
+"""Allow ``python -m stepper``."""
+
+from stepper.cli import main
+
+raise SystemExit(main())

@@ -1,0 +1,108 @@
+"""Activation functions and their slopes, keyed by the names used in model files.
+
+Each entry maps pre-activations ``Z`` of shape ``(..., n_units)`` to
+activations ``A`` of the same shape. Elementwise activations also give their
+elementwise derivative ``dA/dZ``; every activation gives the vector-Jacobian
+product ``vjp(Z, A, dA) -> dZ``, which is what backpropagation needs (softmax
+couples the units of a row, so it has no elementwise derivative).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Callable
+
+import numpy as np
+from numpy.typing import NDArray
+
+Array = NDArray[np.float64]
+
+#: Slope of leaky ReLU for negative inputs (Maas, Hannun & Ng 2013,
+#: "Rectifier Nonlinearities Improve Neural Network Acoustic Models", use 0.01).
+LEAKY_SLOPE = 0.01
+
+
+@dataclass(frozen=True)
+class Activation:
+    """One activation function.
+
+    Attributes:
+        name: the key used in model files.
+        fn: ``Z -> A``, any shape ``(..., n_units)``.
+        derivative: ``(Z, A) -> dA/dZ`` elementwise, or None when units are coupled.
+        kink: True when the function has a point where it is not differentiable
+            (at ``Z == 0``); finite differences across it are unreliable.
+        saturates: True for squashing functions whose slope can vanish (sigmoid, tanh).
+    """
+
+    name: str
+    fn: Callable[[Array], Array]
+    derivative: Callable[[Array, Array], Array] | None
+    kink: bool = False
+    saturates: bool = False
+
+    @property
+    def elementwise(self) -> bool:
+        return self.derivative is not None
+
+    def vjp(self, Z: Array, A: Array, dA: Array) -> Array:
+        """Slope of the cost with respect to ``Z`` given its slope ``dA`` w.r.t. ``A``.
+
+        All three arrays have shape ``(..., n_units)``.
+        """
+        if self.derivative is not None:
+            return dA * self.derivative(Z, A)
+        # softmax: J = diag(a) - a a^T, so J^T dA = a * (dA - <dA, a>).
+        return A * (dA - np.sum(dA * A, axis=-1, keepdims=True))
+
+
+def _sigmoid(Z: Array) -> Array:
+    # 0.5 * (1 + tanh(z / 2)) equals 1 / (1 + exp(-z)) and never overflows.
+    return 0.5 * (1.0 + np.tanh(0.5 * Z))
+
+
+def _softplus(Z: Array) -> Array:
+    # log(1 + e^z) = max(z, 0) + log1p(e^-|z|): no overflow for large |z|.
+    return np.maximum(Z, 0.0) + np.log1p(np.exp(-np.abs(Z)))
+
+
+def softmax(Z: Array) -> Array:
+    """Row-wise softmax over the last axis, shifted by the row maximum for stability."""
+    shifted = Z - np.max(Z, axis=-1, keepdims=True)
+    e = np.exp(shifted)
+    return e / np.sum(e, axis=-1, keepdims=True)
+
+
+def log_softmax(Z: Array) -> Array:
+    """``log(softmax(Z))`` over the last axis by the log-sum-exp trick."""
+    shifted = Z - np.max(Z, axis=-1, keepdims=True)
+    return shifted - np.log(np.sum(np.exp(shifted), axis=-1, keepdims=True))
+
+
+ACTIVATIONS: dict[str, Activation] = {
+    a.name: a
+    for a in (
+        Activation("identity", lambda Z: Z.copy(), lambda Z, A: np.ones_like(Z)),
+        Activation("sigmoid", _sigmoid, lambda Z, A: A * (1.0 - A), saturates=True),
+        Activation("tanh", np.tanh, lambda Z, A: 1.0 - A * A, saturates=True),
+        Activation(
+            "relu",
+            lambda Z: np.maximum(Z, 0.0),
+            lambda Z, A: (Z > 0.0).astype(np.float64),
+            kink=True,
+        ),
+        Activation(
+            "leaky_relu",
+            lambda Z: np.where(Z > 0.0, Z, LEAKY_SLOPE * Z),
+            lambda Z, A: np.where(Z > 0.0, 1.0, LEAKY_SLOPE),
+            kink=True,
+        ),
+        Activation("softplus", _softplus, lambda Z, A: _sigmoid(Z)),
+        Activation("softmax", softmax, None, saturates=True),
+    )
+}
+
+
+def get_activation(name: str) -> Activation:
+    """The activation called ``name``; KeyError if there is none."""
+    return ACTIVATIONS[name]

@@ -1,0 +1,71 @@
+"""The gradient check: analytic slopes against numeric slopes for every parameter."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from numpy.typing import NDArray
+
+from stepper.core.compare import Thresholds, relative_error, verdict_counts, verdicts
+from stepper.core.network import Network
+from stepper.core.numeric import NumericSlopes, Progress, iter_numeric_slopes
+
+Array = NDArray[np.float64]
+
+
+@dataclass(frozen=True)
+class CheckResult:
+    """Per-parameter comparison; every array has shape ``(n_params,)``.
+
+    Attributes:
+        cost: cost at ``theta``.
+        analytic: slopes by backpropagation.
+        numeric: slopes by finite differences (NaN where not computed).
+        rel_error: relative error (see :mod:`stepper.core.compare`).
+        verdict: ``agree``, ``doubtful``, ``disagree``, ``kink`` or ``""``.
+        method, h: finite-difference settings.
+    """
+
+    cost: float
+    analytic: Array
+    numeric: Array
+    rel_error: Array
+    verdict: NDArray[np.str_]
+    method: str
+    h: float
+
+    @property
+    def counts(self) -> dict[str, int]:
+        return verdict_counts(self.verdict)
+
+    @property
+    def passed(self) -> bool:
+        return not bool(np.any(self.verdict == "disagree"))
+
+    def worst(self) -> int:
+        """Flat index of the largest relative error (ignoring NaN)."""
+        rel = np.where(np.isnan(self.rel_error), -1.0, self.rel_error)
+        return int(np.argmax(rel))
+
+
+def compare(cost: float, analytic: Array, numeric: NumericSlopes, limits: Thresholds = Thresholds()) -> CheckResult:
+    """Combine analytic and numeric slopes into a :class:`CheckResult`."""
+    rel = relative_error(analytic, numeric.slopes, limits.floor)
+    return CheckResult(cost, analytic, numeric.slopes, rel, verdicts(rel, numeric.kink, limits),
+                       numeric.method, numeric.h)
+
+
+def iter_check(
+    net: Network,
+    theta: Array,
+    X: Array,
+    Y: Array,
+    method: str = "central",
+    h: float | None = None,
+    limits: Thresholds = Thresholds(),
+) -> Progress[CheckResult]:
+    """Run the whole check, yielding ``(done, total)`` progress from the numeric pass."""
+    cost, analytic = net.cost_and_slopes(theta, X, Y)
+    numeric = yield from iter_numeric_slopes(net, theta, X, Y, method, h)
+    return compare(cost, analytic, numeric, limits)

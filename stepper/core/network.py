@@ -1,0 +1,274 @@
+"""A network: an ordered stack of layers, a loss, and one flat parameter vector.
+
+All parameters of a network live in one float64 vector ``theta`` of shape
+``(n_params,)``. :class:`ParamLayout` says which slice of it belongs to which
+layer's which array, and gives every entry a stable, readable name:
+
+- ``L2.W[3,0]``: layer 2 (counted from 1), weight from input 3 to unit 0;
+- ``L2.b[0]``: layer 2, bias of unit 0;
+- custom layers use their own array keys, e.g. ``L1.scale[4]``.
+
+A flat vector keeps the optimizer, the frozen mask, undo and checkpoints
+simple; per-layer arrays are reshaped views into it, never copies.
+"""
+
+from __future__ import annotations
+
+import re
+from dataclasses import dataclass, field
+from functools import cached_property
+from typing import Any, Sequence
+
+import numpy as np
+from numpy.typing import NDArray
+
+from stepper.core.layers import Dense, DenseCache, Layer, Params
+from stepper.core.losses import FUSED, LOSSES, FusedLoss, Loss
+
+Array = NDArray[np.float64]
+
+
+@dataclass(frozen=True)
+class Block:
+    """One parameter array inside the flat vector.
+
+    Attributes:
+        layer: 0-based layer index.
+        key: array key inside the layer (``"W"``, ``"b"``, ...).
+        kind: ``"weight"`` or ``"bias"``.
+        shape: the array's shape.
+        start: offset of its first entry in ``theta``.
+    """
+
+    layer: int
+    key: str
+    kind: str
+    shape: tuple[int, ...]
+    start: int
+
+    @property
+    def size(self) -> int:
+        return int(np.prod(self.shape, dtype=np.int64))
+
+    @property
+    def stop(self) -> int:
+        return self.start + self.size
+
+    @property
+    def prefix(self) -> str:
+        """``"L2.W"``: the name of the array without indices."""
+        return f"L{self.layer + 1}.{self.key}"
+
+
+_NAME = re.compile(r"^L(\d+)\.(\w+)\[([\d,\s]+)\]$")
+
+
+class ParamLayout:
+    """Where each layer's arrays sit in the flat parameter vector."""
+
+    def __init__(self, layers: Sequence[Layer]) -> None:
+        blocks: list[Block] = []
+        start = 0
+        for index, layer in enumerate(layers):
+            for spec in layer.param_specs():
+                block = Block(index, spec.key, spec.kind, tuple(spec.shape), start)
+                blocks.append(block)
+                start = block.stop
+        self.blocks: tuple[Block, ...] = tuple(blocks)
+        self.size: int = start
+
+    def block_of(self, flat_index: int) -> Block:
+        """The block holding entry ``flat_index``."""
+        for block in self.blocks:
+            if block.start <= flat_index < block.stop:
+                return block
+        raise IndexError(flat_index)
+
+    def find_block(self, layer: int, key: str) -> Block:
+        for block in self.blocks:
+            if block.layer == layer and block.key == key:
+                return block
+        raise KeyError(f"L{layer + 1}.{key}")
+
+    @cached_property
+    def names(self) -> tuple[str, ...]:
+        """Readable name of every entry, in flat order; shape ``(n_params,)``."""
+        out: list[str] = []
+        for block in self.blocks:
+            for idx in np.ndindex(*block.shape):
+                out.append(f"{block.prefix}[{','.join(str(i) for i in idx)}]")
+        return tuple(out)
+
+    @cached_property
+    def index_of(self) -> dict[str, int]:
+        """Flat index of each name."""
+        return {name: i for i, name in enumerate(self.names)}
+
+    @cached_property
+    def layer_index(self) -> NDArray[np.int64]:
+        """0-based layer of every entry, shape ``(n_params,)``."""
+        out = np.empty(self.size, dtype=np.int64)
+        for block in self.blocks:
+            out[block.start : block.stop] = block.layer
+        return out
+
+    @cached_property
+    def is_bias(self) -> NDArray[np.bool_]:
+        """True where the entry is a bias, shape ``(n_params,)``."""
+        out = np.zeros(self.size, dtype=bool)
+        for block in self.blocks:
+            out[block.start : block.stop] = block.kind == "bias"
+        return out
+
+    def indices(self, flat_index: int) -> tuple[int, ...]:
+        """Position of an entry inside its array, e.g. ``(3, 0)`` for ``L2.W[3,0]``."""
+        block = self.block_of(flat_index)
+        return tuple(int(i) for i in np.unravel_index(flat_index - block.start, block.shape))
+
+    def lookup(self, name: str) -> int:
+        """Flat index of ``name``; tolerant of spaces inside the brackets."""
+        if name in self.index_of:
+            return self.index_of[name]
+        match = _NAME.match(name.strip())
+        if match:
+            canonical = f"L{match[1]}.{match[2]}[{','.join(p.strip() for p in match[3].split(','))}]"
+            if canonical in self.index_of:
+                return self.index_of[canonical]
+        raise KeyError(name)
+
+    def views(self, theta: Array) -> list[Params]:
+        """Per layer, a dict of reshaped views into ``theta``."""
+        out: list[Params] = []
+        for block in self.blocks:
+            while len(out) <= block.layer:
+                out.append({})
+            out[block.layer][block.key] = theta[block.start : block.stop].reshape(block.shape)
+        return out
+
+
+@dataclass
+class Network:
+    """An ordered stack of layers ending in a loss.
+
+    Attributes:
+        n_inputs: width of the input ``X``, ``(n_samples, n_inputs)``.
+        layers: the layers in order; layer ``i`` feeds layer ``i + 1``.
+        loss: key into :data:`stepper.core.losses.LOSSES`.
+    """
+
+    n_inputs: int
+    layers: list[Layer]
+    loss: str
+    layout: ParamLayout = field(init=False)
+
+    def __post_init__(self) -> None:
+        self.layout = ParamLayout(self.layers)
+        if self.loss not in LOSSES:
+            raise KeyError(self.loss)
+
+    @property
+    def n_params(self) -> int:
+        return self.layout.size
+
+    @property
+    def n_outputs(self) -> int:
+        return self.layers[-1].n_out
+
+    @property
+    def loss_fn(self) -> Loss:
+        return LOSSES[self.loss]
+
+    @property
+    def fused(self) -> FusedLoss | None:
+        """The logit form of the loss when the output layer's activation pairs with it."""
+        last = self.layers[-1]
+        if isinstance(last, Dense):
+            return FUSED.get((last.activation.name, self.loss))
+        return None
+
+    def views(self, theta: Array) -> list[Params]:
+        views = self.layout.views(theta)
+        while len(views) < len(self.layers):
+            views.append({})
+        return views
+
+    # -- forward ---------------------------------------------------------------------------
+
+    def forward(self, theta: Array, X: Array, start: int = 0) -> list[tuple[Array, Any]]:
+        """Run layers ``start..end`` on ``X`` (the input of layer ``start``).
+
+        Returns, for each layer run, its output ``(n, n_out)`` and its cache.
+        """
+        params = self.views(theta)
+        out: list[tuple[Array, Any]] = []
+        A = X
+        for index in range(start, len(self.layers)):
+            A, cache = self.layers[index].forward(params[index], A)
+            out.append((A, cache))
+        return out
+
+    def predict(self, theta: Array, X: Array) -> Array:
+        """Network output for ``X``: ``(n_samples, n_inputs) -> (n_samples, n_outputs)``."""
+        return self.forward(theta, X)[-1][0]
+
+    def output_cost(self, A: Array, cache: Any, Y: Array) -> Array:
+        """Cost from the last layer's output ``A`` (``(..., n, m)``) and cache; shape ``(...)``."""
+        fused = self.fused
+        if fused is not None and isinstance(cache, DenseCache):
+            return fused.value(cache.Z, Y)
+        return self.loss_fn.value(A, Y)
+
+    def cost(self, theta: Array, X: Array, Y: Array) -> float:
+        """Cost of the whole set ``X`` ``(n, n_inputs)`` against targets ``Y`` ``(n, n_outputs)``."""
+        A, cache = self.forward(theta, X)[-1]
+        return float(self.output_cost(A, cache, Y))
+
+    # -- backward --------------------------------------------------------------------------
+
+    def cost_and_slopes(self, theta: Array, X: Array, Y: Array) -> tuple[float, Array]:
+        """Cost and its slope w.r.t. every parameter, by backpropagation.
+
+        Returns ``(cost, slopes)`` where ``slopes`` has shape ``(n_params,)``.
+        """
+        trace = self.forward(theta, X)
+        cost, grads, _ = self.backward(theta, trace, Y)
+        return cost, grads
+
+    def backward(
+        self, theta: Array, trace: list[tuple[Array, Any]], Y: Array
+    ) -> tuple[float, Array, list[Array]]:
+        """Backpropagate through a forward ``trace`` of the whole network.
+
+        Returns the cost, the flat slopes ``(n_params,)`` and, per layer, the
+        slope of the cost w.r.t. that layer's output (``(n, n_out)``), which the
+        insight views use as each unit's error signal.
+        """
+        params = self.views(theta)
+        grads = np.zeros(self.n_params)
+        gviews = self.views(grads)
+        A, cache = trace[-1]
+        cost = float(self.output_cost(A, cache, Y))
+        output_slopes: list[Array] = [np.empty(0)] * len(self.layers)
+        last = self.layers[-1]
+        fused = self.fused
+        if fused is not None and isinstance(last, Dense) and isinstance(cache, DenseCache):
+            dZ = fused.grad_z(cache.Z, Y)
+            # The slope w.r.t. the output A is not needed by backprop here; report
+            # the plain loss's one so the breakdown views can still show it.
+            output_slopes[-1] = self.loss_fn.grad(A, Y)
+            layer_grads, dA = last.backward_from_z(params[-1], cache, dZ)
+        else:
+            dOut = self.loss_fn.grad(A, Y)
+            output_slopes[-1] = dOut
+            layer_grads, dA = last.backward(params[-1], cache, dOut)
+        self._store(gviews[-1], layer_grads)
+        for index in range(len(self.layers) - 2, -1, -1):
+            output_slopes[index] = dA
+            layer_grads, dA = self.layers[index].backward(params[index], trace[index][1], dA)
+            self._store(gviews[index], layer_grads)
+        return cost, grads, output_slopes
+
+    @staticmethod
+    def _store(target: Params, source: Params) -> None:
+        for key, view in target.items():
+            view[...] = source[key]

@@ -1,0 +1,285 @@
+"""Model files: one TOML file describes a whole debugging setup.
+
+Schema (every key is checked; unknown keys are refused so typos surface)::
+
+    name = "pricing net"                  # optional label
+    loss = "mean_squared_error"           # see stepper.core.losses.LOSSES
+
+    [data]
+    file = "houses.csv"                   # relative to the model file
+    inputs = ["area", "age"]              # column names
+    targets = ["price"]
+    standardize = true                    # optional, default false
+    validation_fraction = 0.2             # optional, default 0
+    seed = 7                              # optional, seeds the validation split
+
+    [init]
+    scheme = "glorot_uniform"             # uniform | glorot_uniform | glorot_normal
+                                          # | he_normal | he_uniform
+    seed = 1
+    range = 0.5                           # only for scheme = "uniform"
+
+    [[layers]]                            # first layer after the inputs
+    units = 8
+    activation = "tanh"                   # see stepper.core.activations.ACTIVATIONS
+    bias = true                           # optional, default true
+    weights = [[...], ...]                # optional inline values, n_in rows x units
+    biases = [...]                        # optional inline values, units entries
+
+Inline ``weights``/``biases`` override the scheme for that layer. A layer
+with inline values needs no ``[init]`` at all.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import tomllib
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from numpy.typing import NDArray
+
+from stepper.core.activations import ACTIVATIONS
+from stepper.core.init import SCHEMES, initial_params
+from stepper.core.layers import Dense, Layer
+from stepper.core.losses import LOSSES
+from stepper.core.network import Network
+from stepper.errors import ModelFileError
+from stepper.formats.dataset import Dataset, build_dataset, read_columns
+
+Array = NDArray[np.float64]
+
+TOP_KEYS = {"name", "loss", "data", "init", "layers"}
+DATA_KEYS = {"file", "inputs", "targets", "standardize", "validation_fraction", "seed"}
+INIT_KEYS = {"scheme", "seed", "range", "file", "names"}
+LAYER_KEYS = {"units", "activation", "bias", "weights", "biases", "type", "file", "class", "options"}
+
+
+@dataclass(frozen=True)
+class Setup:
+    """Everything a model file describes, loaded and checked.
+
+    Attributes:
+        path: the model file.
+        name: a label for screens and reports.
+        network: the network.
+        theta0: initial parameters, ``(n_params,)``.
+        data: training and validation data.
+        digest: SHA-256 of the model file's bytes (checkpoints record it).
+    """
+
+    path: Path
+    name: str
+    network: Network
+    theta0: Array
+    data: Dataset
+    digest: str
+
+
+class _Keys:
+    """Typed access to one TOML table, with errors that name the file and key path."""
+
+    def __init__(self, file: str, where: str, table: Any, allowed: set[str]) -> None:
+        self.file = file
+        self.where = where
+        if not isinstance(table, dict):
+            self.fail("", f"expected a table, got {_kind(table)}")
+        self.table: dict[str, Any] = table
+        for key in table:
+            if key not in allowed:
+                self.fail(key, f"unknown key (allowed: {', '.join(sorted(allowed))})")
+
+    def path(self, key: str) -> str:
+        if not key:
+            return self.where
+        return f"{self.where}.{key}" if self.where else key
+
+    def fail(self, key: str, message: str) -> None:
+        where = self.path(key)
+        raise ModelFileError(f"{self.file}: {where}: {message}" if where else f"{self.file}: {message}")
+
+    def has(self, key: str) -> bool:
+        return key in self.table
+
+    def get(self, key: str, kind: type, default: Any = ...) -> Any:
+        if key not in self.table:
+            if default is ...:
+                self.fail(key, "missing")
+            return default
+        value = self.table[key]
+        if kind is float and isinstance(value, int) and not isinstance(value, bool):
+            value = float(value)
+        if kind is int and isinstance(value, bool):
+            self.fail(key, f"expected an integer, got {_kind(value)}")
+        if not isinstance(value, kind):
+            self.fail(key, f"expected {_noun(kind)}, got {_kind(value)}")
+        return value
+
+    def names(self, key: str) -> list[str]:
+        value = self.get(key, list)
+        if not value or not all(isinstance(v, str) for v in value):
+            self.fail(key, "expected a non-empty list of column names")
+        return list(value)
+
+    def choice(self, key: str, allowed: dict[str, Any] | tuple[str, ...], default: Any = ...) -> str:
+        value = self.get(key, str, default)
+        if value not in allowed:
+            self.fail(key, f"unknown {value!r} (expected one of: {', '.join(allowed)})")
+        return str(value)
+
+
+def _noun(kind: type) -> str:
+    return {str: "a string", int: "an integer", float: "a number", bool: "true or false",
+            list: "a list", dict: "a table"}.get(kind, kind.__name__)
+
+
+def _kind(value: Any) -> str:
+    if isinstance(value, bool):
+        return "a boolean"
+    if isinstance(value, int):
+        return "an integer"
+    if isinstance(value, float):
+        return "a number"
+    if isinstance(value, str):
+        return f"the string {value!r}"
+    if isinstance(value, list):
+        return "a list"
+    if isinstance(value, dict):
+        return "a table"
+    return type(value).__name__
+
+
+def load_setup(path: str | Path) -> Setup:
+    """Read and check a model file, its data and its initial weights."""
+    path = Path(path)
+    label = str(path)
+    try:
+        raw = path.read_bytes()
+    except FileNotFoundError:
+        raise ModelFileError(f"{label}: no such model file") from None
+    except IsADirectoryError:
+        raise ModelFileError(f"{label}: is a folder, not a model file") from None
+    except OSError as exc:
+        raise ModelFileError(f"{label}: cannot be read ({exc.strerror})") from None
+    try:
+        doc = tomllib.loads(raw.decode("utf-8"))
+    except UnicodeDecodeError:
+        raise ModelFileError(f"{label}: not UTF-8 text") from None
+    except tomllib.TOMLDecodeError as exc:
+        raise ModelFileError(f"{label}: not valid TOML ({exc})") from None
+
+    top = _Keys(label, "", doc, TOP_KEYS)
+    name = top.get("name", str, path.parent.name or path.stem)
+    loss = top.choice("loss", LOSSES)
+
+    data_keys = _Keys(label, "data", top.get("data", dict), DATA_KEYS)
+    data = _load_data(path, data_keys)
+
+    layer_list = top.get("layers", list)
+    if not layer_list:
+        top.fail("layers", "expected at least one [[layers]] table")
+    layers: list[Layer] = []
+    inline: list[tuple[int, _Keys]] = []
+    n_in = len(data.input_names)
+    for i, entry in enumerate(layer_list):
+        keys = _Keys(label, f"layers[{i}]", entry, LAYER_KEYS)
+        layer = _build_layer(keys, n_in, path)
+        layers.append(layer)
+        if keys.has("weights") or keys.has("biases"):
+            inline.append((i, keys))
+        n_in = layer.n_out
+    if layers[-1].n_out != len(data.target_names):
+        top.fail(
+            f"layers[{len(layers) - 1}].units",
+            f"the last layer has {layers[-1].n_out} units but [data].targets names "
+            f"{len(data.target_names)} column(s); they must match",
+        )
+    network = Network(len(data.input_names), layers, loss)
+    theta0 = _initial_values(label, top, network, inline)
+    return Setup(path, name, network, theta0, data, hashlib.sha256(raw).hexdigest())
+
+
+def _load_data(model_path: Path, keys: _Keys) -> Dataset:
+    file = keys.get("file", str)
+    inputs = keys.names("inputs")
+    targets = keys.names("targets")
+    overlap = sorted(set(inputs) & set(targets))
+    if overlap:
+        keys.fail("targets", f"column(s) {', '.join(overlap)} are also inputs")
+    standardize = keys.get("standardize", bool, False)
+    fraction = keys.get("validation_fraction", float, 0.0)
+    if not 0.0 <= fraction < 1.0:
+        keys.fail("validation_fraction", f"{fraction} is outside [0, 1)")
+    seed = keys.get("seed", int, 0)
+    csv_path = (model_path.parent / file) if not Path(file).is_absolute() else Path(file)
+    table = read_columns(csv_path, inputs + targets, label=str(csv_path))
+    return build_dataset(table, inputs, targets, standardize, fraction, seed, str(csv_path))
+
+
+def _build_layer(keys: _Keys, n_in: int, model_path: Path) -> Layer:
+    kind = keys.choice("type", ("dense", "custom"), "dense")
+    if kind == "custom":
+        from stepper.formats.custom_layer import build_custom_layer
+
+        return build_custom_layer(keys, n_in, model_path)
+    for key in ("file", "class", "options"):
+        if keys.has(key):
+            keys.fail(key, "only a layer with type = \"custom\" takes this key")
+    units = keys.get("units", int)
+    if units < 1:
+        keys.fail("units", f"{units} is not a positive number of units")
+    activation = keys.choice("activation", ACTIVATIONS)
+    bias = keys.get("bias", bool, True)
+    return Dense(n_in, units, ACTIVATIONS[activation], bias)
+
+
+def _initial_values(label: str, top: _Keys, network: Network, inline: list[tuple[int, _Keys]]) -> Array:
+    inline_layers = {i for i, _ in inline}
+    needs_scheme = any(
+        block.layer not in inline_layers for block in network.layout.blocks
+    )
+    theta = np.zeros(network.n_params)
+    if top.has("init"):
+        init = _Keys(label, "init", top.get("init", dict), INIT_KEYS)
+        if init.has("file"):
+            from stepper.formats.weights_import import import_weights
+
+            theta = import_weights(label, init, network)
+        else:
+            scheme = init.choice("scheme", SCHEMES)
+            seed = init.get("seed", int, 0)
+            spread = init.get("range", float, 0.5)
+            if spread <= 0:
+                init.fail("range", f"{spread} must be positive")
+            theta = initial_params(network, scheme, seed, spread)
+    elif needs_scheme:
+        top.fail("init", "missing: give [init] scheme and seed, or inline weights for every layer")
+    for index, keys in inline:
+        _apply_inline(keys, network, index, theta)
+    return theta
+
+
+def _apply_inline(keys: _Keys, network: Network, index: int, theta: Array) -> None:
+    views = network.views(theta)[index]
+    for key, array_key in (("weights", "W"), ("biases", "b")):
+        if not keys.has(key):
+            continue
+        if array_key not in views:
+            keys.fail(key, "this layer has bias = false, so it takes no biases")
+        target = views[array_key]
+        value = keys.get(key, list)
+        try:
+            array = np.array(value, dtype=np.float64)
+        except (TypeError, ValueError):
+            keys.fail(key, "expected numbers (a list of rows for weights, a list for biases)")
+            raise
+        if array.shape != target.shape:
+            want = "x".join(str(s) for s in target.shape)
+            got = "x".join(str(s) for s in array.shape) or "a single number"
+            keys.fail(key, f"shape {got} does not fit the layer, which needs {want} (inputs x units)"
+                      if key == "weights" else f"has {got} entries, the layer needs {want}")
+        if not np.all(np.isfinite(array)):
+            keys.fail(key, "contains a value that is not a finite number")
+        target[...] = array
