@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-from importlib import resources
 from pathlib import Path
 
 DEFAULT = "bakery-demand"
@@ -14,7 +13,8 @@ def scenarios_root() -> Path:
     checkout = here.parent / "scenarios"
     if (checkout / DEFAULT / "model.toml").is_file():
         return checkout
-    return Path(str(resources.files("stepper._scenarios")))
+    # Installed from a wheel: pyproject.toml ships the folder as stepper/_scenarios.
+    return here / "_scenarios"
 
 
 def scenario_names() -> list[str]:
