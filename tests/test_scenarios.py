@@ -1,0 +1,164 @@
+"""The bundled scenarios: each loads, passes its own slope check, regenerates its
+data byte for byte, and trains under plain gradient descent.
+
+Every folder under ``scenarios/`` that holds a ``model.toml`` is tested, so a
+new scenario is covered as soon as it is added (and must get an entry in
+``TRAINING_RATES``).
+"""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+import tomllib
+from fnmatch import fnmatch
+from pathlib import Path
+
+import autograd.numpy as anp
+import numpy as np
+import pytest
+from autograd import grad
+
+from stepper import cli
+from stepper.formats.model_file import Setup, load_setup
+from stepper.scenarios import DEFAULT
+
+ROOT = Path(__file__).resolve().parents[1] / "scenarios"
+NAMES = sorted(p.name for p in ROOT.iterdir() if (p / "model.toml").is_file())
+
+#: Patterns pyproject.toml ships as package data for the scenarios.
+SHIPPED = ("*.toml", "*.csv", "*.md", "*.py", "*.safetensors")
+
+#: The plain-descent rate each scenario's README suggests, and how far 50
+#: updates at that rate must bring the training cost down (a fraction of the
+#: starting cost). These are our own scenarios' numbers, not outside values.
+TRAINING_RATES = {
+    "bakery-demand": (0.1, 0.05),
+    "kiln-tiny": (2.0, 0.5),
+    "seed-sorter": (1.0, 0.25),
+    "sensor-drift": (0.3, 0.6),
+}
+
+
+def setup_of(name: str) -> Setup:
+    return load_setup(ROOT / name / "model.toml")
+
+
+def test_the_expected_scenarios_are_bundled() -> None:
+    assert DEFAULT in NAMES
+    assert {"bakery-demand", "kiln-tiny", "seed-sorter"} <= set(NAMES)
+
+
+@pytest.mark.parametrize("name", NAMES)
+def test_scenario_files_are_complete_and_shipped(name: str) -> None:
+    folder = ROOT / name
+    assert (folder / "data.csv").is_file()
+    assert (folder / "README.md").is_file()
+    if not (folder / "make_data.py").is_file():
+        # Hand-written data must say so in the README.
+        assert "by hand" in (folder / "README.md").read_text(encoding="utf-8")
+    for path in folder.iterdir():
+        if path.name == "__pycache__":
+            continue
+        # pyproject.toml ships only files one level below scenarios/ with these
+        # endings; anything else would be missing from an installed copy.
+        assert path.is_file(), f"{path}: scenario folders hold no sub-folders"
+        assert any(fnmatch(path.name, pattern) for pattern in SHIPPED), f"{path} is not shipped"
+
+
+@pytest.mark.parametrize("name", NAMES)
+def test_scenario_loads_and_stays_small(name: str) -> None:
+    setup = setup_of(name)
+    n_rows = setup.data.n_train + setup.data.n_val
+    assert 1 <= n_rows <= 500
+    assert 1 <= setup.network.n_params <= 500
+    assert np.all(np.isfinite(setup.theta0))
+    assert np.isfinite(setup.network.cost(setup.theta0, setup.data.X, setup.data.Y))
+
+
+@pytest.mark.parametrize("name", NAMES)
+def test_every_slope_agrees(name: str, capsys: pytest.CaptureFixture[str]) -> None:
+    code = cli.main(["check", str(ROOT / name), "--json"])
+    report = json.loads(capsys.readouterr().out)
+    assert code == 0
+    assert report["passed"] is True
+    assert report["counts"]["agree"] == report["model"]["parameters"]
+
+
+@pytest.mark.parametrize("name", [n for n in NAMES if (ROOT / n / "make_data.py").is_file()])
+def test_make_data_reproduces_the_csv(name: str, tmp_path: Path) -> None:
+    out = tmp_path / "data.csv"
+    subprocess.run(
+        [sys.executable, str(ROOT / name / "make_data.py"), str(out)],
+        check=True,
+        capture_output=True,
+        timeout=60,
+    )
+    assert out.read_bytes() == (ROOT / name / "data.csv").read_bytes()
+
+
+@pytest.mark.parametrize("name", NAMES)
+def test_small_steps_of_plain_descent_lower_the_cost(name: str) -> None:
+    # A small enough step against a nonzero gradient lowers a smooth function
+    # (first-order Taylor expansion; Nocedal & Wright, Numerical Optimization,
+    # 2nd ed., 2006, section 2.2, recalled from memory). The rate 0.01 is our
+    # choice, far below the rates at which these scenarios start to overshoot.
+    setup = setup_of(name)
+    net, X, Y = setup.network, setup.data.X, setup.data.Y
+    theta = setup.theta0.copy()
+    costs = []
+    for _ in range(5):
+        cost, slopes = net.cost_and_slopes(theta, X, Y)
+        costs.append(cost)
+        theta -= 0.01 * slopes
+    costs.append(net.cost(theta, X, Y))
+    assert all(later < earlier for earlier, later in zip(costs, costs[1:])), costs
+
+
+@pytest.mark.parametrize("name", NAMES)
+def test_descent_at_the_suggested_rate_trains(name: str) -> None:
+    assert name in TRAINING_RATES, f"add the rate the {name} README suggests to TRAINING_RATES"
+    rate, fraction = TRAINING_RATES[name]
+    setup = setup_of(name)
+    net, X, Y = setup.network, setup.data.X, setup.data.Y
+    theta = setup.theta0.copy()
+    start = net.cost(theta, X, Y)
+    for _ in range(50):
+        _, slopes = net.cost_and_slopes(theta, X, Y)
+        theta -= rate * slopes
+    assert net.cost(theta, X, Y) < fraction * start
+
+
+def test_kiln_tiny_matches_an_independent_autograd_computation() -> None:
+    # The inline weights are read straight from the TOML file and the network
+    # is written out again with autograd.numpy; the autograd package (a
+    # general-purpose reverse-mode differentiator) gives the reference slopes.
+    folder = ROOT / "kiln-tiny"
+    doc = tomllib.loads((folder / "model.toml").read_text(encoding="utf-8"))
+    rows = np.loadtxt(folder / "data.csv", delimiter=",", skiprows=1)
+    X, Y = rows[:, :2], rows[:, 2:]
+    first, second = doc["layers"]
+    W1, b1 = np.array(first["weights"]), np.array(first["biases"])
+    W2, b2 = np.array(second["weights"]), np.array(second["biases"])
+
+    def cost(W1: np.ndarray, b1: np.ndarray, W2: np.ndarray, b2: np.ndarray) -> np.ndarray:
+        hidden = anp.tanh(anp.dot(X, W1) + b1)
+        out = 1.0 / (1.0 + anp.exp(-(anp.dot(hidden, W2) + b2)))
+        # half_squared_error: 1/2 * sum over outputs, mean over samples.
+        return 0.5 * anp.sum((out - Y) ** 2) / X.shape[0]
+
+    setup = setup_of("kiln-tiny")
+    value, slopes = setup.network.cost_and_slopes(setup.theta0, setup.data.X, setup.data.Y)
+    np.testing.assert_allclose(value, cost(W1, b1, W2, b2), rtol=1e-12)
+    # The README quotes the starting cost to four significant figures.
+    assert round(value, 5) == 0.02742
+    expected = np.concatenate(
+        [np.ravel(grad(cost, argnum=k)(W1, b1, W2, b2)) for k in range(4)]
+    )
+    # Flat order: L1.W row by row, L1.b, L2.W, L2.b (stepper.core.network).
+    np.testing.assert_allclose(slopes, expected, rtol=1e-10, atol=1e-15)
+    layout = setup.network.layout
+    assert slopes[layout.lookup("L1.W[1,0]")] == pytest.approx(
+        grad(cost, argnum=0)(W1, b1, W2, b2)[1, 0], rel=1e-10
+    )
