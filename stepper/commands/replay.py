@@ -1,0 +1,53 @@
+"""``stepper replay``: rebuild a session's state from its journal."""
+
+from __future__ import annotations
+
+import argparse
+import sys
+from pathlib import Path
+from typing import Any
+
+from stepper.errors import CheckpointError
+from stepper.formats.journal import read_journal
+from stepper.formats.model_file import load_setup
+from stepper.session import Session
+
+
+def add_parser(subs: Any) -> None:
+    p = subs.add_parser(
+        "replay",
+        help="rebuild a session from its journal (after a crash) and save it as a checkpoint",
+        description="Re-run every operation recorded in a journal, starting from the model "
+        "file the journal names, and report (and optionally save) the resulting state.",
+    )
+    p.add_argument("journal", type=Path, help="journal file (.jsonl)")
+    p.add_argument("--model", type=Path, default=None,
+                   help="model file to start from (default: the one the journal names)")
+    p.add_argument("--save", type=Path, default=None, metavar="PATH", help="write the rebuilt state as a checkpoint")
+    p.add_argument("--force", action="store_true", help="replay even if the model file has changed")
+    p.set_defaults(handler=handle)
+
+
+def replay(journal: Path, model: Path | None = None, force: bool = False) -> Session:
+    """A session rebuilt from ``journal``; the journal itself is not written to."""
+    header, entries = read_journal(journal)
+    setup = load_setup(model if model is not None else Path(str(header.get("model"))))
+    if setup.digest != header.get("digest") and not force:
+        raise CheckpointError(
+            f"{journal}: the model file {setup.path} has changed since the journal was written "
+            "(use --force to replay anyway)"
+        )
+    session = Session(setup)
+    for entry in entries:
+        session.apply(entry)
+    return session
+
+
+def handle(args: argparse.Namespace) -> int:
+    session = replay(args.journal, args.model, args.force)
+    out = sys.stdout
+    out.write(f"replayed {args.journal}: step {session.step_count}, rate {session.rate:g}, {session.rule}, "
+              f"train cost {session.train_cost():.10g}\n")
+    if args.save is not None:
+        out.write(f"saved {session.save_checkpoint(args.save)}\n")
+    return 0

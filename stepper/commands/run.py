@@ -1,0 +1,161 @@
+"""``stepper run``: headless stepping for scripts and remote shells."""
+
+from __future__ import annotations
+
+import argparse
+import json
+import signal
+import sys
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from stepper.commands.common import add_model_argument, load, positive_float, positive_int
+from stepper.core.numeric import run_to_end
+from stepper.core.optimizers import RULES
+from stepper.errors import DivergenceError
+from stepper.session import SLOPE_SOURCES, Session
+
+
+def add_parser(subs: Any) -> None:
+    p = subs.add_parser(
+        "run",
+        help="make gradient-descent steps without the app, optionally saving a checkpoint",
+        description="Step gradient descent headless. Ctrl-C stops after the current step "
+        "(and still saves with --save). Exit code: 0 ok, 1 a step was refused as "
+        "divergent, 2 bad input.",
+    )
+    add_model_argument(p)
+    p.add_argument("--steps", type=positive_int, default=100, metavar="N", help="number of updates (default 100)")
+    p.add_argument("--rate", type=positive_float, default=None, metavar="R",
+                   help="learning rate (default 0.1, or the checkpoint's with --resume)")
+    p.add_argument("--rule", choices=RULES, default=None, help="update rule (default gd)")
+    p.add_argument("--slopes", choices=SLOPE_SOURCES, default=None,
+                   help="slopes from backpropagation (analytic, default) or finite differences (numeric)")
+    p.add_argument("--batch", type=positive_int, default=None, metavar="N",
+                   help="mini-batches of N samples, drawn with a seeded shuffle (default: full batch)")
+    p.add_argument("--freeze", action="append", default=[], metavar="PATTERN",
+                   help="freeze parameters whose names match, e.g. 'L1.b[*]' (repeatable)")
+    p.add_argument("--seed", type=int, default=0, help="seed for mini-batch draws (default 0)")
+    p.add_argument("--resume", type=Path, default=None, metavar="CHECKPOINT", help="start from a checkpoint")
+    p.add_argument("--save", type=Path, default=None, metavar="PATH", help="write a checkpoint at the end")
+    p.add_argument("--journal", type=Path, default=None, metavar="PATH",
+                   help="append every operation to this journal file (for stepper replay)")
+    p.add_argument("--json", action="store_true", help="print one JSON document at the end")
+    p.set_defaults(handler=handle)
+
+
+class _StopFlag:
+    """First Ctrl-C asks to stop after the current step; a second one interrupts at once."""
+
+    def __init__(self) -> None:
+        self.requested = False
+
+    def __call__(self, signum: int, frame: Any) -> None:
+        if self.requested:
+            raise KeyboardInterrupt
+        self.requested = True
+        print("\nstopping after the current step (Ctrl-C again to stop at once)", file=sys.stderr)
+
+
+def handle(args: argparse.Namespace) -> int:
+    setup = load(args)
+    session = Session(setup, journal=args.journal, seed=args.seed)
+    try:
+        return _run(session, args)
+    finally:
+        session.close()
+
+
+def _run(session: Session, args: argparse.Namespace) -> int:
+    if args.resume is not None:
+        session.load_checkpoint(args.resume)
+    if args.rate is not None:
+        session.set_rate(args.rate)
+    if args.rule is not None and args.rule != session.rule:
+        session.set_rule(args.rule)
+    if args.slopes is not None:
+        session.set_slope_source(args.slopes)
+    if args.batch is not None:
+        session.set_batch_size(min(args.batch, session.setup.data.n_train))
+    for pattern in args.freeze:
+        session.freeze_matching(pattern)
+    start_theta = session.theta.copy()
+    start_cost = session.train_cost()
+    start_val = session.val_cost()
+    start_step = session.step_count
+
+    stop = _StopFlag()
+    previous = signal.signal(signal.SIGINT, stop)
+    refused: DivergenceError | None = None
+    try:
+        run_to_end(session.iter_steps(args.steps), _progress(args.steps), lambda: stop.requested)
+    except DivergenceError as exc:
+        refused = exc
+    finally:
+        signal.signal(signal.SIGINT, previous)
+
+    saved = session.save_checkpoint(args.save) if args.save is not None else None
+    moved = np.abs(session.theta - start_theta)
+    top = np.argsort(-moved, kind="stable")[:5]
+    steps_done = session.step_count - start_step
+    if args.json:
+        doc = {
+            "model": str(session.setup.path),
+            "steps_requested": args.steps,
+            "steps_done": steps_done,
+            "stopped_early": stop.requested,
+            "refused": None if refused is None else refused.message,
+            "rate": session.rate,
+            "rule": session.rule,
+            "slope_source": session.slope_source,
+            "batch_size": session.batch_size,
+            "cost_before": start_cost,
+            "cost_after": session.train_cost(),
+            "validation_before": start_val,
+            "validation_after": session.val_cost(),
+            "moved_most": [{"name": session.names[i], "before": float(start_theta[i]),
+                            "after": float(session.theta[i])} for i in top],
+            "checkpoint": None if saved is None else str(saved),
+        }
+        json.dump(doc, sys.stdout, indent=1)
+        sys.stdout.write("\n")
+    else:
+        out = sys.stdout
+        note = " (stopped early)" if stop.requested else ""
+        out.write(f"{steps_done} of {args.steps} steps{note}: {session.rule}, rate {session.rate:g}, "
+                  f"{session.slope_source} slopes, "
+                  f"{'full batch' if session.batch_size is None else f'batches of {session.batch_size}'}\n")
+        out.write(f"train cost  {start_cost:.10g} -> {session.train_cost():.10g}\n")
+        val = session.val_cost()
+        if val is not None:
+            out.write(f"validation  {start_val:.10g} -> {val:.10g}\n")
+        out.write("moved most:\n")
+        for i in top:
+            out.write(f"  {session.names[i]:<16} {start_theta[i]: .6g} -> {session.theta[i]: .6g}\n")
+        if saved is not None:
+            out.write(f"saved {saved}\n")
+    if refused is not None:
+        print(f"stepper: {refused.message}", file=sys.stderr)
+        return 1
+    return 0
+
+
+def _progress(total: int) -> Any:
+    stream = sys.stderr
+    if stream.isatty():
+        def bar(done: int, total_: int) -> None:
+            filled = 30 * done // max(total_, 1)
+            stream.write(f"\rstepping [{'#' * filled}{'.' * (30 - filled)}] {done}/{total_}")
+            if done >= total_:
+                stream.write("\n")
+            stream.flush()
+        return bar
+    marks = {max(1, total * k // 10) for k in range(1, 11)}
+
+    def lines(done: int, total_: int) -> None:
+        if done in marks:
+            stream.write(f"step {done}/{total_}\n")
+            stream.flush()
+    return lines
