@@ -43,9 +43,14 @@ class Layer(Protocol):
     w.r.t. each parameter (same shapes as the parameters) and w.r.t. the input.
     """
 
-    n_in: int
-    n_out: int
-    label: str
+    @property
+    def n_in(self) -> int: ...
+
+    @property
+    def n_out(self) -> int: ...
+
+    @property
+    def label(self) -> str: ...
 
     def param_specs(self) -> tuple[ParamSpec, ...]: ...
 
