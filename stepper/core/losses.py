@@ -14,7 +14,9 @@ each loss's definition:
 Two pairs of output activation and loss are computed from the pre-activations
 ``Z`` instead (sigmoid with binary cross-entropy, softmax with categorical
 cross-entropy): the cost is then finite for any ``Z`` (log-sum-exp), and the
-slope is the familiar ``(a - y)`` scaled by the averaging.
+slope is the familiar ``(a - y)`` scaled by the averaging (for categorical
+cross-entropy ``a * sum_k y_k - y``, which is ``a - y`` when each target row
+sums to one).
 """
 
 from __future__ import annotations
@@ -137,8 +139,10 @@ def _cce_logits(Z: Array, Y: Array) -> Array:
 
 
 def _cce_logits_grad(Z: Array, Y: Array) -> Array:
+    # d/dz_j of -sum_k y_k log p_k is p_j * sum_k y_k - y_j; the familiar p - y
+    # holds only when the target row sums to one (exactly so for one-hot rows).
     n, _ = _count(Z)
-    return (softmax(Z) - Y) / n
+    return (softmax(Z) * np.sum(Y, axis=-1, keepdims=True) - Y) / n
 
 
 #: (output activation, loss) pairs computed from the logits.
