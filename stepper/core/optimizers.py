@@ -14,9 +14,14 @@ touches its inputs. All arrays have shape ``(n_params,)``.
   algorithm 1: ``m <- b1 m + (1 - b1) g``, ``v <- b2 v + (1 - b2) g^2``,
   ``m^ = m / (1 - b1^t)``, ``v^ = v / (1 - b2^t)``,
   ``delta = -rate * m^ / (sqrt(v^) + eps)``, with the paper's defaults
-  ``b1 = 0.9``, ``b2 = 0.999``, ``eps = 1e-8``.
+  ``b1 = 0.9``, ``b2 = 0.999``, ``eps = 1e-8``. The ``t`` of the bias
+  correction is each parameter's own count of updates (array ``count``), so a
+  parameter that was frozen for a while and then let go starts the algorithm
+  from its first step, as it would alone; while nothing is frozen every count
+  equals the rule's step count and this is algorithm 1 exactly.
 
-A mask of frozen parameters keeps their values and their rule state unchanged.
+A mask of frozen parameters keeps their values and their rule state (including
+Adam's counts) unchanged.
 """
 
 from __future__ import annotations
@@ -43,7 +48,8 @@ class RuleState:
     Attributes:
         rule: one of :data:`RULES`.
         arrays: named arrays of shape ``(n_params,)`` (``velocity`` for momentum;
-            ``m`` and ``v`` for Adam; none for gd).
+            ``m``, ``v`` and the per-parameter update ``count`` for Adam; none
+            for gd).
         t: number of updates made with this rule (Adam's bias correction uses it).
     """
 
@@ -70,7 +76,7 @@ def fresh_state(rule: str, n_params: int) -> RuleState:
     if rule == "momentum":
         return RuleState(rule, {"velocity": np.zeros(n_params)})
     if rule == "adam":
-        return RuleState(rule, {"m": np.zeros(n_params), "v": np.zeros(n_params)})
+        return RuleState(rule, {"m": np.zeros(n_params), "v": np.zeros(n_params), "count": np.zeros(n_params)})
     raise KeyError(rule)
 
 
@@ -97,11 +103,13 @@ def compute_update(
     elif state.rule == "adam":
         m = ADAM_BETA1 * state.arrays["m"] + (1.0 - ADAM_BETA1) * slopes
         v = ADAM_BETA2 * state.arrays["v"] + (1.0 - ADAM_BETA2) * slopes * slopes
-        m_hat = m / (1.0 - ADAM_BETA1**nxt.t)
-        v_hat = v / (1.0 - ADAM_BETA2**nxt.t)
+        count = state.arrays["count"] + 1.0
+        m_hat = m / (1.0 - ADAM_BETA1**count)
+        v_hat = v / (1.0 - ADAM_BETA2**count)
         delta = -rate * m_hat / (np.sqrt(v_hat) + ADAM_EPS)
         nxt.arrays["m"] = np.where(moving, m, state.arrays["m"])
         nxt.arrays["v"] = np.where(moving, v, state.arrays["v"])
+        nxt.arrays["count"] = np.where(moving, count, state.arrays["count"])
     else:
         raise KeyError(state.rule)
     return np.where(moving, delta, 0.0), nxt
