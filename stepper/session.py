@@ -504,6 +504,9 @@ class Session:
 
     def _one_step(self) -> None:
         """One update in place, or DivergenceError with nothing changed."""
+        # The draw of a refused step is taken back too, so the next step (and a
+        # replay of the journal, which holds only the steps made) draws the same batch.
+        rng_state = self.batch_rng.bit_generator.state
         X, Y = self._batch()
         data = self.setup.data
         with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
@@ -514,6 +517,7 @@ class Session:
             bad = ~np.isfinite(theta)
             cost = self.net.cost(theta, data.X, data.Y) if not bad.any() else math.nan
         if bad.any() or not math.isfinite(cost):
+            self.batch_rng.bit_generator.state = rng_state
             if bad.any():
                 culprits = tuple(self.names[i] for i in np.flatnonzero(bad)[:5])
                 what = f"{int(bad.sum())} weight(s) would become non-finite ({', '.join(culprits)})"

@@ -1,0 +1,115 @@
+"""A step that would make a weight or the cost non-finite is refused, and nothing of it remains.
+
+IEEE 754 float64 overflows past about 1.8e308 (numpy.finfo(float64).max, a
+textbook fact of the format); gradient descent at rate 1e30 on the bakery
+scenario's squared-error loss gets there within a few steps. These tests check
+our own contract: the refusal names weights, suggests a smaller rate, and
+leaves the session exactly as it was before the refused step.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from stepper import cli
+from stepper.errors import DivergenceError
+from stepper.formats.model_file import load_setup
+from stepper.session import Session
+
+BAKERY = Path(__file__).resolve().parents[1] / "scenarios" / "bakery-demand" / "model.toml"
+
+
+@pytest.fixture(scope="module")
+def setup():  # type: ignore[no-untyped-def]
+    return load_setup(BAKERY)
+
+
+def diverge(s: Session, n: int = 30) -> DivergenceError:
+    with pytest.raises(DivergenceError) as info:
+        s.step(n)
+    return info.value
+
+
+def test_huge_rate_is_refused_with_names_and_a_smaller_rate(setup) -> None:  # type: ignore[no-untyped-def]
+    s = Session(setup, rate=1e30)
+    error = diverge(s)
+    assert error.exit_code == 1
+    assert error.names, "the refusal must name the weights involved"
+    for name in error.names:
+        assert name in s.names
+        assert name in error.message
+    assert "smaller rate" in error.message
+    assert "1e+29" in error.message
+    assert 0 < s.step_count < 30
+
+
+def test_state_is_as_before_the_refused_step(setup) -> None:  # type: ignore[no-untyped-def]
+    s = Session(setup, rate=1e30)
+    error = diverge(s)
+    done = s.step_count
+    # The same steps made again without the refused one: identical state.
+    again = Session(setup, rate=1e30)
+    again.step(done)
+    assert s.theta.tobytes() == again.theta.tobytes()
+    assert s.rule_state.equals(again.rule_state)
+    assert s.history == again.history
+    assert np.all(np.isfinite(s.theta))
+    # The steps made before the refusal are one undoable operation.
+    assert s.last_action is not None and f"{done} steps" in s.last_action
+    s.undo()
+    assert s.theta.tobytes() == setup.theta0.tobytes()
+    # A second try is refused at once and changes nothing.
+    s.redo()
+    theta = s.theta.copy()
+    with pytest.raises(DivergenceError) as second:
+        s.step()
+    assert second.value.message == error.message
+    assert s.theta.tobytes() == theta.tobytes()
+    assert s.step_count == done
+
+
+@pytest.mark.parametrize("rule", ["gd", "momentum", "adam"])
+def test_refusal_keeps_the_rule_memory(setup, rule: str) -> None:  # type: ignore[no-untyped-def]
+    s = Session(setup, rate=0.01)
+    s.set_rule(rule)
+    s.step(5)
+    theta, state, history = s.theta.copy(), s.rule_state.copy(), list(s.history)
+    # Adam moves each weight by about the rate, so the rate itself must be
+    # near the largest float64 for the step to overflow.
+    s.set_rate(1e300)
+    diverge(s, 3)
+    assert s.theta.tobytes() == theta.tobytes()
+    assert s.rule_state.equals(state)
+    assert s.history == history
+    assert s.step_count == 5
+
+
+def test_refused_mini_batch_step_takes_back_its_draw(setup) -> None:  # type: ignore[no-untyped-def]
+    # The journal records only the steps made; a replay must draw the same
+    # batches afterwards, so the refused step's draw must not count.
+    s = Session(setup, rate=1e30, seed=4)
+    s.set_batch_size(16)
+    diverge(s)
+    again = Session(setup, rate=1e30, seed=4)
+    again.set_batch_size(16)
+    again.step(s.step_count)
+    assert s.batch_rng.bit_generator.state == again.batch_rng.bit_generator.state
+    s.set_rate(0.01)
+    again.set_rate(0.01)
+    s.step(5)
+    again.step(5)
+    assert s.theta.tobytes() == again.theta.tobytes()
+
+
+def test_cli_run_with_a_huge_rate_exits_1_with_the_message(capsys: pytest.CaptureFixture[str]) -> None:
+    code = cli.main(["run", str(BAKERY), "--rate", "1e30", "--steps", "30"])
+    out, err = capsys.readouterr()
+    assert code == 1
+    last = err.strip().splitlines()[-1]
+    assert last.startswith("stepper: ")
+    assert "refused at rate 1e+30" in last and "smaller rate" in last
+    assert "Traceback" not in err
+    assert "of 30 steps" in out
