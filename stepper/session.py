@@ -526,7 +526,7 @@ class Session:
                 culprits = tuple(self.names[i] for i in order)
                 what = f"the cost would become non-finite (largest moves: {', '.join(culprits)})"
             raise DivergenceError(
-                f"step refused at rate {self.rate:g}: {what}; the state is unchanged. "
+                f"step refused at rate {self.rate:g}: {what}; that step was not made. "
                 f"Try a smaller rate, e.g. {self.rate / 10:g}.",
                 culprits,
             )
