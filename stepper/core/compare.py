@@ -16,6 +16,15 @@ Verdicts (thresholds are common practice with no single published source):
 - ``kink``      not ``agree``, and a ReLU-like unit crossed its kink between the
   finite-difference evaluations: the numeric slope is not trustworthy there, so
   the parameter is not counted as failed.
+
+Rounding noise. A numeric slope is a difference of two costs divided by the
+step, so it carries a rounding error of about ``eps * |C| / h`` whatever the
+size of the slope (Press, Teukolsky, Vetterling & Flannery, *Numerical
+Recipes*, 3rd ed., 2007, section 5.7). For slopes that small the relative error
+means nothing: with the default central step and a cost of order one the noise
+is about 4e-11, so a correct slope of 1e-9 could show a relative error of 1e-2.
+A parameter whose two slopes differ by no more than :func:`noise_level` therefore
+gets ``agree``; its relative error is still reported as computed.
 """
 
 from __future__ import annotations
@@ -31,6 +40,10 @@ VERDICTS = ("agree", "doubtful", "disagree", "kink")
 AGREE_BELOW = 1e-5
 DISAGREE_ABOVE = 1e-3
 FLOOR = 1e-8
+#: Multiple of ``eps * |C| / h`` allowed for rounding in the two cost evaluations
+#: of a numeric slope (common practice, no published source).
+NOISE_FACTOR = 16.0
+_EPS = float(np.finfo(np.float64).eps)
 
 
 @dataclass(frozen=True)
@@ -48,11 +61,27 @@ def relative_error(analytic: Array, numeric: Array, floor: float = FLOOR) -> Arr
     return np.abs(analytic - numeric) / scale
 
 
-def verdicts(rel: Array, kink: NDArray[np.bool_], limits: Thresholds = Thresholds()) -> NDArray[np.str_]:
-    """One verdict string per parameter; NaN relative errors (not computed) give ``""``."""
+def noise_level(cost: float, h: float) -> float:
+    """Rounding noise of a finite-difference slope: ``NOISE_FACTOR * eps * |cost| / h``."""
+    return NOISE_FACTOR * _EPS * abs(cost) / h
+
+
+def verdicts(
+    rel: Array,
+    kink: NDArray[np.bool_],
+    limits: Thresholds = Thresholds(),
+    within_noise: NDArray[np.bool_] | None = None,
+) -> NDArray[np.str_]:
+    """One verdict string per parameter; NaN relative errors (not computed) give ``""``.
+
+    ``within_noise`` (optional, ``(n_params,)``) is True where the two slopes differ
+    by less than the numeric slope's rounding noise; those parameters agree.
+    """
     out = np.full(rel.shape, "disagree", dtype="<U8")
     out[rel <= limits.disagree] = "doubtful"
     out[rel <= limits.agree] = "agree"
+    if within_noise is not None:
+        out[within_noise] = "agree"
     out[(out != "agree") & kink] = "kink"
     out[np.isnan(rel)] = ""
     return out

@@ -7,7 +7,7 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import NDArray
 
-from stepper.core.compare import Thresholds, relative_error, verdict_counts, verdicts
+from stepper.core.compare import Thresholds, noise_level, relative_error, verdict_counts, verdicts
 from stepper.core.network import Network
 from stepper.core.numeric import NumericSlopes, Progress, iter_numeric_slopes
 
@@ -52,7 +52,8 @@ class CheckResult:
 def compare(cost: float, analytic: Array, numeric: NumericSlopes, limits: Thresholds = Thresholds()) -> CheckResult:
     """Combine analytic and numeric slopes into a :class:`CheckResult`."""
     rel = relative_error(analytic, numeric.slopes, limits.floor)
-    return CheckResult(cost, analytic, numeric.slopes, rel, verdicts(rel, numeric.kink, limits),
+    quiet = np.abs(analytic - numeric.slopes) <= noise_level(cost, numeric.h)
+    return CheckResult(cost, analytic, numeric.slopes, rel, verdicts(rel, numeric.kink, limits, quiet),
                        numeric.method, numeric.h)
 
 
