@@ -656,6 +656,8 @@ class Session:
             frozen[[self.net.layout.index_of[name] for name in meta["frozen"]]] = True
             history = [HistoryEntry(int(s), float(c), None if v is None else float(v), float(r), str(ru))
                        for s, c, v, r, ru in meta["history"]]
+            if not history:
+                raise ValueError("the cost history is empty")
             values = {
                 "theta": data.theta,
                 "frozen": frozen,
@@ -670,14 +672,17 @@ class Session:
             raise CheckpointError(f"{path}: the checkpoint's metadata is incomplete or wrong ({exc})") from None
         if values["slope_source"] not in SLOPE_SOURCES:
             raise CheckpointError(f"{path}: unknown slope source {values['slope_source']!r}")
+        if rng_state is not None:
+            # Tried on a spare generator first: nothing may change before every check has passed.
+            try:
+                type(self.batch_rng.bit_generator)().state = rng_state
+            except (TypeError, ValueError, KeyError, OverflowError):
+                raise CheckpointError(f"{path}: the checkpoint's batch generator state is not valid") from None
         fields = list(values) + ["batch_rng"]
         before = {**self._snapshot(fields), "history": (0, list(self.history))}
         self._restore(values)
         if rng_state is not None:
-            try:
-                self.batch_rng.bit_generator.state = rng_state
-            except (TypeError, ValueError, KeyError):
-                raise CheckpointError(f"{path}: the checkpoint's batch generator state is not valid") from None
+            self.batch_rng.bit_generator.state = rng_state
         self.history[:] = history
         after = {**self._snapshot(fields), "history": (0, list(history))}
         self._commit(_Change(f"load {path.name}", before, after), {"op": "load", "path": str(path.resolve())})
