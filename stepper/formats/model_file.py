@@ -26,8 +26,16 @@ Schema (every key is checked; unknown keys are refused so typos surface)::
     weights = [[...], ...]                # optional inline values, n_in rows x units
     biases = [...]                        # optional inline values, units entries
 
+    [[layers]]                            # a custom layer: RUNS the named Python file
+    type = "custom"                       # (stepper.formats.custom_layer)
+    file = "gate.py"                      # relative to the model file
+    class = "GatedUnits"
+    units = 3                             # optional when the class sets n_out
+    options = { gate_shift = 1.0 }        # optional, passed to the class
+
 Inline ``weights``/``biases`` override the scheme for that layer. A layer
-with inline values needs no ``[init]`` at all.
+with inline values needs no ``[init]`` at all. Custom layers draw their own
+starting values (seeded by ``[init].seed``, or 0 without ``[init]``).
 """
 
 from __future__ import annotations
@@ -237,16 +245,21 @@ def _build_layer(keys: _Keys, n_in: int, model_path: Path) -> Layer:
 
 def _initial_values(label: str, top: _Keys, network: Network, inline: list[tuple[int, _Keys]]) -> Array:
     inline_layers = {i for i, _ in inline}
+    # Custom layers draw their own starting values (stepper.formats.custom_layer).
+    own_values = {i for i, layer in enumerate(network.layers) if not isinstance(layer, Dense)}
     needs_scheme = any(
-        block.layer not in inline_layers for block in network.layout.blocks
+        block.layer not in inline_layers | own_values for block in network.layout.blocks
     )
     theta = np.zeros(network.n_params)
+    seed = 0
+    imported = False
     if top.has("init"):
         init = _Keys(label, "init", top.get("init", dict), INIT_KEYS)
         if init.has("file"):
             from stepper.formats.weights_import import import_weights
 
             theta = import_weights(label, init, network)
+            imported = True
         else:
             scheme = init.choice("scheme", SCHEMES)
             seed = init.get("seed", int, 0)
@@ -256,6 +269,10 @@ def _initial_values(label: str, top: _Keys, network: Network, inline: list[tuple
             theta = initial_params(network, scheme, seed, spread)
     elif needs_scheme:
         top.fail("init", "missing: give [init] scheme and seed, or inline weights for every layer")
+    if own_values and not imported:
+        from stepper.formats.custom_layer import fill_initial_values
+
+        fill_initial_values(network, theta, seed)
     for index, keys in inline:
         _apply_inline(keys, network, index, theta)
     return theta
