@@ -146,7 +146,8 @@ class Session:
         self.history: list[HistoryEntry] = [self._entry()]
         self.journal: JournalWriter | None = None
         if journal is not None:
-            self.journal = JournalWriter(journal, setup.path, setup.digest)
+            self.journal = JournalWriter(journal, setup.path, setup.digest,
+                                         {"rate": self.rate, "rule": self.rule, "seed": self.seed})
 
     # -- read-only views -------------------------------------------------------------------
 

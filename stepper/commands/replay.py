@@ -7,7 +7,7 @@ import sys
 from pathlib import Path
 from typing import Any
 
-from stepper.errors import CheckpointError
+from stepper.errors import CheckpointError, StepperError
 from stepper.formats.journal import read_journal
 from stepper.formats.model_file import load_setup
 from stepper.session import Session
@@ -37,7 +37,12 @@ def replay(journal: Path, model: Path | None = None, force: bool = False) -> Ses
             f"{journal}: the model file {setup.path} has changed since the journal was written "
             "(use --force to replay anyway)"
         )
-    session = Session(setup)
+    start = header.get("start") or {}
+    try:
+        session = Session(setup, rate=float(start.get("rate", 0.1)), rule=str(start.get("rule", "gd")),
+                          seed=int(start.get("seed", 0)))
+    except (AttributeError, TypeError, ValueError, StepperError) as exc:
+        raise CheckpointError(f"{journal}: line 1: the starting settings are not valid ({exc})") from None
     for entry in entries:
         session.apply(entry)
     return session

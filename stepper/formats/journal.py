@@ -2,7 +2,11 @@
 
 The first line is a header::
 
-    {"journal": "stepper", "version": 1, "model": "/abs/path/model.toml", "digest": "<sha256>"}
+    {"journal": "stepper", "version": 1, "model": "/abs/path/model.toml", "digest": "<sha256>",
+     "start": {"rate": 0.1, "rule": "gd", "seed": 0}}
+
+``start`` holds the settings the session began with (its seed decides the
+mini-batch draws), so a replay begins where the session began.
 
 Each further line is one operation with its arguments, e.g.
 ``{"op": "step", "n": 10}`` or ``{"op": "perturb", "scale": 0.01, "seed": 42,
@@ -26,7 +30,7 @@ VERSION = 1
 class JournalWriter:
     """Appends operations to a journal file, flushing each line to disk."""
 
-    def __init__(self, path: Path, model: Path, digest: str) -> None:
+    def __init__(self, path: Path, model: Path, digest: str, start: dict[str, Any] | None = None) -> None:
         self.path = Path(path)
         try:
             self.path.parent.mkdir(parents=True, exist_ok=True)
@@ -36,7 +40,7 @@ class JournalWriter:
             raise CheckpointError(f"{path}: cannot write the journal ({exc.strerror})") from None
         if fresh:
             self.append({"journal": "stepper", "version": VERSION, "model": str(Path(model).resolve()),
-                         "digest": digest})
+                         "digest": digest, "start": dict(start or {})})
 
     def append(self, entry: dict[str, Any]) -> None:
         self._handle.write(json.dumps(entry, separators=(",", ":")) + "\n")
