@@ -13,6 +13,11 @@ Each further line is one operation with its arguments, e.g.
 "names": null}``. Lines are flushed to disk as they are written, so after a
 crash the journal holds every operation up to the last whole line; a line cut
 off mid-way is ignored on replay.
+
+A session that opens a journal which already holds one starts a new part of it
+with a header line of its own (it starts again from the model file), and a
+replay rebuilds the latest part. A line cut off by a crash just before such a
+header is ignored like a cut-off last line.
 """
 
 from __future__ import annotations
@@ -34,13 +39,15 @@ class JournalWriter:
         self.path = Path(path)
         try:
             self.path.parent.mkdir(parents=True, exist_ok=True)
-            fresh = not self.path.exists() or self.path.stat().st_size == 0
+            cut = _ends_mid_line(self.path)
             self._handle: IO[str] = open(self.path, "a", encoding="utf-8")
         except OSError as exc:
             raise CheckpointError(f"{path}: cannot write the journal ({exc.strerror})") from None
-        if fresh:
-            self.append({"journal": "stepper", "version": VERSION, "model": str(Path(model).resolve()),
-                         "digest": digest, "start": dict(start or {})})
+        if cut:
+            # Close the line a crash left unfinished, so the header starts a line of its own.
+            self._handle.write("\n")
+        self.append({"journal": "stepper", "version": VERSION, "model": str(Path(model).resolve()),
+                     "digest": digest, "start": dict(start or {})})
 
     def append(self, entry: dict[str, Any]) -> None:
         self._handle.write(json.dumps(entry, separators=(",", ":")) + "\n")
@@ -51,11 +58,25 @@ class JournalWriter:
         self._handle.close()
 
 
-def read_journal(path: Path) -> tuple[dict[str, Any], list[dict[str, Any]]]:
-    """The header and the whole operation lines of a journal.
+def _ends_mid_line(path: Path) -> bool:
+    """True when ``path`` exists, is not empty and its last byte is not a newline."""
+    if not path.exists() or path.stat().st_size == 0:
+        return False
+    with open(path, "rb") as handle:
+        handle.seek(-1, os.SEEK_END)
+        return handle.read(1) != b"\n"
 
-    A last line without its newline (a write cut off by a crash) is dropped;
-    any other line that is not a JSON object is an error naming the line.
+
+def _is_header(entry: dict[str, Any] | None) -> bool:
+    return entry is not None and "journal" in entry
+
+
+def read_journal(path: Path) -> tuple[dict[str, Any], list[dict[str, Any]]]:
+    """The header and the whole operation lines of the latest part of a journal.
+
+    A last line without its newline (a write cut off by a crash) is dropped, and
+    so is a broken line just before a header; any other line that is not a JSON
+    object is an error naming the line.
     """
     try:
         text = Path(path).read_text(encoding="utf-8")
@@ -67,20 +88,32 @@ def read_journal(path: Path) -> tuple[dict[str, Any], list[dict[str, Any]]]:
     complete = lines[:-1]  # whatever follows the last newline was not finished
     if not complete:
         raise CheckpointError(f"{path}: empty journal (no header line)")
-    entries: list[dict[str, Any]] = []
+    parsed: list[tuple[int, dict[str, Any] | None]] = []
     for number, line in enumerate(complete, start=1):
         if not line.strip():
             continue
         try:
             entry = json.loads(line)
         except json.JSONDecodeError:
-            raise CheckpointError(f"{path}: line {number}: not a JSON object") from None
-        if not isinstance(entry, dict):
+            entry = None
+        parsed.append((number, entry if isinstance(entry, dict) else None))
+    if not parsed:
+        raise CheckpointError(f"{path}: empty journal (no header line)")
+    first_number, first = parsed[0]
+    if first is not None and not _is_header(first):
+        raise CheckpointError(f"{path}: line {first_number}: not a Stepper journal header")
+    start = 0
+    for position, (number, entry) in enumerate(parsed):
+        if entry is None:
+            if position + 1 < len(parsed) and _is_header(parsed[position + 1][1]):
+                continue  # cut off by a crash; the next session started after it
             raise CheckpointError(f"{path}: line {number}: not a JSON object")
-        entries.append(entry)
-    header = entries[0] if entries else {}
+        if _is_header(entry):
+            start = position
+    number, header = parsed[start]
+    assert header is not None
     if header.get("journal") != "stepper":
-        raise CheckpointError(f"{path}: line 1: not a Stepper journal header")
+        raise CheckpointError(f"{path}: line {number}: not a Stepper journal header")
     if header.get("version") != VERSION:
-        raise CheckpointError(f"{path}: line 1: unsupported journal version {header.get('version')!r}")
-    return header, entries[1:]
+        raise CheckpointError(f"{path}: line {number}: unsupported journal version {header.get('version')!r}")
+    return header, [entry for _, entry in parsed[start + 1 :] if entry is not None]
