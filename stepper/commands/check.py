@@ -13,6 +13,7 @@ from stepper.commands.common import (
     add_model_argument,
     add_slope_options,
     fmt,
+    positive_float,
     load,
     positive_int,
     progress_printer,
@@ -20,6 +21,8 @@ from stepper.commands.common import (
 )
 from stepper.core.compare import VERDICTS
 from stepper.core.gradcheck import CheckResult, iter_check
+from stepper.core.health import RATIO_TYPICAL, HealthReport, layer_health
+from stepper.core.input_slopes import DEFAULT_SAMPLES, InputSlopeCheck, check_input_slopes
 from stepper.core.layers import Dense
 from stepper.core.network import Network
 from stepper.core.numeric import run_to_end
@@ -36,6 +39,11 @@ def add_parser(subs: Any) -> None:
     )
     add_model_argument(p)
     add_slope_options(p)
+    p.add_argument("--rate", type=positive_float, default=0.1, metavar="R",
+                   help="rate for the layer health's update-to-weight ratios (default 0.1, "
+                   "common practice)")
+    p.add_argument("--input-samples", type=positive_int, default=DEFAULT_SAMPLES, metavar="N",
+                   help=f"samples on which custom layers' input slopes are checked (default {DEFAULT_SAMPLES})")
     p.add_argument("--json", action="store_true", help="print one JSON document instead of a table")
     p.add_argument("--worst", type=positive_int, default=None, metavar="N",
                    help="list only the N weights with the largest relative error")
@@ -50,12 +58,24 @@ def handle(args: argparse.Namespace) -> int:
         progress_printer("numeric slopes"),
     )
     assert result is not None
+    net = setup.network
+    health = layer_health(net, setup.theta0, X, Y, args.rate)
+    inputs = [
+        check_input_slopes(net, setup.theta0, X, Y, i, args.input_samples, args.method, args.step)
+        for i, layer in enumerate(net.layers) if not isinstance(layer, Dense)
+    ]
+    passed = result.passed and all(c.passed for c in inputs)
     if args.json:
-        json.dump(check_document(setup, result, X.shape[0]), sys.stdout, indent=1)
+        doc = check_document(setup, result, X.shape[0])
+        doc["passed"] = passed
+        doc["input_slopes"] = [input_slopes_document(c) for c in inputs]
+        doc["health"] = health_document(health)
+        json.dump(doc, sys.stdout, indent=1)
         sys.stdout.write("\n")
     else:
-        print_report(setup, result, X.shape[0], args.worst)
-    return 0 if result.passed else 1
+        print_report(setup, result, X.shape[0], args.worst, inputs)
+        print_health(health)
+    return 0 if passed else 1
 
 
 def layer_summary(net: Network) -> list[dict[str, Any]]:
@@ -114,7 +134,8 @@ def _finite_or_none(value: float) -> float | None:
     return float(value) if np.isfinite(value) else None
 
 
-def print_report(setup: Setup, result: CheckResult, n_samples: int, worst: int | None) -> None:
+def print_report(setup: Setup, result: CheckResult, n_samples: int, worst: int | None,
+                 inputs: list[InputSlopeCheck] | None = None) -> None:
     net = setup.network
     names = net.layout.names
     order = np.arange(net.n_params)
@@ -138,12 +159,21 @@ def print_report(setup: Setup, result: CheckResult, n_samples: int, worst: int |
         )
     counts = result.counts
     w = result.worst()
+    inputs = inputs or []
+    if inputs:
+        print_input_slopes(inputs)
     out.write("\n")
     out.write(f"cost        {result.cost:.10g}\n")
     out.write("verdicts    " + ", ".join(f"{counts[v]} {v}" for v in VERDICTS) + "\n")
     out.write(f"worst       {names[w]} (relative error {result.rel_error[w]:.2e}, {result.verdict[w]})\n")
-    out.write(f"result      {'PASS: every slope agrees' if result.passed else 'FAIL: some slopes disagree'}"
-              "\n")
+    bad_inputs = [f"L{c.layer + 1}" for c in inputs if not c.passed]
+    if not result.passed:
+        verdict = "FAIL: some slopes disagree"
+    elif bad_inputs:
+        verdict = f"FAIL: the input slopes (dX) of custom layer {', '.join(bad_inputs)} disagree"
+    else:
+        verdict = "PASS: every slope agrees"
+    out.write(f"result      {verdict}\n")
 
 
 _MARKS = {"agree": "ok  agree", "doubtful": "?   doubtful", "disagree": "XX  disagree", "kink": "~   kink"}
@@ -151,3 +181,90 @@ _MARKS = {"agree": "ok  agree", "doubtful": "?   doubtful", "disagree": "XX  dis
 
 def _mark(verdict: str) -> str:
     return _MARKS.get(verdict, verdict)
+
+
+# -- custom layers' input slopes and layer health ------------------------------------------------
+
+
+def print_input_slopes(checks: list[InputSlopeCheck]) -> None:
+    """One line per custom layer: how its backward's dX compares with numeric input slopes."""
+    out = sys.stdout
+    first = checks[0]
+    out.write(f"\ninput slopes of custom layers ({first.samples.size} samples each, {first.method} "
+              f"differences, h = {first.h:.3g})\n")
+    for c in checks:
+        counts = c.counts
+        sample, entry = c.worst()
+        out.write(
+            f"L{c.layer + 1}  {c.label}: {c.analytic.size} entries of dX: "
+            + ", ".join(f"{counts[v]} {v}" for v in VERDICTS)
+            + f"; worst relative error {c.worst_error:.2e} (sample {sample}, input {entry})  "
+            + ("ok" if c.passed else "XX  backward's dX disagrees")
+            + "\n"
+        )
+
+
+def input_slopes_document(c: InputSlopeCheck) -> dict[str, Any]:
+    """The JSON form of one custom layer's input-slope check."""
+    sample, entry = c.worst()
+    return {
+        "layer": c.layer + 1,
+        "label": c.label,
+        "samples": c.samples.tolist(),
+        "counts": c.counts,
+        "passed": c.passed,
+        "worst": {"sample": sample, "input": entry, "relative_error": c.worst_error},
+        "analytic": c.analytic.tolist(),
+        "numeric": c.numeric.tolist(),
+    }
+
+
+def print_health(health: HealthReport) -> None:
+    """Layer health as a table, then how slopes change on the way back."""
+    out = sys.stdout
+    width = max(len(entry.label) for entry in health.layers)
+    out.write(f"\nlayer health at rate {health.rate:g} (an update/weight ratio near {RATIO_TYPICAL:.0e} per "
+              "step is common practice)\n")
+    header = (f"{'layer':<6} {'type'.ljust(width)}  {'|weights|':>10}  {'|slopes|':>10}  "
+              f"{'update/weight':>21}  {'saturated':>9}  {'dead ReLU':>9}  {'error rms':>9}  {'vs next':>8}")
+    out.write(header + "\n" + "-" * len(header) + "\n")
+    for e in health.layers:
+        ratio = "-" if e.ratio_verdict == "" else f"{e.update_ratio:.1e} {e.ratio_verdict}"
+        saturated = "-" if e.saturation is None else f"{e.saturated_units.size}/{e.saturation.size}"
+        dead = "-" if e.active is None else f"{e.dead_units.size}/{e.active.size}"
+        change = "-" if e.signal_change != e.signal_change else f"{e.signal_change:.3g}"
+        out.write(f"{'L' + str(e.index + 1):<6} {e.label.ljust(width)}  {e.weight_norm:>10.3e}  "
+                  f"{e.slope_norm:>10.3e}  {ratio:>21}  {saturated:>9}  {dead:>9}  {e.signal_rms:>9.2e}  "
+                  f"{change:>8}\n")
+    if health.trend in ("single layer", "no signal"):
+        out.write(f"slopes on the way back: {health.trend}\n")
+    else:
+        out.write(f"slopes on the way back: {health.trend} (first layer's error signal is "
+                  f"{health.travel:.3g} x the last layer's)\n")
+
+
+def health_document(health: HealthReport) -> dict[str, Any]:
+    """The JSON form of the layer health."""
+    layers = []
+    for e in health.layers:
+        layers.append({
+            "layer": e.index + 1,
+            "label": e.label,
+            "weight_norm": e.weight_norm,
+            "slope_norm": e.slope_norm,
+            "update_ratio": _finite_or_none(e.update_ratio),
+            "ratio_verdict": e.ratio_verdict or None,
+            "saturated_fraction": _finite_or_none(e.saturated_fraction),
+            "saturated_units": e.saturated_units.tolist(),
+            "dead_fraction": _finite_or_none(e.dead_fraction),
+            "dead_units": e.dead_units.tolist(),
+            "signal_rms": e.signal_rms,
+            "signal_change": _finite_or_none(e.signal_change),
+        })
+    return {
+        "rate": health.rate,
+        "ratio_rule_of_thumb": RATIO_TYPICAL,
+        "trend": health.trend,
+        "travel": _finite_or_none(health.travel),
+        "layers": layers,
+    }
