@@ -1,0 +1,151 @@
+"""``stepper explain``: one weight's slope taken apart into error signal, activation slope and input."""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from stepper.commands.common import add_model_argument, load, positive_int, sample_limit
+from stepper.commands.slice import weight_index, weights_and_rate
+from stepper.core.breakdown import Breakdown, slope_breakdown
+from stepper.errors import UsageError
+from stepper.formats.model_file import Setup
+
+
+def add_parser(subs: Any) -> None:
+    p = subs.add_parser(
+        "explain",
+        help="take one weight's slope apart: error signal x activation slope x input, per sample",
+        description="Show the factors whose product, summed over samples, is one weight's slope: the "
+        "error signal at the unit it feeds, that unit's activation slope, and the input it carries; "
+        "averaged over samples and for one sample, with the usual reasons a slope vanishes or explodes.",
+    )
+    add_model_argument(p)
+    p.add_argument("weight", help="the weight's name, e.g. L1.W[0,2] or L2.b[0]")
+    p.add_argument("--sample", type=int, default=None, metavar="K",
+                   help="show training sample K (0-based) on its own (default: the one that "
+                   "contributes most)")
+    p.add_argument("--samples", type=positive_int, default=None, metavar="N",
+                   help="use only the first N training samples")
+    p.add_argument("--checkpoint", type=Path, default=None, metavar="PATH",
+                   help="take the weights from a checkpoint instead of the model's start")
+    p.add_argument("--json", action="store_true", help="print one JSON document instead of text")
+    p.set_defaults(handler=handle)
+
+
+def handle(args: argparse.Namespace) -> int:
+    setup = load(args)
+    theta, _ = weights_and_rate(setup, args.checkpoint, None)
+    index = weight_index(setup, args.weight)
+    X, Y = sample_limit(setup, args.samples)
+    if args.sample is not None and not 0 <= args.sample < X.shape[0]:
+        raise UsageError(f"--sample {args.sample}: the training set has samples 0 to {X.shape[0] - 1}")
+    try:
+        result = slope_breakdown(setup.network, theta, X, Y, index, args.sample)
+    except ValueError as exc:
+        raise UsageError(str(exc)) from None
+    name = setup.network.layout.names[index]
+    if args.json:
+        json.dump(explain_document(setup, name, result, theta[index]), sys.stdout, indent=1)
+        sys.stdout.write("\n")
+    else:
+        sys.stdout.write(report(setup, name, result, float(theta[index])))
+    return 0
+
+
+def describe(setup: Setup, b: Breakdown) -> str:
+    """``weight from input 2 (weekday) to unit 3 of layer 1 (dense 4->6 tanh)``."""
+    layer = setup.network.layers[b.layer]
+    if b.source is None:
+        what = f"bias of unit {b.unit}"
+    elif b.layer == 0:
+        what = f"weight from input {b.source} ({setup.data.input_names[b.source]}) to unit {b.unit}"
+    else:
+        what = f"weight from unit {b.source} of layer {b.layer} to unit {b.unit}"
+    return f"{what} of layer {b.layer + 1} ({layer.label})"
+
+
+def _factor_names(setup: Setup, b: Breakdown) -> tuple[str, str, str]:
+    error = f"dC/dZ[{b.unit}]" if b.through_z else f"dC/dA[{b.unit}]"
+    slope = "1 (at Z)" if b.through_z else f"{b.activation}'(Z[{b.unit}])"
+    if b.source is None:
+        source = "1 (bias)"
+    elif b.layer == 0:
+        source = f"input {b.source}"
+    else:
+        source = f"A{b.layer}[{b.source}]"
+    return error, slope, source
+
+
+def report(setup: Setup, name: str, b: Breakdown, value: float) -> str:
+    """The text form: the factors averaged, for one sample, their sum against the slope, and flags."""
+    e_name, f_name, a_name = _factor_names(setup, b)
+    n = b.n_samples
+    mean = b.means()
+    one = b.at(b.sample)
+    w = max(16, len(e_name), len(f_name), len(a_name))
+
+    def row(label: str, values: tuple[float, float, float, float]) -> str:
+        return f"{label:<22}" + "".join(f"{v: .{6}e}".rjust(w + 2) for v in values)
+
+    lines = [
+        f"{name} in {setup.name}: {describe(setup, b)}",
+        f"value {value:.6g}, {n} samples",
+        "",
+        "slope = sum over samples of  error signal x activation slope x input",
+        "",
+        f"{'':<22}" + "".join(h.rjust(w + 2) for h in (e_name, f_name, a_name, "product")),
+        row("mean over samples", mean),
+        row(f"sample {b.sample}" + (" (largest)" if b.sample == _largest(b) else ""), one),
+        "",
+        f"sum of the {n} products   {b.total: .12e}",
+        f"analytic slope (table)    {b.analytic: .12e}",
+        "",
+    ]
+    if b.through_z:
+        last = b.layer == len(setup.network.layers) - 1
+        reason = ("the output activation is computed together with its loss, from Z"
+                  if last and setup.network.fused is not None else f"{b.activation} couples its units")
+        lines.append(f"The error signal is taken at the unit's input Z and the activation factor is 1: {reason}.")
+    else:
+        lines.append(f"The error signal is the cost's slope w.r.t. unit {b.unit}'s output (it carries the 1/n "
+                     "of the average over samples).")
+    if b.source is not None and b.layer == 0:
+        lines.append("Inputs are as the network sees them (standardized when the model file says so).")
+    lines.append("")
+    if b.flags:
+        lines.append("Why this slope may be small or large:")
+        lines.extend(f"  - {flag.text}" for flag in b.flags)
+    else:
+        lines.append("No usual cause of a vanishing or exploding slope found (saturated or dead unit, "
+                     "input near zero or large, error signal shrunk or grown, samples cancelling).")
+    lines.append("")
+    return "\n".join(lines)
+
+
+def _largest(b: Breakdown) -> int:
+    return int(np.argmax(np.abs(b.products)))
+
+
+def explain_document(setup: Setup, name: str, b: Breakdown, value: float) -> dict[str, Any]:
+    """The JSON form of a breakdown."""
+    e, f, a, p = b.means()
+    se, sf, sa, sp = b.at(b.sample)
+    return {
+        "model": {"name": setup.name, "file": str(setup.path)},
+        "weight": name,
+        "description": describe(setup, b),
+        "value": float(value),
+        "samples": b.n_samples,
+        "through_z": b.through_z,
+        "mean": {"error": e, "activation_slope": f, "input": a, "product": p},
+        "sample": {"index": b.sample, "error": se, "activation_slope": sf, "input": sa, "product": sp},
+        "sum_of_products": b.total,
+        "analytic": b.analytic,
+        "flags": [{"code": flag.code, "text": flag.text} for flag in b.flags],
+    }

@@ -1,0 +1,220 @@
+"""``stepper slice``: the cost along one weight, its tangent, curvature and what they say about the rate."""
+
+from __future__ import annotations
+
+import argparse
+import json
+import math
+import sys
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from stepper.commands.common import add_model_argument, load, positive_float, positive_int, sample_limit
+from stepper.core.slice import DEFAULT_POINTS, CostSlice, cost_slice
+from stepper.errors import UsageError
+from stepper.formats.model_file import Setup
+
+#: Rate used when neither --rate nor a checkpoint gives one (common practice, no published source).
+DEFAULT_RATE = 0.1
+PLOT_SIZE = (76, 24)
+
+SOURCE = ('LeCun, Bottou, Orr & Mueller, "Efficient BackProp" (1998), section 5.1 on the optimal '
+          "learning rate (recalled from memory)")
+
+_MEANING = {
+    "short": "below 1: one step lands short of this weight's minimum (quadratic model)",
+    "overshoots": "between 1 and 2: one step lands past this weight's minimum; repeated steps "
+                  "oscillate around it, closing in only while rate x curvature stays below 2",
+    "diverges": "above 2: one step lands farther from this weight's minimum than it started; "
+                "repeated steps along this weight diverge",
+    "no minimum": "the curvature is not positive: the cost curves down or is flat here, so the "
+                  "quadratic model sets no limit on the rate along this weight",
+}
+
+
+def add_parser(subs: Any) -> None:
+    p = subs.add_parser(
+        "slice",
+        help="sweep one weight with the others fixed: cost, tangent, curvature, and the rate it allows",
+        description="Hold every other weight fixed and sweep one weight around its value. Prints the "
+        "cost, the analytic slope (the tangent), the curvature (a numeric second derivative) and what "
+        "rate x curvature implies for plain gradient descent; --plot writes the picture as text.",
+    )
+    add_model_argument(p)
+    p.add_argument("weight", help="the weight's name, e.g. L1.W[0,2] or L2.b[0]")
+    p.add_argument("--rate", type=positive_float, default=None, metavar="R",
+                   help=f"descent rate for the step and the verdict (default {DEFAULT_RATE}, "
+                   "or the checkpoint's)")
+    p.add_argument("--span", type=positive_float, default=None, metavar="S",
+                   help="sweep the weight over value +- S (default: max(1, |value|, 1.5 |rate x slope|))")
+    p.add_argument("--points", type=_at_least_two, default=DEFAULT_POINTS, metavar="N",
+                   help=f"number of sweep points (default {DEFAULT_POINTS})")
+    p.add_argument("--samples", type=positive_int, default=None, metavar="N",
+                   help="use only the first N training samples")
+    p.add_argument("--checkpoint", type=Path, default=None, metavar="PATH",
+                   help="take the weights (and rate) from a checkpoint instead of the model's start")
+    p.add_argument("--plot", default=None, metavar="FILE",
+                   help="write the plot as plain text to FILE ('-' for standard output)")
+    p.add_argument("--size", type=_size, default=PLOT_SIZE, metavar="WxH",
+                   help=f"plot size in characters (default {PLOT_SIZE[0]}x{PLOT_SIZE[1]})")
+    p.add_argument("--json", action="store_true", help="print one JSON document instead of text")
+    p.set_defaults(handler=handle)
+
+
+def handle(args: argparse.Namespace) -> int:
+    setup = load(args)
+    theta, rate = weights_and_rate(setup, args.checkpoint, args.rate)
+    index = weight_index(setup, args.weight)
+    X, Y = sample_limit(setup, args.samples)
+    result = cost_slice(setup.network, theta, X, Y, index, rate, args.span, args.points)
+    name = setup.network.layout.names[index]
+    plot = render_plot(result, name, *args.size) if args.plot is not None else None
+    if args.json:
+        json.dump(slice_document(setup, name, result, X.shape[0]), sys.stdout, indent=1)
+        sys.stdout.write("\n")
+    else:
+        sys.stdout.write(report(setup, name, result, X.shape[0]))
+    if plot is not None:
+        if args.plot == "-":
+            if args.json:
+                raise UsageError("--plot - and --json both write to standard output; give --plot a file name")
+            sys.stdout.write("\n" + plot + "\n")
+        else:
+            try:
+                Path(args.plot).write_text(plot + "\n", encoding="utf-8")
+            except OSError as exc:
+                raise UsageError(f"--plot {args.plot}: cannot be written ({exc.strerror})") from None
+    return 0
+
+
+# -- shared with stepper explain ---------------------------------------------------------------
+
+
+def weight_index(setup: Setup, text: str) -> int:
+    """Flat index of the weight called ``text``; UsageError naming what exists if there is none."""
+    layout = setup.network.layout
+    try:
+        return layout.lookup(text)
+    except KeyError:
+        arrays = ", ".join(f"{b.prefix} {'x'.join(str(s) for s in b.shape)}" for b in layout.blocks)
+        raise UsageError(f"no weight named {text!r} in {setup.path} (its arrays: {arrays}; "
+                         "a name looks like L1.W[0,2] or L1.b[0])") from None
+
+
+def weights_and_rate(setup: Setup, checkpoint: Path | None, rate: float | None) -> tuple[np.ndarray[Any, Any], float]:
+    """The model's starting weights, or a checkpoint's; the rate given, the checkpoint's, or the default."""
+    theta = setup.theta0
+    saved_rate: float | None = None
+    if checkpoint is not None:
+        from stepper.formats.checkpoint import load_checkpoint
+
+        data = load_checkpoint(checkpoint, setup.network.layout)
+        theta = data.theta
+        value = data.meta.get("rate")
+        if isinstance(value, (int, float)) and math.isfinite(value) and value > 0:
+            saved_rate = float(value)
+    chosen = rate if rate is not None else saved_rate if saved_rate is not None else DEFAULT_RATE
+    return theta, chosen
+
+
+# -- output ------------------------------------------------------------------------------------
+
+
+def report(setup: Setup, name: str, s: CostSlice, n_samples: int) -> str:
+    """The text report: the same figures as the JSON document."""
+    low_w, low_c = s.lowest
+    lines = [
+        f"{name} in {setup.name}: every other weight held fixed, {n_samples} samples",
+        "",
+        f"value             {s.value:.6g}",
+        f"cost              {s.cost:.10g}",
+        f"analytic slope    {s.slope:.6e}   (the tangent's slope)",
+        f"curvature         {s.curvature:.6e}   (numeric second derivative, step {s.curvature_step:.2g})",
+        f"rate              {s.rate:g}",
+        f"rate x curvature  {s.rate_curvature:.4g}   {_MEANING[s.regime]}",
+    ]
+    if s.curvature > 0:
+        lines.append(f"best rate         {s.best_rate:.4g} (= 1 / curvature); above {2 * s.best_rate:.4g} "
+                     "(= 2 / curvature) steps along this weight diverge")
+    lines += [
+        f"one step          {s.value:.6g} -> {s.landing:.6g}: cost {s.cost:.10g} -> {s.landing_cost:.10g} "
+        f"(the quadratic model predicts {s.model_cost:.10g})",
+        f"sweep             {s.points.size} points over [{s.points[0]:.6g}, {s.points[-1]:.6g}]; "
+        f"lowest cost {low_c:.10g} at {low_w:.6g}",
+        "",
+        f"source: {SOURCE}",
+        "",
+    ]
+    return "\n".join(lines)
+
+
+def slice_document(setup: Setup, name: str, s: CostSlice, n_samples: int) -> dict[str, Any]:
+    """The JSON form of a slice."""
+    low_w, low_c = s.lowest
+    return {
+        "model": {"name": setup.name, "file": str(setup.path)},
+        "weight": name,
+        "samples": n_samples,
+        "value": s.value,
+        "cost": s.cost,
+        "slope": s.slope,
+        "curvature": s.curvature,
+        "curvature_step": s.curvature_step,
+        "rate": s.rate,
+        "rate_x_curvature": s.rate_curvature,
+        "regime": s.regime,
+        "best_rate": s.best_rate if math.isfinite(s.best_rate) else None,
+        "step": {"to": s.landing, "cost": s.landing_cost, "model_cost": s.model_cost},
+        "lowest": {"value": low_w, "cost": low_c},
+        "sweep": {"values": s.points.tolist(), "costs": s.costs.tolist()},
+        "source": SOURCE,
+    }
+
+
+def render_plot(s: CostSlice, name: str, width: int = PLOT_SIZE[0], height: int = PLOT_SIZE[1]) -> str:
+    """The slice as plain text: the cost curve, the tangent, the current point and the step's landing.
+
+    The tangent is drawn only where it stays within the cost curve's range, so
+    a steep tangent does not squash the curve.
+    """
+    import plotext  # type: ignore[import-untyped]
+
+    fig = plotext.figure
+    fig.clear()
+    fig.plot_size(width, height)
+    fig.title(f"cost along {name}")
+    fig.label(name, axis="x")
+    lo, hi = float(np.min(s.costs)), float(np.max(s.costs))
+    pad = 0.05 * (hi - lo) if hi > lo else max(abs(hi), 1.0) * 1e-3
+    fig.draw(fig.signal(s.points.tolist(), s.costs.tolist()).lines().label("cost"))
+    keep = (s.tangent >= lo - pad) & (s.tangent <= hi + pad)
+    if np.count_nonzero(keep) >= 2:
+        fig.draw(fig.signal(s.points[keep].tolist(), s.tangent[keep].tolist()).lines().label("tangent"))
+    if s.points[0] <= s.landing <= s.points[-1]:
+        fig.draw(fig.signal([s.landing], [s.landing_cost], marker="x").label(f"step, rate {s.rate:g}"))
+    fig.draw(fig.signal([s.value], [s.cost], marker="o").label("now"))
+    fig.ruler("y").lim(lo - pad, hi + pad)
+    fig.legend(x=width // 2, y=0, ha="center", va="top")
+    text: str = fig.build().string(colorless=True)
+    fig.clear()
+    return text.rstrip()
+
+
+def _at_least_two(text: str) -> int:
+    value = positive_int(text)
+    if value < 2:
+        raise argparse.ArgumentTypeError(f"{text!r} must be at least 2")
+    return value
+
+
+def _size(text: str) -> tuple[int, int]:
+    parts = text.lower().split("x")
+    try:
+        width, height = (int(p) for p in parts)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a size like 76x24") from None
+    if width < 30 or height < 10:
+        raise argparse.ArgumentTypeError(f"{text!r} is too small (at least 30x10)")
+    return width, height

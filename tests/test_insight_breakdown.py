@@ -1,0 +1,195 @@
+"""The slope breakdown: its factors multiply back to the slope, and each factor is what it says."""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import autograd.numpy as anp
+import numpy as np
+import pytest
+from autograd import grad
+
+from stepper import cli
+from stepper.core.activations import ACTIVATIONS
+from stepper.core.breakdown import slope_breakdown
+from stepper.core.layers import Dense
+from stepper.core.network import Network
+
+SCENARIOS = Path(__file__).resolve().parents[1] / "scenarios"
+
+# (hidden activation, output activation, loss): every activation in a hidden layer,
+# and the output pairs that are fused with their loss, a coupled softmax that is
+# not, and plain ones.
+OUTPUTS = [
+    ("sigmoid", "binary_cross_entropy"),       # fused: broken down at Z
+    ("softmax", "categorical_cross_entropy"),  # fused: broken down at Z
+    ("softmax", "mean_squared_error"),         # coupled units, not fused: at Z too
+    ("identity", "half_squared_error"),
+    ("tanh", "mean_squared_error"),
+]
+
+
+def data_for(net: Network, seed: int) -> tuple[np.ndarray, np.ndarray]:
+    rng = np.random.default_rng(seed)
+    X = rng.normal(0.0, 1.0, (17, net.n_inputs))
+    Y = np.eye(net.n_outputs)[rng.integers(0, net.n_outputs, 17)]
+    return X, Y
+
+
+def relative_to_size(total: float, analytic: float, parts: np.ndarray) -> float:
+    # A sum of n terms is exact to about n u sum|terms| (floating-point summation;
+    # Higham, Accuracy and Stability of Numerical Algorithms, 2nd ed., 2002,
+    # section 4.2, recalled from memory), so the gap is measured against the terms' size.
+    return abs(total - analytic) / max(abs(analytic), float(np.sum(np.abs(parts))), 1e-300)
+
+
+@pytest.mark.parametrize("hidden", sorted(ACTIVATIONS))
+@pytest.mark.parametrize("output, loss", OUTPUTS)
+def test_factors_multiply_back_to_the_analytic_slope(hidden: str, output: str, loss: str, dense_net) -> None:
+    for seed in range(3):
+        net, theta = dense_net(3, [(5, "tanh"), (4, hidden), (3, output)], loss, seed=seed)
+        X, Y = data_for(net, seed)
+        for index in range(net.n_params):
+            b = slope_breakdown(net, theta, X, Y, index)
+            np.testing.assert_array_equal(b.products, b.error * b.act_slope * b.inputs)
+            assert relative_to_size(b.total, b.analytic, b.products) < 1e-12, net.layout.names[index]
+
+
+def test_each_factor_matches_autograd() -> None:
+    # Reference: the autograd package differentiates the same network written out again.
+    # The error signal at hidden unit j is dC/dA1[:, j]; the activation slope is
+    # tanh'(Z1) = 1 - tanh(Z1)^2 (a textbook derivative); the input is X[:, i].
+    rng = np.random.default_rng(11)
+    net = Network(3, [Dense(3, 4, ACTIVATIONS["tanh"]), Dense(4, 2, ACTIVATIONS["sigmoid"])],
+                  "half_squared_error")
+    theta = rng.normal(0.0, 0.8, net.n_params)
+    X = rng.normal(size=(9, 3))
+    Y = rng.uniform(size=(9, 2))
+    p = net.views(theta)
+    W1, b1, W2, b2 = p[0]["W"], p[0]["b"], p[1]["W"], p[1]["b"]
+    Z1 = X @ W1 + b1
+
+    def cost_from_hidden(A1: np.ndarray) -> float:
+        out = 1.0 / (1.0 + anp.exp(-(anp.dot(A1, W2) + b2)))
+        return 0.5 * anp.sum((out - Y) ** 2) / X.shape[0]
+
+    def cost_of_W1(W: np.ndarray) -> float:
+        return cost_from_hidden(anp.tanh(anp.dot(X, W) + b1))
+
+    dA1 = grad(cost_from_hidden)(np.tanh(Z1))
+    dW1 = grad(cost_of_W1)(W1)
+    for i in range(3):
+        for j in range(4):
+            b = slope_breakdown(net, theta, X, Y, net.layout.lookup(f"L1.W[{i},{j}]"), sample=2)
+            np.testing.assert_allclose(b.error, dA1[:, j], rtol=1e-12, atol=1e-16)
+            np.testing.assert_allclose(b.act_slope, 1.0 - np.tanh(Z1[:, j]) ** 2, rtol=1e-12)
+            np.testing.assert_array_equal(b.inputs, X[:, i])
+            assert b.total == pytest.approx(dW1[i, j], rel=1e-12)
+            assert b.at(2) == (b.error[2], b.act_slope[2], X[2, i], b.products[2])
+
+
+def test_bias_input_is_one_and_fused_output_is_taken_at_z() -> None:
+    # Softmax with categorical cross-entropy: dC/dZ = (softmax(Z) - y) / n for one-hot
+    # targets (a textbook result, e.g. Bishop, Pattern Recognition and Machine
+    # Learning, 2006, eq. 4.109, recalled from memory).
+    rng = np.random.default_rng(5)
+    net = Network(2, [Dense(2, 3, ACTIVATIONS["softmax"])], "categorical_cross_entropy")
+    theta = rng.normal(size=net.n_params)
+    X = rng.normal(size=(6, 2))
+    Y = np.eye(3)[[0, 1, 2, 0, 1, 2]]
+    Z = X @ theta[:6].reshape(2, 3) + theta[6:]
+    P = np.exp(Z) / np.exp(Z).sum(axis=1, keepdims=True)
+    b = slope_breakdown(net, theta, X, Y, net.layout.lookup("L1.b[1]"))
+    assert b.through_z and b.kind == "bias" and b.source is None
+    np.testing.assert_array_equal(b.inputs, np.ones(6))
+    np.testing.assert_array_equal(b.act_slope, np.ones(6))
+    np.testing.assert_allclose(b.error, (P[:, 1] - Y[:, 1]) / 6, rtol=1e-12)
+
+
+def flag_codes(net: Network, theta: np.ndarray, X: np.ndarray, Y: np.ndarray, name: str) -> set[str]:
+    return {f.code for f in slope_breakdown(net, theta, X, Y, net.layout.lookup(name)).flags}
+
+
+def test_flags_a_saturated_unit_and_a_dead_relu() -> None:
+    rng = np.random.default_rng(0)
+    X = rng.normal(size=(50, 2))
+    Y = rng.normal(size=(50, 1))
+    # tanh'(z) = 1 - tanh(z)^2 < 0.01 once |z| > 3 (textbook derivative); a bias of 40
+    # puts unit 0 there on every sample.
+    net = Network(2, [Dense(2, 2, ACTIVATIONS["tanh"]), Dense(2, 1, ACTIVATIONS["identity"])],
+                  "mean_squared_error")
+    theta = np.array([0.5, 0.1, -0.3, 0.2, 40.0, 0.0, 1.0, 1.0, 0.0])
+    assert "saturated" in flag_codes(net, theta, X, Y, "L1.W[0,0]")
+    assert "saturated" not in flag_codes(net, theta, X, Y, "L1.W[0,1]")
+    # A ReLU whose input is negative on every sample passes no slope back; the weight
+    # it feeds onward sees an input that is exactly zero.
+    net = Network(2, [Dense(2, 2, ACTIVATIONS["relu"]), Dense(2, 1, ACTIVATIONS["identity"])],
+                  "mean_squared_error")
+    theta = np.array([0.5, 0.1, -0.3, 0.2, -40.0, 0.0, 1.0, 1.0, 0.0])
+    b = slope_breakdown(net, theta, X, Y, net.layout.lookup("L1.W[1,0]"))
+    assert "dead" in {f.code for f in b.flags} and b.analytic == 0.0
+    assert "input_near_zero" in flag_codes(net, theta, X, Y, "L2.W[0,0]")
+    assert not {"dead", "input_near_zero"} & flag_codes(net, theta, X, Y, "L2.W[1,0]")
+
+
+def test_flags_large_inputs_and_cancelling_samples() -> None:
+    net = Network(1, [Dense(1, 1, ACTIVATIONS["identity"])], "mean_squared_error")
+    X = np.array([[900.0], [1100.0]])
+    Y = np.array([[1.0], [2.0]])
+    assert "input_large" in flag_codes(net, np.array([0.001, 0.0]), X, Y, "L1.W[0,0]")
+    # Residuals +1 and -1 on equal inputs: the two samples' parts cancel exactly.
+    X = np.array([[1.0], [1.0]])
+    Y = np.array([[0.0], [2.0]])
+    b = slope_breakdown(net, np.array([1.0, 0.0]), X, Y, 0)
+    assert b.analytic == 0.0 and "cancelling" in {f.code for f in b.flags}
+
+
+def test_flags_an_error_signal_that_shrank_on_the_way_back() -> None:
+    # Each sigmoid layer multiplies the backward signal by sigmoid' <= 1/4 times the
+    # weights (a textbook bound); eight layers of small weights shrink it far below 1e-3.
+    layers = [Dense(2, 2, ACTIVATIONS["sigmoid"]) for _ in range(8)] + [Dense(2, 1, ACTIVATIONS["identity"])]
+    net = Network(2, layers, "mean_squared_error")
+    theta = np.random.default_rng(2).normal(0.0, 0.3, net.n_params)
+    X = np.random.default_rng(3).normal(size=(20, 2))
+    Y = np.ones((20, 1))
+    assert "signal_vanished" in flag_codes(net, theta, X, Y, "L1.W[0,0]")
+    assert "signal_vanished" not in flag_codes(net, theta, X, Y, "L9.W[0,0]")
+
+
+def test_custom_layer_parameters_are_refused(tmp_path: Path) -> None:
+    from stepper.formats.model_file import load_setup
+
+    setup = load_setup(SCENARIOS / "hive-gate-fixed" / "model.toml")
+    index = setup.network.layout.lookup("L2.V[0,0]")
+    with pytest.raises(ValueError, match="custom layer"):
+        slope_breakdown(setup.network, setup.theta0, setup.data.X, setup.data.Y, index)
+
+
+# -- the command ---------------------------------------------------------------------------------
+
+
+def test_explain_command_shows_factors_and_their_sum(capsys) -> None:
+    code = cli.main(["explain", str(SCENARIOS / "bakery-demand"), "L1.W[3,2]", "--sample", "5"])
+    out = capsys.readouterr().out
+    assert code == 0
+    assert "weight from input 3 (footfall) to unit 2 of layer 1 (dense 4->6 tanh)" in out
+    assert "sample 5" in out and "mean over samples" in out
+    total = next(line for line in out.splitlines() if line.startswith("sum of the"))
+    table = next(line for line in out.splitlines() if line.startswith("analytic slope (table)"))
+    assert float(total.split()[-1]) == pytest.approx(float(table.split()[-1]), rel=1e-11)
+
+
+def test_explain_command_json_and_its_errors(capsys) -> None:
+    model = SCENARIOS / "hive-gate-fixed" / "model.toml"
+    assert cli.main(["explain", str(model), "L3.b[0]", "--json"]) == 0
+    doc = json.loads(capsys.readouterr().out)
+    assert doc["sum_of_products"] == pytest.approx(doc["analytic"], rel=1e-12)
+    assert doc["mean"]["input"] == 1.0
+    assert cli.main(["explain", str(model), "L2.W[0,0]"]) == 2
+    assert capsys.readouterr().err == (
+        "stepper: L2.W[0,0] belongs to a custom layer (custom 5->3 gate.py:GatedUnits), "
+        "which has no units to break its slope down by\n"
+    )
+    assert cli.main(["explain", str(model), "L1.W[0,0]", "--sample", "999"]) == 2
+    assert capsys.readouterr().err == "stepper: --sample 999: the training set has samples 0 to 175\n"
