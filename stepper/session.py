@@ -635,14 +635,20 @@ class Session:
         self._log({"op": "save", "path": str(target)})
         return target
 
-    def load_checkpoint(self, path: Path | str) -> None:
+    def load_checkpoint(self, path: Path | str, expect_sha256: str | None = None) -> None:
         """Restore weights (bit for bit) and state from a checkpoint; undoable.
 
         A checkpoint that does not fit the model is refused with a CheckpointError
-        saying what differs; the session is then unchanged.
+        saying what differs; the session is then unchanged. With ``expect_sha256``
+        (a replay), a file whose bytes have changed since is refused the same way.
         """
         path = Path(path)
         data = load_checkpoint(path, self.net.layout)
+        if expect_sha256 is not None and data.sha256 != expect_sha256:
+            raise CheckpointError(
+                f"{path}: has changed since the journal recorded loading it (its SHA-256 differs), "
+                "so the replay cannot rebuild the same state from it (use --force to replay anyway)"
+            )
         meta = data.meta
         try:
             rule = str(meta["rule"])
@@ -686,7 +692,7 @@ class Session:
             self.batch_rng.bit_generator.state = rng_state
         self.history[:] = history
         after = {**self._snapshot(fields), "history": (0, list(history))}
-        self._commit(_Change(f"load {path.name}", before, after), {"op": "load", "path": str(path.resolve())})
+        self._commit(_Change(f"load {path.name}", before, after), {"op": "load", "path": str(path.resolve()), "sha256": data.sha256})
         self.dirty = False
         self.last_checkpoint = path
         note = "" if meta.get("model_digest") == self.setup.digest else " (the model file has changed since it was saved)"
@@ -694,8 +700,12 @@ class Session:
 
     # -- journal replay ------------------------------------------------------------------------
 
-    def apply(self, entry: dict[str, Any]) -> None:
-        """Carry out one journal entry (as written by the operations above)."""
+    def apply(self, entry: dict[str, Any], force: bool = False) -> None:
+        """Carry out one journal entry (as written by the operations above).
+
+        A checkpoint loaded by the entry must still hold the bytes it held then
+        (its SHA-256 is in the entry), unless ``force``.
+        """
         op = entry.get("op")
         index = self.net.layout.index_of
         try:
@@ -726,7 +736,8 @@ class Session:
             elif op == "redo":
                 self.redo()
             elif op == "load":
-                self.load_checkpoint(Path(entry["path"]))
+                digest = entry.get("sha256")
+                self.load_checkpoint(Path(entry["path"]), None if force or digest is None else str(digest))
             elif op == "save":
                 self.dirty = False
             else:

@@ -24,7 +24,8 @@ def add_parser(subs: Any) -> None:
     p.add_argument("--model", type=Path, default=None,
                    help="model file to start from (default: the one the journal names)")
     p.add_argument("--save", type=Path, default=None, metavar="PATH", help="write the rebuilt state as a checkpoint")
-    p.add_argument("--force", action="store_true", help="replay even if the model file has changed")
+    p.add_argument("--force", action="store_true",
+                   help="replay even if the model file or a loaded checkpoint has changed")
     p.set_defaults(handler=handle)
 
 
@@ -44,7 +45,7 @@ def replay(journal: Path, model: Path | None = None, force: bool = False) -> Ses
     except (AttributeError, TypeError, ValueError, StepperError) as exc:
         raise CheckpointError(f"{journal}: line 1: the starting settings are not valid ({exc})") from None
     for entry in entries:
-        session.apply(entry)
+        session.apply(entry, force)
     return session
 
 

@@ -18,6 +18,7 @@ transposed or strided arrays without error and read them back wrong).
 
 from __future__ import annotations
 
+import hashlib
 import json
 import struct
 from dataclasses import dataclass, field
@@ -45,11 +46,13 @@ class CheckpointData:
         theta: parameters ``(n_params,)``.
         rule_arrays: the rule's memory, each ``(n_params,)``.
         meta: the JSON metadata (see module docstring).
+        sha256: SHA-256 of the file's bytes, when read from a file (journals record it).
     """
 
     theta: Array
     rule_arrays: dict[str, Array] = field(default_factory=dict)
     meta: dict[str, Any] = field(default_factory=dict)
+    sha256: str = ""
 
 
 def encode(layout: ParamLayout, data: CheckpointData) -> bytes:
@@ -93,14 +96,21 @@ def read_header(path: Path, raw: bytes) -> dict[str, Any]:
 
 def read_tensors(path: Path) -> tuple[dict[str, Array], dict[str, Any]]:
     """All tensors of a safetensors file, and its header; errors name the file."""
-    from safetensors.numpy import load
+    return _parse(path, _read_bytes(path))
 
+
+def _read_bytes(path: Path) -> bytes:
     try:
-        raw = Path(path).read_bytes()
+        return Path(path).read_bytes()
     except FileNotFoundError:
         raise CheckpointError(f"{path}: no such file") from None
     except OSError as exc:
         raise CheckpointError(f"{path}: cannot be read ({exc.strerror})") from None
+
+
+def _parse(path: Path, raw: bytes) -> tuple[dict[str, Array], dict[str, Any]]:
+    from safetensors.numpy import load
+
     header = read_header(path, raw)
     try:
         tensors = load(raw)
@@ -111,7 +121,8 @@ def read_tensors(path: Path) -> tuple[dict[str, Array], dict[str, Any]]:
 
 def load_checkpoint(path: Path, layout: ParamLayout) -> CheckpointData:
     """Read a checkpoint and check that it fits ``layout`` (names, shapes, dtype)."""
-    tensors, header = read_tensors(path)
+    raw = _read_bytes(path)
+    tensors, header = _parse(path, raw)
     meta_text = (header.get("__metadata__") or {}).get(META_KEY)
     if meta_text is None:
         raise CheckpointError(f"{path}: not a Stepper checkpoint (no '{META_KEY}' metadata)")
@@ -145,7 +156,7 @@ def load_checkpoint(path: Path, layout: ParamLayout) -> CheckpointData:
                 raise CheckpointError(f"{path}: does not fit the model: missing {tensor_name}")
             flat[block.start : block.stop] = _fit(path, tensor_name, tensors[tensor_name], block.shape)
         rule_arrays[key] = flat
-    return CheckpointData(theta, rule_arrays, meta)
+    return CheckpointData(theta, rule_arrays, meta, hashlib.sha256(raw).hexdigest())
 
 
 def _fit(path: Path, name: str, array: Array, shape: tuple[int, ...]) -> Array:

@@ -12,7 +12,10 @@ Each further line is one operation with its arguments, e.g.
 ``{"op": "step", "n": 10}`` or ``{"op": "perturb", "scale": 0.01, "seed": 42,
 "names": null}``. Lines are flushed to disk as they are written, so after a
 crash the journal holds every operation up to the last whole line; a line cut
-off mid-way is ignored on replay.
+off mid-way is ignored on replay. A loaded checkpoint is recorded with the
+SHA-256 of its bytes (``{"op": "load", "path": ..., "sha256": ...}``): a replay
+refuses it if the file has been overwritten since, e.g. by a later save to the
+same path, because the state rebuilt from it would silently differ.
 
 A session that opens a journal which already holds one starts a new part of it
 with a header line of its own (it starts again from the model file), and a
