@@ -12,8 +12,9 @@ Declared in the model file::
 
 A PyTorch ``Linear`` layer stores its weight output-by-input, ``(n_out, n_in)``,
 while Stepper's ``W`` is ``(n_in, n_out)``: such tensors need ``transpose = true``.
-Every array of the model must be named; any float dtype is converted to
-float64. Only tensors are read: safetensors files hold no code.
+Every array of the model must be named, in quotes (unquoted, ``L1.W`` is a
+TOML dotted key: a key ``W`` inside a table ``L1``); any float dtype is
+converted to float64. Only tensors are read: safetensors files hold no code.
 """
 
 from __future__ import annotations
@@ -52,7 +53,17 @@ def import_weights(label: str, init: Any, network: Network) -> Array:
     blocks = {block.prefix: block for block in network.layout.blocks}
     unknown = sorted(set(names) - set(blocks))
     if unknown:
-        init.fail(f"names.{unknown[0]}", f"the model has no array {unknown[0]} (it has {', '.join(blocks)})")
+        name = unknown[0]
+        hint = ""
+        entry = names[name]
+        if isinstance(entry, dict):
+            # Unquoted, L1.W = ... is TOML for the key W of a table L1.
+            dotted = [f"{name}.{key}" for key in entry if f"{name}.{key}" in blocks]
+            if dotted:
+                hint = (f'; write the name in quotes: "{dotted[0]}" = ... '
+                        f"(without them TOML reads {dotted[0]} as a key {dotted[0].split('.', 1)[1]} "
+                        f"inside a table {name})")
+        init.fail(f"names.{name}", f"the model has no array {name} (it has {', '.join(blocks)}){hint}")
     for prefix, block in blocks.items():
         where = f"names.{prefix}"
         if prefix not in names:
