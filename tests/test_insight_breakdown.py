@@ -157,7 +157,20 @@ def test_flags_an_error_signal_that_shrank_on_the_way_back() -> None:
     assert "signal_vanished" not in flag_codes(net, theta, X, Y, "L9.W[0,0]")
 
 
-def test_custom_layer_parameters_are_refused(tmp_path: Path) -> None:
+def test_factors_multiply_back_around_a_custom_layer() -> None:
+    # The error signal reaching layer 1 is the custom layer's own dX.
+    from stepper.formats.model_file import load_setup
+
+    setup = load_setup(SCENARIOS / "hive-gate-fixed" / "model.toml")
+    net = setup.network
+    for index, name in enumerate(net.layout.names):
+        if name.startswith("L2."):
+            continue
+        b = slope_breakdown(net, setup.theta0, setup.data.X, setup.data.Y, index)
+        assert relative_to_size(b.total, b.analytic, b.products) < 1e-12, name
+
+
+def test_custom_layer_parameters_are_refused() -> None:
     from stepper.formats.model_file import load_setup
 
     setup = load_setup(SCENARIOS / "hive-gate-fixed" / "model.toml")

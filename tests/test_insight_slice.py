@@ -208,3 +208,20 @@ def test_slice_command_names_the_arrays_when_the_weight_is_unknown(capsys) -> No
         f"stepper: no weight named 'L3.W[0,0]' in {model} (its arrays: L1.W 4x6, L1.b 6, L2.W 6x1, "
         "L2.b 1; a name looks like L1.W[0,2] or L1.b[0])\n"
     )
+
+
+def test_batched_sweep_through_a_custom_layer_matches_one_run_per_point() -> None:
+    from stepper.formats.model_file import load_setup
+
+    setup = load_setup(SCENARIOS / "hive-gate-fixed" / "model.toml")
+    net, theta, X, Y = setup.network, setup.theta0, setup.data.X, setup.data.Y
+    offsets = np.linspace(-0.8, 0.8, 5)
+    for name in ("L1.W[2,4]", "L1.b[0]", "L2.V[1,2]", "L2.c[0]", "L3.W[2,0]"):
+        index = net.layout.lookup(name)
+        direct = []
+        for off in offsets:
+            moved = theta.copy()
+            moved[index] += off
+            direct.append(net.cost(moved, X, Y))
+        np.testing.assert_allclose(costs_at_offsets(net, theta, X, Y, index, offsets), direct,
+                                   rtol=1e-12, atol=1e-15)

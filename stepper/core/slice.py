@@ -184,7 +184,9 @@ def costs_at_offsets(
 
     For a dense layer's weight or bias the layers before it run once, its
     pre-activation changes in one column by ``offset * input`` (or ``offset``
-    for a bias), and the rest of the network runs on all offsets stacked.
+    for a bias); when its activation is elementwise and a dense layer follows,
+    that layer's pre-activation gets a rank-one change; the rest of the network
+    runs on all offsets stacked.
     Parameters of other layers are moved one offset at a time.
     """
     offsets = np.asarray(offsets, dtype=np.float64).ravel()
@@ -207,13 +209,30 @@ def costs_at_offsets(
     chunk = int(max(1, CHUNK_BYTES // per_point))
     params = net.views(theta)
     out = np.empty(offsets.size)
+    nxt = block.layer + 1
+    rank_one = layer.activation.elementwise and nxt < len(net.layers) and isinstance(net.layers[nxt], Dense)
     for lo in range(0, offsets.size, chunk):
         part = offsets[lo : lo + chunk]
-        Z = np.broadcast_to(cache.Z, (part.size,) + cache.Z.shape).copy()  # (k, n, n_out)
-        Z[:, :, unit] += part[:, None] * column[None, :]
-        A = layer.activation.fn(Z)
-        last: DenseCache | None = DenseCache(np.empty(0), Z, A)
-        for later in range(block.layer + 1, len(net.layers)):
+        last: DenseCache | None
+        if rank_one:
+            # Only column `unit` of this layer's output changes, so the next dense
+            # layer's pre-activation changes by that column's change times one row of its W.
+            after = net.layers[nxt]
+            assert isinstance(after, Dense)
+            z_col = cache.Z[:, unit][None, :] + part[:, None] * column[None, :]  # (k, n)
+            change = layer.activation.fn(z_col) - cache.A[:, unit][None, :]
+            Z = np.multiply.outer(change, params[nxt]["W"][unit])  # (k, n, n_next)
+            Z += trace[nxt][1].Z
+            A = after.activation.fn(Z)
+            last = DenseCache(np.empty(0), Z, A)
+            start = nxt + 1
+        else:
+            Z = np.broadcast_to(cache.Z, (part.size,) + cache.Z.shape).copy()  # (k, n, n_out)
+            Z[:, :, unit] += part[:, None] * column[None, :]
+            A = layer.activation.fn(Z)
+            last = DenseCache(np.empty(0), Z, A)
+            start = nxt
+        for later in range(start, len(net.layers)):
             lay = net.layers[later]
             if isinstance(lay, Dense):
                 Z = lay.pre_activation(params[later], A)
