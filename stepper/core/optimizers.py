@@ -104,8 +104,12 @@ def compute_update(
         m = ADAM_BETA1 * state.arrays["m"] + (1.0 - ADAM_BETA1) * slopes
         v = ADAM_BETA2 * state.arrays["v"] + (1.0 - ADAM_BETA2) * slopes * slopes
         count = state.arrays["count"] + 1.0
-        m_hat = m / (1.0 - ADAM_BETA1**count)
-        v_hat = v / (1.0 - ADAM_BETA2**count)
+        t: Array | float = count
+        moving_counts = count if frozen is None else count[moving]
+        if moving_counts.size and moving_counts.min() == moving_counts.max():
+            t = float(moving_counts[0])  # the usual case: one count for all, so one power, not n
+        m_hat = m / (1.0 - ADAM_BETA1**t)
+        v_hat = v / (1.0 - ADAM_BETA2**t)
         delta = -rate * m_hat / (np.sqrt(v_hat) + ADAM_EPS)
         nxt.arrays["m"] = np.where(moving, m, state.arrays["m"])
         nxt.arrays["v"] = np.where(moving, v, state.arrays["v"])
