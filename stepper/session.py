@@ -654,6 +654,9 @@ class Session:
             rule = str(meta["rule"])
             state = fresh_state(rule, self.net.n_params)
             for key in state.arrays:
+                if key not in data.rule_arrays:
+                    raise CheckpointError(f"{path}: does not fit: the {rule} rule's memory "
+                                          f"(tensors rule.{key}.*) is missing")
                 state.arrays[key] = data.rule_arrays[key]
             state.t = int(meta["rule_t"])
             frozen = np.zeros(self.net.n_params, dtype=bool)

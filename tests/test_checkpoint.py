@@ -362,6 +362,7 @@ def rewrite_meta(source: Path, target: Path, change: dict[str, Any]) -> Path:
     ({"history": []}, "metadata is incomplete or wrong"),
     ({"history": [[0, 1.0]]}, "metadata is incomplete or wrong"),
     ({"rule": "lbfgs"}, "metadata is incomplete or wrong"),
+    ({"rule": "momentum"}, "does not fit: the momentum rule's memory (tensors rule.velocity.*) is missing"),
     ({"rate": -1}, "metadata is incomplete or wrong"),
     ({"frozen": ["L9.W[0,0]"]}, "frozen parameter L9.W[0,0] is not in it"),
     ({"slope_source": "guess"}, "unknown slope source 'guess'"),
