@@ -177,8 +177,9 @@ def test_replay_refuses_a_checkpoint_changed_since_it_was_loaded(bakery, tmp_pat
     s.step(3)
     s.save_checkpoint(ck)
     s.close()
-    with pytest.raises(CheckpointError, match="has changed since"):
+    with pytest.raises(CheckpointError, match="has changed since") as info:
         replay(journal)
+    assert info.value.message.startswith(f"{journal}: line 2: {ck}: ")
     forced = replay(journal, force=True)
     assert forced.step_count == 6  # loaded the newer file (step 3) and stepped 3 more
 
@@ -205,9 +206,11 @@ def test_a_bad_entry_is_an_error(bakery, tmp_path: Path, entry: dict[str, Any], 
     journal = tmp_path / "j.jsonl"
     Session(bakery, journal=journal).close()
     with open(journal, "a", encoding="utf-8") as handle:
+        handle.write(json.dumps({"op": "step", "n": 1}) + "\n")
         handle.write(json.dumps(entry) + "\n")
-    with pytest.raises(CheckpointError, match=message):
+    with pytest.raises(CheckpointError, match=message) as info:
         replay(journal)
+    assert info.value.message.startswith(f"{journal}: line 3: ")
 
 
 # -- the replay command ---------------------------------------------------------------------------------

@@ -8,7 +8,7 @@ from pathlib import Path
 from typing import Any
 
 from stepper.errors import CheckpointError, StepperError
-from stepper.formats.journal import read_journal
+from stepper.formats.journal import read_numbered_journal
 from stepper.formats.model_file import load_setup
 from stepper.session import Session
 
@@ -31,7 +31,7 @@ def add_parser(subs: Any) -> None:
 
 def replay(journal: Path, model: Path | None = None, force: bool = False) -> Session:
     """A session rebuilt from ``journal``; the journal itself is not written to."""
-    header, entries = read_journal(journal)
+    header, entries = read_numbered_journal(journal)
     setup = load_setup(model if model is not None else Path(str(header.get("model"))))
     if setup.digest != header.get("digest") and not force:
         raise CheckpointError(
@@ -44,8 +44,13 @@ def replay(journal: Path, model: Path | None = None, force: bool = False) -> Ses
                           seed=int(start.get("seed", 0)))
     except (AttributeError, TypeError, ValueError, StepperError) as exc:
         raise CheckpointError(f"{journal}: line 1: the starting settings are not valid ({exc})") from None
-    for entry in entries:
-        session.apply(entry, force)
+    for number, entry in entries:
+        try:
+            session.apply(entry, force)
+        except StepperError as exc:
+            # Same error (and exit code), told where in the journal it happened.
+            exc.message = f"{journal}: line {number}: {exc.message}"
+            raise
     return session
 
 

@@ -75,7 +75,13 @@ def _is_header(entry: dict[str, Any] | None) -> bool:
 
 
 def read_journal(path: Path) -> tuple[dict[str, Any], list[dict[str, Any]]]:
-    """The header and the whole operation lines of the latest part of a journal.
+    """The header and the whole operation lines of the latest part of a journal."""
+    header, numbered = read_numbered_journal(path)
+    return header, [entry for _, entry in numbered]
+
+
+def read_numbered_journal(path: Path) -> tuple[dict[str, Any], list[tuple[int, dict[str, Any]]]]:
+    """Like :func:`read_journal`, each operation with its line number (from 1).
 
     A last line without its newline (a write cut off by a crash) is dropped, and
     so is a broken line just before a header; any other line that is not a JSON
@@ -119,4 +125,4 @@ def read_journal(path: Path) -> tuple[dict[str, Any], list[dict[str, Any]]]:
         raise CheckpointError(f"{path}: line {number}: not a Stepper journal header")
     if header.get("version") != VERSION:
         raise CheckpointError(f"{path}: line {number}: unsupported journal version {header.get('version')!r}")
-    return header, [entry for _, entry in parsed[start + 1 :] if entry is not None]
+    return header, [(n, entry) for n, entry in parsed[start + 1 :] if entry is not None]
