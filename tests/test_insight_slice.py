@@ -175,7 +175,10 @@ def test_default_span_shows_the_landing_point() -> None:
 SCENARIOS = Path(__file__).resolve().parents[1] / "scenarios"
 
 
-def test_slice_command_prints_the_figures_and_writes_the_plot(tmp_path: Path, capsys) -> None:
+def test_slice_command_prints_the_figures_and_writes_the_plot(tmp_path: Path, capsys, monkeypatch) -> None:
+    # A small terminal must not shrink a plot written to a file.
+    monkeypatch.setenv("COLUMNS", "40")
+    monkeypatch.setenv("LINES", "12")
     plot = tmp_path / "slice.txt"
     code = cli.main(["slice", str(SCENARIOS / "bakery-demand"), "L2.b[0]", "--rate", "0.5",
                      "--plot", str(plot), "--size", "60x18"])
@@ -184,7 +187,7 @@ def test_slice_command_prints_the_figures_and_writes_the_plot(tmp_path: Path, ca
     assert "curvature" in out and "rate x curvature" in out and "Efficient BackProp" in out
     lines = plot.read_text(encoding="utf-8").splitlines()
     assert len(lines) == 18
-    assert max(len(line) for line in lines) <= 60
+    assert max(len(line) for line in lines) == 60
     assert "cost along L2.b[0]" in lines[0]
     assert "\x1b[" not in plot.read_text(encoding="utf-8")
 

@@ -182,6 +182,8 @@ def render_plot(s: CostSlice, name: str, width: int = PLOT_SIZE[0], height: int 
     import plotext  # type: ignore[import-untyped]
 
     fig = plotext.figure
+    # The size asked for, not the terminal's: the text may go to a file.
+    plotext.terminal.limit(False, False)
     fig.clear()
     fig.plot_size(width, height)
     fig.title(f"cost along {name}")
