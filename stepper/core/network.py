@@ -14,6 +14,7 @@ simple; per-layer arrays are reshaped views into it, never copies.
 
 from __future__ import annotations
 
+import math
 import re
 from dataclasses import dataclass, field
 from functools import cached_property
@@ -46,9 +47,9 @@ class Block:
     shape: tuple[int, ...]
     start: int
 
-    @property
+    @cached_property
     def size(self) -> int:
-        return int(np.prod(self.shape, dtype=np.int64))
+        return math.prod(self.shape)
 
     @property
     def stop(self) -> int:
