@@ -1,0 +1,15 @@
+"""The terminal app (``stepper open``), built with Textual and plotext.
+
+Modules, one job each:
+
+- :mod:`stepper.ui.keys`: every key, its action and its help text (one table).
+- :mod:`stepper.ui.snapshot`: a read-only picture of the session for one frame.
+- :mod:`stepper.ui.weights`: the weight table, a line-API widget for 10,000+ rows.
+- :mod:`stepper.ui.costplot`: the cost plot drawn by plotext.
+- :mod:`stepper.ui.panels`: status line, rate preview panel and the job bar.
+- :mod:`stepper.ui.dialogs`: the modal screens (typed values, choices, quit, help).
+- :mod:`stepper.ui.app`: the app, which owns the session and routes keys to it.
+
+Widgets render and post messages; only the app calls the session, and only
+the session holds model state.
+"""

@@ -1,0 +1,124 @@
+"""Every key of the app in one table: the bindings, the footer and the help screen read it.
+
+Key names are Textual's (``plus`` for ``+``, ``left_square_bracket`` for ``[``,
+an upper-case letter for shift plus that letter). ``scope`` says who binds the
+key: ``app`` keys work everywhere on the main screen, ``table`` keys move the
+weight table's cursor and belong to that widget.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+from textual.binding import Binding
+
+
+@dataclass(frozen=True)
+class Key:
+    """One key.
+
+    Attributes:
+        keys: Textual key names, comma-separated when several keys do the same.
+        action: the ``action_*`` method it runs (without the prefix).
+        label: a word or two for the footer.
+        help: one line for the help screen.
+        group: heading on the help screen.
+        footer: shown in the footer.
+        display: how the key is written on screen.
+        scope: ``app`` or ``table``.
+    """
+
+    keys: str
+    action: str
+    label: str
+    help: str
+    group: str
+    footer: bool = False
+    display: str | None = None
+    scope: str = "app"
+
+    @property
+    def shown_as(self) -> str:
+        """The first key as written on screen."""
+        return self.display if self.display is not None else self.keys.split(",")[0]
+
+    @property
+    def all_shown(self) -> list[str]:
+        """Every key that does this, as written on screen."""
+        rest = self.keys.split(",")[1:]
+        return [self.shown_as] + [_WRITTEN.get(name, name) for name in rest]
+
+
+#: How a few key names are written on screen.
+_WRITTEN = {"equals_sign": "=", "escape": "esc", "question_mark": "?"}
+
+
+KEYS: tuple[Key, ...] = (
+    # -- descent ---------------------------------------------------------------------------
+    Key("s", "step", "step", "take one step of the update rule", "descent", footer=True),
+    Key("n", "run_steps", "run", "run N steps (asks for N); the job bar shows progress", "descent",
+        footer=True),
+    Key("x,escape", "cancel_job", "cancel", "cancel the running job (steps or numeric slopes), keeping what is done",
+        "descent", display="x"),
+    Key("plus,equals_sign", "double_rate", "rate*2", "double the rate", "descent", footer=True,
+        display="+"),
+    Key("minus", "halve_rate", "rate/2", "halve the rate", "descent", footer=True, display="-"),
+    Key("r", "type_rate", "rate", "type a rate", "descent"),
+    Key("u", "choose_rule", "rule", "choose the update rule (gd, momentum, adam)", "descent"),
+    Key("g", "toggle_source", "slopes from", "switch the slopes a step follows: analytic or numeric",
+        "descent"),
+    Key("m", "type_batch", "batch", "type the mini-batch size (empty for the full batch)", "descent"),
+    Key("v", "toggle_preview", "rates", "show or hide the rate preview: the cost after one step at each "
+        "candidate rate", "descent"),
+    Key("b", "adopt_best_rate", "best rate", "adopt the rate that the preview finds best", "descent"),
+    # -- slopes ----------------------------------------------------------------------------
+    Key("c", "compute_check", "check", "recompute the numeric slopes now (a job; x cancels)", "slopes",
+        footer=True),
+    Key("a", "toggle_auto_check", "auto check", "recompute the numeric slopes after every step: on/off",
+        "slopes"),
+    # -- weights ---------------------------------------------------------------------------
+    Key("f", "freeze_weight", "freeze", "freeze or unfreeze the selected weight", "weights"),
+    Key("F", "freeze_layer", "freeze layer", "freeze or unfreeze the whole layer of the selected weight",
+        "weights"),
+    Key("p", "perturb_weight", "nudge", "perturb the selected weight with Gaussian noise", "weights"),
+    Key("P", "perturb_all", "nudge all", "perturb every unfrozen weight with Gaussian noise", "weights"),
+    Key("e", "edit_value", "edit", "type a new value for the selected weight", "weights"),
+    Key("R", "reset", "reset", "put every weight back to its initial value (undoable)", "weights"),
+    Key("z", "undo", "undo", "undo the last operation", "weights", footer=True),
+    Key("Z", "redo", "redo", "redo what was undone", "weights"),
+    # -- table -----------------------------------------------------------------------------
+    Key("up", "cursor(-1)", "up", "select the weight above", "table", display="up", scope="table"),
+    Key("down", "cursor(1)", "down", "select the weight below", "table", display="down", scope="table"),
+    Key("pageup", "page(-1)", "page up", "one screen up", "table", display="pgup", scope="table"),
+    Key("pagedown", "page(1)", "page down", "one screen down", "table", display="pgdn", scope="table"),
+    Key("home", "first", "first", "first row", "table", scope="table"),
+    Key("end", "last", "last", "last row", "table", scope="table"),
+    Key("o", "next_order", "order", "order the rows by the next column (numbers by size, largest first)",
+        "table"),
+    Key("O", "flip_order", "flip order", "reverse the row order", "table"),
+    Key("right_square_bracket", "next_layer", "next layer", "show only the next layer (then all again)",
+        "table", display="]"),
+    Key("left_square_bracket", "previous_layer", "prev layer", "show only the previous layer", "table",
+        display="["),
+    Key("slash", "filter_names", "filter", "show only names matching a pattern (* and ? wildcards, "
+        "empty shows all)", "table", display="/"),
+    Key("j", "jump", "jump", "jump to a weight by name, e.g. L2.W[0,1]", "table"),
+    # -- plot and files --------------------------------------------------------------------
+    Key("y", "toggle_log", "log cost", "cost plot: log or linear y axis", "plot"),
+    Key("w", "save", "save", "save a checkpoint (asks for the path)", "files", footer=True),
+    Key("l", "load", "load", "load a checkpoint (asks for the path)", "files"),
+    Key("question_mark,f1", "help", "help", "this list of keys", "app", footer=True, display="?"),
+    Key("q", "quit", "quit", "quit (asks first when there are unsaved changes)", "app", footer=True),
+)
+
+#: Help-screen headings in order.
+GROUPS = ("descent", "slopes", "weights", "table", "plot", "files", "app")
+
+
+def bindings(scope: str) -> list[Binding]:
+    """Textual bindings for the keys of one scope."""
+    return [
+        Binding(k.keys, k.action, k.label, show=k.footer, key_display=k.display)
+        for k in KEYS
+        if k.scope == scope
+    ]

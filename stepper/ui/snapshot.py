@@ -1,0 +1,149 @@
+"""A read-only picture of the session, taken once per refresh, from which a frame is drawn.
+
+The session is the only owner of model state. The widgets never keep it: the
+app takes a :class:`Snapshot` after every operation (and, during a run, from
+inside ``call_from_thread`` while the worker thread waits), and hands it to the
+widgets, which draw from it and drop the previous one. Taking the picture in
+one place means that a frame is consistent even while a worker thread is
+stepping the session, and that no widget ever calls the session.
+
+Every array has shape ``(n_params,)`` and is a copy.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import TYPE_CHECKING, Any
+
+import numpy as np
+from numpy.typing import NDArray
+
+from stepper.core.compare import VERDICTS
+
+if TYPE_CHECKING:
+    from stepper.session import Session
+
+Array = NDArray[np.float64]
+
+#: Verdict codes, ordered by severity so that sorting by code puts the worst first.
+NO_VERDICT = 0
+VERDICT_CODE = {"agree": 1, "kink": 2, "doubtful": 3, "disagree": 4}
+#: How each verdict reads in the table: a word, so it needs no colour.
+VERDICT_TEXT = {NO_VERDICT: "-", 1: "agree", 2: "kink~", 3: "doubtful", 4: "DISAGREE"}
+VERDICT_NAME = {code: name for name, code in VERDICT_CODE.items()}
+
+
+@dataclass(frozen=True)
+class Snapshot:
+    """The session at one moment.
+
+    Attributes:
+        name: the model's label.
+        names: parameter names in flat order.
+        layer: 0-based layer of each parameter, int.
+        value: current values.
+        analytic: slopes by backpropagation at the current values.
+        numeric: slopes by finite differences from the last check (NaN when none).
+        rel_error: relative error from the last check (NaN when none).
+        verdict: verdict codes (:data:`VERDICT_CODE`, 0 when none), int8.
+        frozen: True where the parameter is frozen.
+        has_check: a numeric check has been run.
+        stale: the weights changed since the last check.
+        steps, train, val: the cost history; ``val`` is NaN where there is none.
+        step_count, rate, rule, slope_source, batch_size: the descent settings.
+        train_cost, val_cost: the current costs.
+        counts: number of parameters per verdict of the last check.
+        last_action: the session's description of its last operation.
+        dirty: changes since the last save or load.
+    """
+
+    name: str
+    names: tuple[str, ...]
+    layer: NDArray[np.int64]
+    n_layers: int
+    value: Array
+    analytic: Array
+    numeric: Array
+    rel_error: Array
+    verdict: NDArray[np.int8]
+    frozen: NDArray[np.bool_]
+    has_check: bool
+    stale: bool
+    steps: NDArray[np.int64]
+    train: Array
+    val: Array
+    step_count: int
+    rate: float
+    rule: str
+    slope_source: str
+    batch_size: int | None
+    train_cost: float
+    val_cost: float | None
+    counts: dict[str, int]
+    last_action: str | None
+    dirty: bool
+    can_undo: bool
+    can_redo: bool
+
+    @property
+    def n_params(self) -> int:
+        return len(self.names)
+
+
+def verdict_codes(verdict: NDArray[Any]) -> NDArray[np.int8]:
+    """Verdict strings ``(n_params,)`` to codes; unknown or empty strings give 0."""
+    codes = np.zeros(verdict.shape, dtype=np.int8)
+    for name, code in VERDICT_CODE.items():
+        codes[verdict == name] = code
+    return codes
+
+
+def take(session: Session) -> Snapshot:
+    """Copy what the screen shows out of ``session``. Call it on the app's thread only."""
+    net = session.net
+    layout = net.layout
+    n = net.n_params
+    check = session.check
+    if check is not None:
+        numeric = np.array(check.numeric, dtype=np.float64)
+        rel = np.array(check.rel_error, dtype=np.float64)
+        codes = verdict_codes(np.asarray(check.verdict))
+        counts = {name: int(np.count_nonzero(codes == VERDICT_CODE[name])) for name in VERDICTS}
+    else:
+        numeric = np.full(n, np.nan)
+        rel = np.full(n, np.nan)
+        codes = np.zeros(n, dtype=np.int8)
+        counts = {name: 0 for name in VERDICTS}
+    history = list(session.history)
+    steps = np.array([h.step for h in history], dtype=np.int64)
+    train = np.array([h.train_cost for h in history], dtype=np.float64)
+    val = np.array([np.nan if h.val_cost is None else h.val_cost for h in history], dtype=np.float64)
+    return Snapshot(
+        name=session.setup.name,
+        names=layout.names,
+        layer=layout.layer_index,
+        n_layers=len(net.layers),
+        value=np.array(session.theta, dtype=np.float64),
+        analytic=np.array(session.analytic_slopes(), dtype=np.float64),
+        numeric=numeric,
+        rel_error=rel,
+        verdict=codes,
+        frozen=np.array(session.frozen, dtype=bool),
+        has_check=check is not None,
+        stale=bool(check is not None and session.check_is_stale),
+        steps=steps,
+        train=train,
+        val=val,
+        step_count=int(session.step_count),
+        rate=float(session.rate),
+        rule=str(session.rule),
+        slope_source=str(session.slope_source),
+        batch_size=session.batch_size,
+        train_cost=float(session.train_cost()),
+        val_cost=session.val_cost(),
+        counts=counts,
+        last_action=session.last_action,
+        dirty=bool(session.dirty),
+        can_undo=bool(session.can_undo),
+        can_redo=bool(session.can_redo),
+    )

@@ -1,0 +1,456 @@
+"""The weight table: one row per parameter, drawn with Textual's line API.
+
+Why not the stock ``DataTable``: it keeps a styled cell object per cell and
+re-measures columns on updates, which for 10,000 rows costs about a second to
+fill and a tenth of a second to refresh one column (tests/benchmarks/bench_ui.py
+measures both on the same rows). This widget keeps no cells at all: the rows
+shown are an index array into the current :class:`~stepper.ui.snapshot.Snapshot`,
+and :meth:`WeightTable.render_line` formats only the rows on screen, so a new
+snapshot costs one ``argsort`` and a screenful of string formatting.
+
+The table owns view settings only (row order, filters, cursor); the numbers
+come from the snapshot the app hands it.
+"""
+
+from __future__ import annotations
+
+import re
+from dataclasses import dataclass
+from typing import ClassVar
+
+import numpy as np
+from numpy.typing import NDArray
+from rich.segment import Segment
+from rich.style import Style
+from textual import events
+from textual.binding import BindingType
+from textual.geometry import Size
+from textual.message import Message
+from textual.scroll_view import ScrollView
+from textual.strip import Strip
+
+from stepper.ui.keys import bindings
+from stepper.ui.snapshot import VERDICT_TEXT, Snapshot
+
+IntArray = NDArray[np.int64]
+
+
+@dataclass(frozen=True)
+class Column:
+    """One table column.
+
+    Attributes:
+        key: identifier, also the sort key name.
+        title: header text.
+        width: cells.
+        descending: the natural sort direction (largest first for numbers).
+    """
+
+    key: str
+    title: str
+    width: int
+    descending: bool
+
+
+NUMBER_WIDTH = 10
+COLUMNS: tuple[Column, ...] = (
+    Column("name", "weight", 8, False),
+    Column("value", "value", NUMBER_WIDTH, True),
+    Column("analytic", "analytic", NUMBER_WIDTH, True),
+    Column("numeric", "numeric", NUMBER_WIDTH, True),
+    Column("rel_error", "rel.err", 7, True),
+    Column("verdict", "verdict", 8, True),
+    Column("frozen", "frozen", 6, True),
+)
+COLUMN_KEYS = tuple(c.key for c in COLUMNS)
+GAP = 2
+#: Cells before the name: the cursor mark and a space.
+LEAD = 2
+
+
+def wildcard(pattern: str) -> re.Pattern[str]:
+    """A name pattern as a regular expression.
+
+    Only ``*`` (any run of characters) and ``?`` (one character) are wildcards;
+    everything else is literal, so ``L2.W[0,1]`` means exactly that name. A
+    pattern without wildcards matches any name containing it.
+    """
+    parts = []
+    for ch in pattern:
+        parts.append(".*" if ch == "*" else "." if ch == "?" else re.escape(ch))
+    body = "".join(parts)
+    if "*" not in pattern and "?" not in pattern:
+        return re.compile(body)
+    return re.compile(f"^{body}$")
+
+
+def sort_order(snap: Snapshot, key: str, descending: bool, rows: IntArray) -> IntArray:
+    """``rows`` (flat indices) ordered by column ``key``.
+
+    Numbers sort by size (absolute value); rows without a number (NaN) go last in
+    either direction; ties keep flat order.
+    """
+    if key == "name":
+        keys = rows.astype(np.float64)
+    elif key == "value":
+        keys = np.abs(snap.value[rows])
+    elif key == "analytic":
+        keys = np.abs(snap.analytic[rows])
+    elif key == "numeric":
+        keys = np.abs(snap.numeric[rows])
+    elif key == "rel_error":
+        keys = snap.rel_error[rows].copy()
+    elif key == "verdict":
+        # Severity first, then relative error inside one verdict.
+        rel = np.nan_to_num(snap.rel_error[rows], nan=0.0)
+        keys = snap.verdict[rows].astype(np.float64) + np.clip(rel, 0.0, 0.999)
+        keys[snap.verdict[rows] == 0] = np.nan
+    elif key == "frozen":
+        keys = snap.frozen[rows].astype(np.float64)
+    else:
+        raise KeyError(key)
+    missing = np.isnan(keys)
+    keys = np.where(missing, 0.0, keys)
+    signed = -keys if descending else keys
+    # lexsort: the last key is the primary one; NaN rows last, then by value, then flat order.
+    order = np.lexsort((rows, signed, missing))
+    return rows[order]
+
+
+class WeightTable(ScrollView, can_focus=True):
+    """Every weight of the network, one per row, with a cursor.
+
+    | Key | Does |
+    | --- | --- |
+    | up / down | move the cursor one row |
+    | pgup / pgdn | one screen |
+    | home / end | first / last row |
+    """
+
+    BINDINGS: ClassVar[list[BindingType]] = bindings("table")  # type: ignore[assignment]
+
+    COMPONENT_CLASSES: ClassVar[set[str]] = {
+        "weights--header",
+        "weights--sorted",
+        "weights--cursor",
+        "weights--frozen",
+        "weights--disagree",
+        "weights--doubtful",
+        "weights--stale",
+    }
+
+    DEFAULT_CSS = """
+    WeightTable {
+        background: $surface;
+    }
+    WeightTable > .weights--header { text-style: bold; background: $panel; }
+    WeightTable > .weights--sorted { text-style: bold underline; background: $panel; }
+    WeightTable > .weights--cursor { background: $accent 40%; text-style: bold; }
+    WeightTable:focus > .weights--cursor { background: $accent; color: $text; }
+    WeightTable > .weights--frozen { color: $text-muted; text-style: italic; }
+    WeightTable > .weights--disagree { color: $error; text-style: bold; }
+    WeightTable > .weights--doubtful { color: $warning; }
+    WeightTable > .weights--stale { color: $text-muted; }
+    """
+
+    class Selected(Message):
+        """The cursor moved to another weight (``index`` is flat, None when no row is shown)."""
+
+        def __init__(self, table: WeightTable, index: int | None) -> None:
+            super().__init__()
+            self.table = table
+            self.index = index
+
+        @property
+        def control(self) -> WeightTable:
+            return self.table
+
+    class ViewChanged(Message):
+        """The order or the filters changed; ``description`` says how rows are chosen and ordered."""
+
+        def __init__(self, table: WeightTable, description: str) -> None:
+            super().__init__()
+            self.table = table
+            self.description = description
+
+        @property
+        def control(self) -> WeightTable:
+            return self.table
+
+    def __init__(self, *, name: str | None = None, id: str | None = None, classes: str | None = None) -> None:
+        self._style_cache: dict[tuple[str, ...], Style] = {}
+        super().__init__(name=name, id=id, classes=classes)
+        self.snapshot: Snapshot | None = None
+        self.sort_key = "name"
+        self.descending = False
+        self.layer_filter: int | None = None
+        self.pattern = ""
+        self.rows: IntArray = np.zeros(0, dtype=np.int64)
+        self.cursor = 0
+        self._selected: int | None = None
+        self._mask: NDArray[np.bool_] | None = None
+        self._name_width = COLUMNS[0].width
+
+    # -- what is shown ---------------------------------------------------------------------
+
+    @property
+    def selected(self) -> int | None:
+        """Flat index of the weight under the cursor."""
+        return self._selected
+
+    def show(self, snap: Snapshot) -> None:
+        """Draw ``snap`` from now on, keeping the order, filters and selected weight."""
+        names_changed = self.snapshot is None or self.snapshot.names is not snap.names
+        self.snapshot = snap
+        if names_changed:
+            self._mask = None
+            self._name_width = max(COLUMNS[0].width, max((len(n) for n in snap.names), default=0))
+        self._rebuild()
+
+    def set_order(self, key: str, descending: bool | None = None) -> None:
+        """Order rows by column ``key`` (its natural direction unless ``descending`` is given)."""
+        column = COLUMNS[COLUMN_KEYS.index(key)]
+        self.sort_key = key
+        self.descending = column.descending if descending is None else descending
+        self._rebuild(view_changed=True)
+
+    def next_order(self) -> None:
+        i = COLUMN_KEYS.index(self.sort_key)
+        self.set_order(COLUMN_KEYS[(i + 1) % len(COLUMN_KEYS)])
+
+    def flip_order(self) -> None:
+        self.set_order(self.sort_key, not self.descending)
+
+    def set_layer(self, layer: int | None) -> None:
+        """Show only layer ``layer`` (0-based), or every layer."""
+        self.layer_filter = layer
+        self._mask = None
+        self._rebuild(view_changed=True)
+
+    def step_layer(self, delta: int) -> None:
+        """Cycle the layer filter: all, layer 1, ..., layer n, all."""
+        if self.snapshot is None:
+            return
+        n = self.snapshot.n_layers
+        current = -1 if self.layer_filter is None else self.layer_filter
+        nxt = (current + 1 + delta) % (n + 1) - 1
+        self.set_layer(None if nxt < 0 else nxt)
+
+    def set_pattern(self, pattern: str) -> None:
+        """Show only names matching ``pattern`` (see :func:`wildcard`); empty shows all."""
+        self.pattern = pattern.strip()
+        self._mask = None
+        self._rebuild(view_changed=True)
+
+    def select(self, index: int) -> None:
+        """Put the cursor on flat index ``index``, clearing filters that hide it."""
+        if self.snapshot is None:
+            return
+        hits = np.flatnonzero(self.rows == index)
+        if hits.size == 0:
+            self.layer_filter = None
+            self.pattern = ""
+            self._mask = None
+            self._rebuild(view_changed=True)
+            hits = np.flatnonzero(self.rows == index)
+        if hits.size:
+            self.move_to(int(hits[0]))
+
+    def describe(self) -> str:
+        """How rows are chosen and ordered, for the table's title."""
+        total = 0 if self.snapshot is None else self.snapshot.n_params
+        parts = [f"{self.rows.size} of {total} weights"]
+        if self.layer_filter is not None:
+            parts.append(f"layer {self.layer_filter + 1}")
+        if self.pattern:
+            parts.append(f"'{self.pattern}'")
+        title = COLUMNS[COLUMN_KEYS.index(self.sort_key)].title
+        if self.sort_key == "name":
+            parts.append("in network order" if not self.descending else "in reverse network order")
+        else:
+            parts.append(f"by {title}, {'largest' if self.descending else 'smallest'} first")
+        return " | ".join(parts)
+
+    def _filter_mask(self, snap: Snapshot) -> NDArray[np.bool_]:
+        if self._mask is None:
+            mask = np.ones(snap.n_params, dtype=bool)
+            if self.layer_filter is not None:
+                mask &= snap.layer == self.layer_filter
+            if self.pattern:
+                rx = wildcard(self.pattern)
+                mask &= np.fromiter((rx.search(n) is not None for n in snap.names), dtype=bool,
+                                    count=snap.n_params)
+            self._mask = mask
+        return self._mask
+
+    def _rebuild(self, view_changed: bool = False) -> None:
+        snap = self.snapshot
+        if snap is None:
+            return
+        keep = self._selected
+        rows = np.flatnonzero(self._filter_mask(snap)).astype(np.int64)
+        self.rows = sort_order(snap, self.sort_key, self.descending, rows)
+        self.virtual_size = Size(self.line_width(), self.rows.size + 1)
+        # A new order or filter starts at the top (worst first, say); new numbers keep the selection.
+        row = 0
+        if keep is not None and not view_changed:
+            hits = np.flatnonzero(self.rows == keep)
+            row = int(hits[0]) if hits.size else min(self.cursor, max(self.rows.size - 1, 0))
+        self.move_to(row, force=True)
+        self.border_title = self.describe()
+        if view_changed:
+            self.post_message(self.ViewChanged(self, self.describe()))
+        self.refresh()
+
+    # -- cursor ----------------------------------------------------------------------------
+
+    @property
+    def page_rows(self) -> int:
+        return max(1, self.scrollable_content_region.height - 1)
+
+    def move_to(self, row: int, force: bool = False) -> None:
+        """Put the cursor on ``row`` (a position in the shown order) and keep it in view."""
+        n = int(self.rows.size)
+        row = min(max(row, 0), max(n - 1, 0))
+        old_selected = self._selected
+        self.cursor = row
+        self._selected = int(self.rows[row]) if n else None
+        top = round(self.scroll_y)
+        if row < top:
+            self.scroll_to(y=row, animate=False, immediate=True)
+        elif row >= top + self.page_rows:
+            self.scroll_to(y=row - self.page_rows + 1, animate=False, immediate=True)
+        self.refresh()
+        if force or old_selected != self._selected:
+            self.post_message(self.Selected(self, self._selected))
+
+    def action_cursor(self, delta: int) -> None:
+        self.move_to(self.cursor + delta)
+
+    def action_page(self, delta: int) -> None:
+        self.move_to(self.cursor + delta * self.page_rows)
+
+    def action_first(self) -> None:
+        self.move_to(0)
+
+    def action_last(self) -> None:
+        self.move_to(int(self.rows.size) - 1)
+
+    def on_click(self, event: events.Click) -> None:
+        if event.y >= 1:
+            self.move_to(round(self.scroll_y) + event.y - 1)
+
+    # -- drawing ---------------------------------------------------------------------------
+
+    def widths(self) -> list[int]:
+        return [self._name_width] + [c.width for c in COLUMNS[1:]]
+
+    def line_width(self) -> int:
+        return LEAD + sum(self.widths()) + GAP * (len(COLUMNS) - 1)
+
+    def header_text(self) -> list[tuple[str, bool]]:
+        """Header cells, each with whether it is the sort column."""
+        out = []
+        stale = self.snapshot is not None and self.snapshot.stale
+        for column, width in zip(COLUMNS, self.widths()):
+            title = column.title
+            if column.key == "numeric" and stale:
+                title = "numeric*"
+            text = title.ljust(width) if column.key in ("name", "verdict", "frozen") else title.rjust(width)
+            out.append((text, column.key == self.sort_key))
+        return out
+
+    def row_cells(self, index: int) -> list[str]:
+        """The text of each cell of flat index ``index``, padded to the column widths."""
+        snap = self.snapshot
+        assert snap is not None
+        widths = self.widths()
+        rel = snap.rel_error[index]
+        return [
+            snap.names[index].ljust(widths[0]),
+            _number(snap.value[index], widths[1]),
+            _number(snap.analytic[index], widths[2]),
+            _number(snap.numeric[index], widths[3]),
+            ("-" if rel != rel else f"{rel:.1e}").rjust(widths[4]),
+            VERDICT_TEXT[int(snap.verdict[index])].ljust(widths[5]),
+            ("yes" if snap.frozen[index] else "").ljust(widths[6]),
+        ]
+
+    def notify_style_update(self) -> None:
+        super().notify_style_update()
+        self._style_cache.clear()
+
+    def _style(self, *components: str) -> Style:
+        """The widget's style plus the given component styles, cached until the styles change."""
+        style = self._style_cache.get(components)
+        if style is None:
+            style = self.rich_style
+            for name in components:
+                style = style + self.get_component_rich_style(name)
+            self._style_cache[components] = style
+        return style
+
+    def render_line(self, y: int) -> Strip:
+        scroll_x, scroll_y = self.scroll_offset
+        width = self.scrollable_content_region.width
+        base = self._style()
+        if self.snapshot is None:
+            return Strip.blank(width, base)
+        if y == 0:
+            strip = self._header_strip()
+        else:
+            row = scroll_y + y - 1
+            if row >= self.rows.size:
+                return Strip.blank(width, base)
+            strip = self._row_strip(row)
+        return strip.crop_extend(scroll_x, scroll_x + width, base)
+
+    def _header_strip(self) -> Strip:
+        header = self._style("weights--header")
+        sorted_style = self._style("weights--header", "weights--sorted")
+        segments = [Segment(" " * LEAD, header)]
+        for i, (text, is_sorted) in enumerate(self.header_text()):
+            if i:
+                segments.append(Segment(" " * GAP, header))
+            segments.append(Segment(text, sorted_style if is_sorted else header))
+        return Strip(segments, self.line_width())
+
+    def _row_strip(self, row: int) -> Strip:
+        snap = self.snapshot
+        assert snap is not None
+        index = int(self.rows[row])
+        cells = self.row_cells(index)
+        row_parts: tuple[str, ...] = ()
+        if snap.frozen[index]:
+            row_parts += ("weights--frozen",)
+        is_cursor = row == self.cursor
+        if is_cursor:
+            row_parts += ("weights--cursor",)
+        style = self._style(*row_parts)
+        code = int(snap.verdict[index])
+        if code == 4:
+            verdict_style = self._style(*row_parts, "weights--disagree")
+        elif code == 3:
+            verdict_style = self._style(*row_parts, "weights--doubtful")
+        else:
+            verdict_style = style
+        numeric_style = self._style(*row_parts, "weights--stale") if snap.stale else style
+        gap = Segment(" " * GAP, style)
+        segments = [Segment(">" if is_cursor else " ", style), Segment(" ", style)]
+        for i, text in enumerate(cells):
+            if i:
+                segments.append(gap)
+            if i in (4, 5):
+                segments.append(Segment(text, verdict_style))
+            elif i == 3:
+                segments.append(Segment(text, numeric_style))
+            else:
+                segments.append(Segment(text, style))
+        return Strip(segments, self.line_width())
+
+
+def _number(value: float, width: int) -> str:
+    """``value`` in sign-aligned scientific notation, ``-`` when it is NaN."""
+    if value != value:
+        return "-".rjust(width)
+    return f"{value: .3e}".rjust(width)

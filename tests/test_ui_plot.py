@@ -1,0 +1,69 @@
+"""The cost plot's text: its size, its axis scale, thinning long histories, the step mark."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from stepper.ui.costplot import TRAIN_MARK, VAL_MARK, Curves, build_plot, log_possible, thin
+
+
+def curves(n: int, val: bool = True) -> Curves:
+    steps = np.arange(n)
+    train = 1.0 / (1.0 + steps)
+    return Curves(steps, train, train * 1.2 if val else np.full(n, np.nan), n - 1)
+
+
+@pytest.mark.parametrize("width,height", [(40, 8), (78, 9), (120, 30)])
+def test_the_plot_has_the_size_of_the_widget(width: int, height: int) -> None:
+    lines = build_plot(curves(50), width, height, log=False).splitlines()
+    assert len(lines) == height
+    assert all(len(line) == width for line in lines)
+
+
+def test_both_curves_are_drawn_with_their_own_marks() -> None:
+    text = build_plot(curves(30), 60, 12, log=False)
+    assert TRAIN_MARK in text and VAL_MARK in text
+    assert VAL_MARK not in build_plot(curves(30, val=False), 60, 12, log=False)
+
+
+def test_a_log_axis_spreads_decades_evenly() -> None:
+    # Costs falling over three decades: on a log axis the tick labels step by a
+    # constant factor; on a linear one by a constant difference.
+    steps = np.arange(4)
+    c = Curves(steps, np.array([1.0, 0.1, 0.01, 0.001]), np.full(4, np.nan), 3)
+    log_labels = _y_labels(build_plot(c, 50, 12, log=True))
+    ratios = np.array(log_labels[:-1]) / np.array(log_labels[1:])
+    assert np.allclose(ratios, ratios[0], rtol=0.05)
+    lin_labels = _y_labels(build_plot(c, 50, 12, log=False))
+    assert np.allclose(np.diff(lin_labels), np.diff(lin_labels)[0], rtol=0.05, atol=1e-3)
+
+
+def _y_labels(text: str) -> list[float]:
+    out = []
+    for line in text.splitlines():
+        head = line.split("┤")[0].strip()
+        if "┤" in line and head:
+            out.append(float(head))
+    return out
+
+
+def test_log_needs_positive_costs_that_vary() -> None:
+    flat = Curves(np.arange(3), np.full(3, 0.5), np.full(3, np.nan), 2)
+    assert not log_possible(flat)
+    zero = Curves(np.arange(3), np.array([1.0, 0.5, 0.0]), np.full(3, np.nan), 2)
+    assert not log_possible(zero)
+    # Asking for log anyway draws a linear plot instead of failing.
+    assert len(build_plot(flat, 40, 8, log=True).splitlines()) == 8
+    assert len(build_plot(zero, 40, 8, log=True).splitlines()) == 8
+    assert len(build_plot(curves(1), 40, 8, log=True).splitlines()) == 8
+
+
+def test_long_histories_are_thinned_keeping_both_ends() -> None:
+    keep = thin(100_000, 200)
+    assert keep.size <= 200
+    assert keep[0] == 0 and keep[-1] == 99_999
+    assert np.all(np.diff(keep) > 0)
+    assert np.array_equal(thin(10, 200), np.arange(10))
+    text = build_plot(curves(100_000), 80, 12, log=True)
+    assert len(text.splitlines()) == 12
