@@ -1,0 +1,81 @@
+"""``stepper open``: the interactive app over one model (the default command)."""
+
+from __future__ import annotations
+
+import argparse
+import dataclasses
+import os
+import sys
+from pathlib import Path
+from typing import Any
+
+from stepper.commands.common import add_model_argument, load, positive_float, positive_int, sample_limit
+from stepper.core.optimizers import RULES
+from stepper.errors import UsageError
+from stepper.formats.model_file import Setup
+
+
+def default_log_file() -> Path:
+    """Where the app logs while it runs: ``$XDG_STATE_HOME/stepper/open.log`` (or ``~/.local/state``)."""
+    state = os.environ.get("XDG_STATE_HOME") or str(Path.home() / ".local" / "state")
+    return Path(state) / "stepper" / "open.log"
+
+
+def add_parser(subs: Any) -> None:
+    p = subs.add_parser(
+        "open",
+        help="open the app: every weight's slopes, a cost plot, descent by hand (the default)",
+        description="Open the terminal app on a model: a table of every weight with its analytic "
+        "and numeric slope, a cost plot, and keys to step, change the rate, freeze, perturb, undo "
+        "and save. Press ? in the app for the list of keys.",
+    )
+    add_model_argument(p)
+    p.add_argument("--resume", type=Path, default=None, metavar="CHECKPOINT", help="start from a checkpoint")
+    p.add_argument("--rate", type=positive_float, default=None, metavar="R",
+                   help="learning rate to start with (default 0.1, or the checkpoint's with --resume)")
+    p.add_argument("--rule", choices=RULES, default=None, help="update rule to start with (default gd)")
+    p.add_argument("--samples", type=positive_int, default=None, metavar="N",
+                   help="train on the first N training samples only (not with --journal)")
+    p.add_argument("--journal", type=Path, default=None, metavar="PATH",
+                   help="append every operation to this journal file (for stepper replay)")
+    p.add_argument("--noise", type=positive_float, default=0.01, metavar="SCALE",
+                   help="standard deviation of the noise the perturb keys add (default 0.01)")
+    p.add_argument("--check-every-step", action="store_true",
+                   help="recompute the numeric slopes after every step (a key turns it on and off)")
+    p.add_argument("--log", type=Path, default=None, metavar="PATH",
+                   help=f"log file while the app runs (default {default_log_file()})")
+    p.set_defaults(handler=handle)
+
+
+def cut_samples(setup: Setup, n: int) -> Setup:
+    """``setup`` training on its first ``n`` training samples only."""
+    X, Y = sample_limit(setup, n)
+    return dataclasses.replace(setup, data=dataclasses.replace(setup.data, X=X, Y=Y))
+
+
+def handle(args: argparse.Namespace) -> int:
+    if not (sys.stdin.isatty() and sys.stderr.isatty()):
+        raise UsageError("open needs a terminal on stdin and stderr; "
+                         "from a script use 'stepper run' or 'stepper check'")
+    if args.samples is not None and args.journal is not None:
+        raise UsageError("--samples cannot be combined with --journal: "
+                         "stepper replay would rebuild the session with every sample")
+    setup = load(args)
+    if args.samples is not None:
+        setup = cut_samples(setup, args.samples)
+    # Imported here so that the other commands start without loading Textual.
+    from stepper.session import Session
+    from stepper.ui.app import run_app
+
+    session = Session(setup, journal=args.journal)
+    try:
+        if args.resume is not None:
+            session.load_checkpoint(args.resume)
+        if args.rate is not None:
+            session.set_rate(args.rate)
+        if args.rule is not None and args.rule != session.rule:
+            session.set_rule(args.rule)
+        session.refresh_numeric_after_step = bool(args.check_every_step)
+        return run_app(session, args.log or default_log_file(), noise=args.noise)
+    finally:
+        session.close()

@@ -1,0 +1,543 @@
+"""The Stepper app: the weight table, the cost plot and the status line over one session.
+
+The app is the only caller of the session. Each key runs an ``action_*``
+method that calls one session operation, shows a ``StepperError`` as a
+notification (the session refuses bad input before changing anything), and
+redraws every widget from a fresh :class:`~stepper.ui.snapshot.Snapshot`.
+
+Long operations (N steps, numeric slopes) run in a thread worker that drives
+the session's progress generator, checks for cancellation between items and
+pushes progress back with ``call_from_thread``. While one runs, every other
+operation on the session is refused with a message; the table, the plot and
+the help stay usable. The worker itself reports its end, so the session is
+never touched by two threads at once.
+"""
+
+from __future__ import annotations
+
+import logging
+import math
+import time
+from pathlib import Path
+from typing import Any, Callable, ClassVar
+
+from textual import on, work
+from textual.app import App, ComposeResult
+from textual.binding import BindingType
+from textual.containers import Container
+from textual.widgets import Footer
+from textual.worker import Worker, get_current_worker
+
+from stepper.core.optimizers import RULES
+from stepper.errors import StepperError, UsageError
+from stepper.session import SLOPE_SOURCES, Session
+from stepper.ui.costplot import CostPlot
+from stepper.ui.dialogs import AskScreen, ChoiceScreen, ConfirmScreen, HelpScreen, QuitScreen
+from stepper.ui.keys import bindings
+from stepper.ui.panels import JobBar, RatePanel, StatusLine
+from stepper.ui.snapshot import Snapshot, take
+from stepper.ui.weights import WeightTable
+
+log = logging.getLogger("stepper.ui")
+
+#: Seconds between screen updates while a job runs (progress and, for steps, table and plot).
+UPDATE_EVERY = 0.2
+#: Standard deviation of the noise ``p`` and ``P`` add, unless the command line says otherwise.
+DEFAULT_NOISE = 0.01
+
+RULE_TEXT = {
+    "gd": "plain gradient descent",
+    "momentum": "gradient descent with momentum 0.9",
+    "adam": "Adam (Kingma & Ba 2015 defaults)",
+}
+
+
+def parse_float(text: str, what: str) -> float:
+    """A typed number, or UsageError naming what was expected."""
+    try:
+        value = float(text.strip())
+    except ValueError:
+        raise UsageError(f"{what}: {text.strip()!r} is not a number") from None
+    if not math.isfinite(value):
+        raise UsageError(f"{what}: {text.strip()!r} is not a finite number")
+    return value
+
+
+def parse_count(text: str, what: str) -> int:
+    """A typed whole number of at least 1, or UsageError."""
+    try:
+        value = int(text.strip())
+    except ValueError:
+        raise UsageError(f"{what}: {text.strip()!r} is not a whole number") from None
+    if value < 1:
+        raise UsageError(f"{what}: {value} must be at least 1")
+    return value
+
+
+class StepperApp(App[None]):
+    """Debug the slopes and steps of one model with the keyboard.
+
+    Every key is listed in :mod:`stepper.ui.keys` (and on the help screen, ``?``).
+    """
+
+    CSS_PATH = "app.tcss"
+    TITLE = "stepper"
+    ENABLE_COMMAND_PALETTE = False
+    HORIZONTAL_BREAKPOINTS = [(0, "-narrow"), (140, "-wide")]
+    BINDINGS: ClassVar[list[BindingType]] = bindings("app")  # type: ignore[assignment]
+
+    def __init__(self, session: Session, *, noise: float = DEFAULT_NOISE, default_steps: int = 100) -> None:
+        super().__init__()
+        self.session = session
+        self.noise = noise
+        self.default_steps = default_steps
+        #: The running job ("steps" or "check"), or None.
+        self.job: str | None = None
+        self._worker: Worker[None] | None = None
+        self.snapshot: Snapshot | None = None
+        self.show_rates = False
+        self.refreshes = 0
+
+    # -- layout ----------------------------------------------------------------------------
+
+    def compose(self) -> ComposeResult:
+        yield StatusLine(id="status")
+        with Container(id="main"):
+            yield WeightTable(id="weights")
+            with Container(id="side"):
+                yield CostPlot(id="plot")
+                yield RatePanel(id="rates")
+        yield JobBar(id="job")
+        yield Footer()
+
+    @property
+    def table(self) -> WeightTable:
+        return self.query_one(WeightTable)
+
+    @property
+    def plot(self) -> CostPlot:
+        return self.query_one(CostPlot)
+
+    def on_mount(self) -> None:
+        self.sub_title = self.session.setup.name
+        self.refresh_view()
+        self.table.focus()
+
+    def refresh_view(self) -> None:
+        """Redraw every widget from a new snapshot of the session (on the app's thread only)."""
+        snap = take(self.session)
+        self.snapshot = snap
+        self.refreshes += 1
+        self.table.show(snap)
+        self.plot.show(snap)
+        self._show_status()
+        if self.show_rates and self.job != "steps":
+            self._show_rates()
+
+    def _show_status(self) -> None:
+        if self.snapshot is not None:
+            job = None if self.job is None else f"running: {self.job} (x cancels)"
+            self.query_one(StatusLine).show(self.snapshot, self.session.refresh_numeric_after_step, job)
+
+    def _show_rates(self) -> None:
+        preview = self.session.preview_rates()
+        best = self.session.best_preview_rate(preview) if preview else None
+        self.query_one(RatePanel).show(preview, self.session.rate, best)
+
+    # -- helpers ---------------------------------------------------------------------------
+
+    def say(self, message: str, error: bool = False) -> None:
+        """A notification; never markup, since weight names contain brackets."""
+        self.notify(message, severity="error" if error else "information", markup=False,
+                    timeout=8 if error else 4)
+
+    def busy(self) -> bool:
+        """True (and says so) when a job runs and the session must not be touched."""
+        if self.job is not None:
+            self.say(f"busy: {self.job} is running (x cancels it)", error=True)
+            return True
+        return False
+
+    def apply(self, operation: Callable[[], Any]) -> bool:
+        """Run one session operation; a StepperError becomes a message. Returns success."""
+        if self.busy():
+            return False
+        try:
+            operation()
+        except StepperError as exc:
+            log.info("refused: %s", exc.message)
+            self.say(exc.message, error=True)
+            self.refresh_view()
+            return False
+        self.refresh_view()
+        return True
+
+    def selected(self) -> int | None:
+        """Flat index of the selected weight, or None (and a message) when no row is shown."""
+        index = self.table.selected
+        if index is None:
+            self.say("no weight is selected (the filter shows no rows)", error=True)
+        return index
+
+    def ask(self, title: str, prompt: str, value: str, then: Callable[[str], object], placeholder: str = "") -> None:
+        """Ask for a typed value; ``then`` runs with it unless the user cancels."""
+
+        def answered(text: str | None) -> None:
+            if text is not None:
+                then(text)
+
+        self.push_screen(AskScreen(title, prompt, value, placeholder), answered)
+
+    # -- descent ---------------------------------------------------------------------------
+
+    def action_step(self) -> None:
+        if self.apply(lambda: self.session.step(1)):
+            self.after_steps()
+
+    def action_run_steps(self) -> None:
+        if self.busy():
+            return
+
+        def run(text: str) -> None:
+            try:
+                n = parse_count(text, "number of steps")
+            except UsageError as exc:
+                self.say(exc.message, error=True)
+                return
+            self.default_steps = n
+            self.start_steps(n)
+
+        self.ask("Run steps", "How many steps?", str(self.default_steps), run)
+
+    def action_cancel_job(self) -> None:
+        if self._worker is None:
+            self.say("nothing is running")
+            return
+        self._worker.cancel()
+        self.say(f"cancelling {self.job}...")
+
+    def action_double_rate(self) -> None:
+        self.apply(lambda: self.session.set_rate(self.session.rate * 2.0))
+
+    def action_halve_rate(self) -> None:
+        self.apply(lambda: self.session.set_rate(self.session.rate / 2.0))
+
+    def action_type_rate(self) -> None:
+        if self.busy():
+            return
+        self.ask("Rate", "New learning rate (a positive number):", f"{self.session.rate:g}",
+                 lambda text: self.apply(lambda: self.session.set_rate(parse_float(text, "rate"))))
+
+    def action_choose_rule(self) -> None:
+        if self.busy():
+            return
+
+        def chosen(rule: str | None) -> None:
+            if rule is not None and rule != self.session.rule:
+                self.apply(lambda: self.session.set_rule(rule))
+
+        choices = [(name, RULE_TEXT.get(name, "")) for name in RULES]
+        self.push_screen(ChoiceScreen("Update rule", choices, self.session.rule), chosen)
+
+    def action_toggle_source(self) -> None:
+        other = [s for s in SLOPE_SOURCES if s != self.session.slope_source][0]
+        self.apply(lambda: self.session.set_slope_source(other))
+
+    def action_type_batch(self) -> None:
+        if self.busy():
+            return
+        current = "" if self.session.batch_size is None else str(self.session.batch_size)
+
+        def chosen(text: str) -> None:
+            self.apply(lambda: self.session.set_batch_size(
+                None if text.strip() in ("", "full") else parse_count(text, "batch size")))
+
+        self.ask("Mini-batch size", f"Samples per step, 1 to {self.session.setup.data.n_train} "
+                 "(empty: the full training set):", current, chosen)
+
+    def action_toggle_preview(self) -> None:
+        self.show_rates = not self.show_rates
+        self.query_one(RatePanel).set_class(self.show_rates, "-shown")
+        if self.show_rates and not self.busy():
+            self._show_rates()
+
+    def action_adopt_best_rate(self) -> None:
+        if self.busy():
+            return
+        preview = self.session.preview_rates()
+        best = self.session.best_preview_rate(preview)
+        if math.isclose(best, self.session.rate, rel_tol=1e-12):
+            self.say(f"the current rate {best:g} is already the best of the preview")
+            return
+        self.apply(lambda: self.session.set_rate(best))
+
+    def after_steps(self) -> None:
+        """Recompute numeric slopes when the user asked for that after every step."""
+        if self.session.refresh_numeric_after_step and self.job is None:
+            self.start_check()
+
+    # -- slopes ----------------------------------------------------------------------------
+
+    def action_compute_check(self) -> None:
+        if not self.busy():
+            self.start_check()
+
+    def action_toggle_auto_check(self) -> None:
+        # A preference the session keeps (it decides nothing with it); not an undoable operation.
+        self.session.refresh_numeric_after_step = not self.session.refresh_numeric_after_step
+        state = "on" if self.session.refresh_numeric_after_step else "off"
+        self.say(f"numeric slopes after every step: {state}")
+        self._show_status()
+
+    # -- weights ---------------------------------------------------------------------------
+
+    def action_freeze_weight(self) -> None:
+        index = self.selected()
+        if index is not None:
+            self.apply(lambda: self.session.toggle_freeze([index]))
+
+    def action_freeze_layer(self) -> None:
+        index = self.selected()
+        if index is not None:
+            layer = int(self.session.net.layout.layer_index[index])
+            self.apply(lambda: self.session.toggle_freeze(self.session.layer_indices(layer)))
+
+    def action_perturb_weight(self) -> None:
+        index = self.selected()
+        if index is not None:
+            self.apply(lambda: self.session.perturb(self.noise, [index]))
+
+    def action_perturb_all(self) -> None:
+        self.apply(lambda: self.session.perturb(self.noise))
+
+    def action_edit_value(self) -> None:
+        index = self.selected()
+        if index is None or self.busy():
+            return
+        name = self.session.names[index]
+        self.ask(f"Value of {name}", "New value:", f"{self.session.theta[index]:.17g}",
+                 lambda text: self.apply(lambda: self.session.set_value(index, parse_float(text, name))))
+
+    def action_reset(self) -> None:
+        self.apply(self.session.reset)
+
+    def action_undo(self) -> None:
+        names: list[str | None] = []
+        if self.apply(lambda: names.append(self.session.undo())) and names[0] is None:
+            self.say("nothing to undo")
+
+    def action_redo(self) -> None:
+        names: list[str | None] = []
+        if self.apply(lambda: names.append(self.session.redo())) and names[0] is None:
+            self.say("nothing to redo")
+
+    # -- table and plot (view only, allowed while a job runs) -------------------------------
+
+    def action_next_order(self) -> None:
+        self.table.next_order()
+
+    def action_flip_order(self) -> None:
+        self.table.flip_order()
+
+    def action_next_layer(self) -> None:
+        self.table.step_layer(1)
+
+    def action_previous_layer(self) -> None:
+        self.table.step_layer(-1)
+
+    def action_filter_names(self) -> None:
+        self.ask("Filter", "Show names matching (* and ? are wildcards; empty shows all):",
+                 self.table.pattern, self.table.set_pattern, placeholder="e.g. L1.W*")
+
+    def action_jump(self) -> None:
+        layout = self.session.net.layout
+
+        def go(text: str) -> None:
+            try:
+                index = layout.lookup(text.strip())
+            except KeyError:
+                self.say(f"no weight is called {text.strip()!r} (names look like {layout.names[0]})",
+                         error=True)
+                return
+            self.table.select(index)
+
+        self.ask("Jump", "Weight name:", "", go, placeholder=f"e.g. {layout.names[-1]}")
+
+    def action_toggle_log(self) -> None:
+        self.plot.log_scale = not self.plot.log_scale
+
+    @on(WeightTable.ViewChanged)
+    def _view_changed(self, event: WeightTable.ViewChanged) -> None:
+        log.debug("table: %s", event.description)
+
+    # -- files -----------------------------------------------------------------------------
+
+    def action_save(self) -> None:
+        self.save_then(None)
+
+    def save_then(self, after: Callable[[], None] | None) -> None:
+        """Ask for a path and save a checkpoint there; then run ``after`` if the save worked."""
+        if self.busy():
+            return
+
+        def write(path: Path) -> None:
+            if self.apply(lambda: self.session.save_checkpoint(path)):
+                self.say(f"saved {path}")
+                if after is not None:
+                    after()
+
+        def chosen(text: str) -> None:
+            if not text.strip():
+                self.say("no path given: nothing saved", error=True)
+                return
+            path = Path(text.strip()).expanduser()
+            if path.exists():
+                self.push_screen(ConfirmScreen(f"{path} exists. Overwrite it? (y: yes, any other key: no)"),
+                                 lambda yes: write(path) if yes else self.say("nothing saved"))
+            else:
+                write(path)
+
+        self.ask("Save checkpoint", "Path of the checkpoint (.safetensors):",
+                 str(self.session.default_checkpoint_path()), chosen)
+
+    def action_load(self) -> None:
+        if self.busy():
+            return
+        last = self.session.last_checkpoint
+        proposal = str(last) if last is not None else str(self.session.session_folder()) + "/"
+
+        def chosen(text: str) -> None:
+            path = Path(text.strip()).expanduser()
+            if self.apply(lambda: self.session.load_checkpoint(path)):
+                self.say(self.session.last_action or f"loaded {path}")
+
+        self.ask("Load checkpoint", "Path of the checkpoint to load (undo takes it back):", proposal, chosen)
+
+    # -- app -------------------------------------------------------------------------------
+
+    def action_help(self) -> None:
+        self.push_screen(HelpScreen())
+
+    async def action_quit(self) -> None:
+        if self.job is not None:
+            self.say(f"{self.job} is running: x cancels it, then q quits", error=True)
+            return
+        if not self.session.dirty:
+            self.exit()
+            return
+
+        def answered(choice: str | None) -> None:
+            if choice == "quit":
+                self.exit()
+            elif choice == "save":
+                self.save_then(self.exit)
+
+        self.push_screen(QuitScreen(), answered)
+
+    # -- jobs ------------------------------------------------------------------------------
+
+    def start_steps(self, n: int) -> None:
+        self._begin("steps", n)
+        self._worker = self._steps_worker(n)
+
+    def start_check(self) -> None:
+        self._begin("numeric slopes", self.session.net.n_params)
+        self._worker = self._check_worker()
+
+    def _begin(self, job: str, total: int) -> None:
+        self.job = job
+        self.query_one(JobBar).start(job, total)
+        self._show_status()
+
+    @work(thread=True, exclusive=True, group="session", exit_on_error=False)
+    def _steps_worker(self, n: int) -> None:
+        worker = get_current_worker()
+        job = self.session.iter_steps(n)
+        error: StepperError | None = None
+        cancelled = False
+        last = time.monotonic()
+        try:
+            for done, total in job:
+                if worker.is_cancelled:
+                    cancelled = True
+                    break
+                now = time.monotonic()
+                if now - last >= UPDATE_EVERY:
+                    last = now
+                    self._from_worker(self._job_progress, done, total, True)
+        except StepperError as exc:
+            error = exc
+        finally:
+            job.close()
+        self._from_worker(self._job_done, "steps", error, cancelled)
+
+    @work(thread=True, exclusive=True, group="session", exit_on_error=False)
+    def _check_worker(self) -> None:
+        worker = get_current_worker()
+        job = self.session.iter_refresh_check()
+        error: StepperError | None = None
+        cancelled = False
+        last = time.monotonic()
+        try:
+            for done, total in job:
+                if worker.is_cancelled:
+                    cancelled = True
+                    break
+                now = time.monotonic()
+                if now - last >= UPDATE_EVERY:
+                    last = now
+                    self._from_worker(self._job_progress, done, total, False)
+        except StepperError as exc:
+            error = exc
+        finally:
+            job.close()
+        self._from_worker(self._job_done, "numeric slopes", error, cancelled)
+
+    def _from_worker(self, callback: Callable[..., None], *args: Any) -> None:
+        """``call_from_thread`` that gives up quietly when the app has already closed."""
+        try:
+            self.call_from_thread(callback, *args)
+        except RuntimeError:
+            log.info("app closed before a job update could be shown")
+
+    def _job_progress(self, done: int, total: int, redraw: bool) -> None:
+        self.query_one(JobBar).advance(done, total)
+        if redraw:
+            self.refresh_view()
+
+    def _job_done(self, job: str, error: StepperError | None, cancelled: bool) -> None:
+        self.job = None
+        self._worker = None
+        self.query_one(JobBar).stop()
+        self.refresh_view()
+        if error is not None:
+            log.info("%s stopped: %s", job, error.message)
+            self.say(error.message, error=True)
+        elif cancelled:
+            self.say(f"{job} cancelled" + (f"; kept: {self.session.last_action}" if job == "steps" else ""))
+        elif job == "steps":
+            self.after_steps()
+
+
+def run_app(session: Session, log_file: Path, noise: float = DEFAULT_NOISE) -> int:
+    """Run the app on the terminal until the user quits; returns the exit code.
+
+    Textual draws on stderr, so while the app runs every log record and warning
+    goes to ``log_file`` instead.
+    """
+    log_file.parent.mkdir(parents=True, exist_ok=True)
+    handler = logging.FileHandler(log_file, encoding="utf-8")
+    handler.setFormatter(logging.Formatter("%(asctime)s %(name)s %(levelname)s %(message)s"))
+    root = logging.getLogger()
+    saved_level, saved_handlers = root.level, root.handlers[:]
+    root.handlers = [handler]
+    root.setLevel(logging.INFO)
+    logging.captureWarnings(True)
+    try:
+        StepperApp(session, noise=noise).run()
+    finally:
+        logging.captureWarnings(False)
+        root.handlers = saved_handlers
+        root.setLevel(saved_level)
+        handler.close()
+    return 0

@@ -1,0 +1,43 @@
+"""``stepper open`` on the command line: the parser, and refusals before the app starts."""
+
+from __future__ import annotations
+
+import sys
+from pathlib import Path
+
+import pytest
+
+from stepper.cli import build_parser, main
+from stepper.commands.open import cut_samples, default_log_file
+from stepper.formats.model_file import load_setup
+from stepper.scenarios import default_model
+
+
+def test_open_is_registered_with_its_options() -> None:
+    args = build_parser().parse_args(["open", "--rate", "0.05", "--rule", "adam", "--noise", "0.1",
+                                      "--check-every-step"])
+    assert args.command == "open"
+    assert args.model is None
+    assert (args.rate, args.rule, args.noise, args.check_every_step) == (0.05, "adam", 0.1, True)
+
+
+def test_open_without_a_terminal_is_one_line_and_exit_2(capsys: pytest.CaptureFixture[str]) -> None:
+    # Under pytest stdin is not a terminal.
+    assert not sys.stdin.isatty()
+    assert main(["open"]) == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1
+    assert err.startswith("stepper: open needs a terminal")
+
+
+def test_samples_cut_the_training_set_only() -> None:
+    setup = load_setup(default_model())
+    cut = cut_samples(setup, 5)
+    assert cut.data.X.shape == (5, setup.data.X.shape[1])
+    assert cut.data.Y.shape[0] == 5
+    assert cut.data.X_val.shape == setup.data.X_val.shape
+
+
+def test_log_file_follows_xdg_state_home(monkeypatch: pytest.MonkeyPatch, tmp_path: Path) -> None:
+    monkeypatch.setenv("XDG_STATE_HOME", str(tmp_path))
+    assert default_log_file() == tmp_path / "stepper" / "open.log"
