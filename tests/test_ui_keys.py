@@ -587,6 +587,18 @@ def test_question_mark_lists_every_key(session: Session) -> None:
     drive(session, check)
 
 
+def test_main_keys_do_nothing_while_a_dialog_is_open(session: Session) -> None:
+    async def check(app: StepperApp, pilot: Pilot[Any], said: list[tuple[str, str]]) -> None:
+        await press(app, pilot, "question_mark", "s", "plus", "R")
+        assert isinstance(app.screen, HelpScreen)
+        await press(app, pilot, "escape", "u", "s")  # the rule list is open: s is not a step
+        assert isinstance(app.screen, ChoiceScreen)
+        await press(app, pilot, "escape")
+        assert session.step_count == 0 and session.rate == 0.1 and not session.dirty
+
+    drive(session, check)
+
+
 def test_q_quits_at_once_without_changes(session: Session) -> None:
     async def check(app: StepperApp, pilot: Pilot[Any], said: list[tuple[str, str]]) -> None:
         await press(app, pilot, "q")

@@ -25,6 +25,7 @@ from textual import on, work
 from textual.app import App, ComposeResult
 from textual.binding import BindingType
 from textual.containers import Container
+from textual.screen import ModalScreen
 from textual.widgets import Footer
 from textual.worker import Worker, get_current_worker
 
@@ -33,12 +34,15 @@ from stepper.errors import StepperError, UsageError
 from stepper.session import SLOPE_SOURCES, Session
 from stepper.ui.costplot import CostPlot
 from stepper.ui.dialogs import AskScreen, ChoiceScreen, ConfirmScreen, HelpScreen, QuitScreen
-from stepper.ui.keys import bindings
+from stepper.ui.keys import KEYS, bindings
 from stepper.ui.panels import JobBar, RatePanel, StatusLine
 from stepper.ui.snapshot import Snapshot, take
 from stepper.ui.weights import WeightTable
 
 log = logging.getLogger("stepper.ui")
+
+#: Actions of the main screen's keys (their names without arguments).
+_MAIN_ACTIONS = frozenset(k.action.split("(")[0] for k in KEYS if k.scope == "app")
 
 #: Seconds between screen updates while a job runs (progress and, for steps, table and plot).
 UPDATE_EVERY = 0.2
@@ -143,6 +147,12 @@ class StepperApp(App[None]):
         preview = self.session.preview_rates()
         best = self.session.best_preview_rate(preview) if preview else None
         self.query_one(RatePanel).show(preview, self.session.rate, best)
+
+    def check_action(self, action: str, parameters: tuple[object, ...]) -> bool | None:
+        """The main screen's keys do nothing while a dialog is open (Textual would still run them)."""
+        if action in _MAIN_ACTIONS and isinstance(self.screen, ModalScreen):
+            return False
+        return True
 
     # -- helpers ---------------------------------------------------------------------------
 

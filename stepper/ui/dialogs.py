@@ -30,6 +30,7 @@ class AskScreen(ModalScreen[str | None]):
     """
 
     BINDINGS: ClassVar[list[BindingType]] = [Binding("escape", "cancel", "cancel")]
+    AUTO_FOCUS = "#answer"
 
     def __init__(self, title: str, prompt: str, value: str = "", placeholder: str = "") -> None:
         super().__init__()
@@ -44,9 +45,6 @@ class AskScreen(ModalScreen[str | None]):
             yield Label(self.prompt)
             yield Input(value=self.value, placeholder=self.placeholder, id="answer")
             yield Label("enter accepts, esc cancels", classes="dialog-hint")
-
-    def on_mount(self) -> None:
-        self.query_one(Input).focus()
 
     @on(Input.Submitted, "#answer")
     def _submitted(self, event: Input.Submitted) -> None:

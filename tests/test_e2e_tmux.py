@@ -1,0 +1,125 @@
+"""End to end: the real ``stepper open`` in an 80x24 tmux pane, driven by keys.
+
+Runs the stepper entry point of the interpreter running the tests (its venv's
+bin folder), so it checks what a user gets after ``pip install``. Each run uses
+its own tmux session name and kills only that session.
+"""
+
+from __future__ import annotations
+
+import os
+import shlex
+import shutil
+import subprocess
+import sys
+import time
+import uuid
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from stepper.formats.model_file import load_setup
+from stepper.scenarios import default_model
+from stepper.session import Session
+
+STEPPER = Path(sys.executable).parent / "stepper"
+
+pytestmark = [
+    pytest.mark.skipif(shutil.which("tmux") is None, reason="tmux is not installed"),
+    pytest.mark.skipif(not STEPPER.exists(), reason=f"no stepper entry point next to {sys.executable}"),
+]
+
+
+class Pane:
+    """One detached tmux session running one command."""
+
+    def __init__(self, command: str, width: int = 80, height: int = 24) -> None:
+        self.name = f"stepper-e2e-{os.getpid()}-{uuid.uuid4().hex[:8]}"
+        subprocess.run(["tmux", "new-session", "-d", "-s", self.name, "-x", str(width), "-y", str(height),
+                        command], check=True)
+
+    def screen(self) -> str:
+        done = subprocess.run(["tmux", "capture-pane", "-p", "-t", self.name], capture_output=True, text=True)
+        return done.stdout
+
+    def keys(self, *keys: str, literal: bool = False) -> None:
+        subprocess.run(["tmux", "send-keys", "-t", self.name, *(["-l"] if literal else []), *keys], check=True)
+
+    def wait_for(self, text: str, timeout: float = 20.0) -> str:
+        """The screen once it shows ``text``; fails with the last screen after ``timeout`` seconds."""
+        end = time.monotonic() + timeout
+        while True:
+            screen = self.screen()
+            if text in screen:
+                return screen
+            if time.monotonic() > end:
+                raise AssertionError(f"{text!r} did not appear; the screen was:\n{screen}")
+            time.sleep(0.05)
+
+    def wait_gone(self, text: str, timeout: float = 20.0) -> str:
+        """The screen once ``text`` has left it."""
+        end = time.monotonic() + timeout
+        while True:
+            screen = self.screen()
+            if text not in screen:
+                return screen
+            if time.monotonic() > end:
+                raise AssertionError(f"{text!r} did not go away; the screen was:\n{screen}")
+            time.sleep(0.05)
+
+    def kill(self) -> None:
+        subprocess.run(["tmux", "kill-session", "-t", self.name], capture_output=True)
+
+
+@pytest.mark.parametrize("term,no_color", [("xterm-256color", False), ("xterm", True)])
+def test_step_save_and_quit_in_an_80x24_terminal(tmp_path: Path, term: str, no_color: bool) -> None:
+    checkpoint = tmp_path / "after three steps.safetensors"
+    status_file = tmp_path / "exit-status"
+    env = f"TERM={term}" + (" NO_COLOR=1" if no_color else "")
+    command = (f"env {env} {shlex.quote(str(STEPPER))} open --log {shlex.quote(str(tmp_path / 'open.log'))}; "
+               f"echo $? > {shlex.quote(str(status_file))}; sleep 30")
+    pane = Pane(command)
+    try:
+        pane.wait_for("q quit")  # the footer: the whole first screen is drawn
+        first = pane.wait_for("L1.W[0,0]")
+        assert "step 0 " in first
+        assert "train" in first and "┤" in first  # the cost plot's axis
+        assert all(len(line) <= 80 for line in first.splitlines())
+        assert len(first.splitlines()) <= 24
+
+        pane.keys("s", "s", "s")
+        pane.wait_for("step 3 ")
+        pane.keys("c")
+        screen = pane.wait_for("37 agree")
+        assert " agree " in screen  # the verdict column, as a word
+        assert "unsaved" in screen
+
+        pane.keys("w")
+        pane.wait_for("model.checkpoints")  # the proposed path, in the focused field
+        pane.keys("C-u")
+        # The field's own keys run as actions after plain typing: let the clearing land first.
+        pane.wait_gone("model.checkpoints")
+        pane.keys(str(checkpoint), literal=True)
+        pane.wait_for(checkpoint.name)
+        pane.keys("Enter")
+        screen = pane.wait_for("last: saved")
+        assert "unsaved" not in screen
+
+        pane.keys("q")
+        end = time.monotonic() + 20
+        while not status_file.exists() or not status_file.read_text().strip():
+            assert time.monotonic() < end, pane.screen()
+            time.sleep(0.05)
+        assert status_file.read_text().strip() == "0"
+    finally:
+        pane.kill()
+
+    # The checkpoint holds exactly the weights of three full-batch gradient descent
+    # steps at the default rate, as the session computes them in this process.
+    expected = Session(load_setup(default_model()))
+    expected.step(3)
+    loaded = Session(load_setup(default_model()))
+    loaded.load_checkpoint(checkpoint)
+    assert loaded.step_count == 3
+    assert np.array_equal(loaded.theta, expected.theta)
