@@ -36,8 +36,14 @@ class Pane:
 
     def __init__(self, command: str, width: int = 80, height: int = 24) -> None:
         self.name = f"stepper-e2e-{os.getpid()}-{uuid.uuid4().hex[:8]}"
-        subprocess.run(["tmux", "new-session", "-d", "-s", self.name, "-x", str(width), "-y", str(height),
-                        command], check=True)
+        for _ in range(5):
+            # A tmux server whose last session just ended refuses new sessions while it shuts down.
+            started = subprocess.run(["tmux", "new-session", "-d", "-s", self.name, "-x", str(width),
+                                      "-y", str(height), command], capture_output=True, text=True)
+            if started.returncode == 0:
+                return
+            time.sleep(0.2)
+        raise AssertionError(f"tmux could not start a session: {started.stderr}")
 
     def screen(self) -> str:
         done = subprocess.run(["tmux", "capture-pane", "-p", "-t", self.name], capture_output=True, text=True)

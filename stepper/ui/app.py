@@ -201,7 +201,10 @@ class StepperApp(App[None]):
     # -- descent ---------------------------------------------------------------------------
 
     def action_step(self) -> None:
-        if self.apply(lambda: self.session.step(1)):
+        if self.session.slope_source == "numeric" and not self.busy():
+            # Finite differences of every weight can take a while: keep the screen responsive.
+            self.start_steps(1)
+        elif self.apply(lambda: self.session.step(1)):
             self.after_steps()
 
     def action_run_steps(self) -> None:

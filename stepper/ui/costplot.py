@@ -171,16 +171,16 @@ class CostPlot(Widget):
 
     def render_line(self, y: int) -> Strip:
         width, height = self.content_size.width, self.content_size.height
-        base = self.rich_style
-        if self.curves is None or width < 12 or height < 4:
-            return Strip.blank(width, base)
         key = (width, height, self.log_scale)
         if self._key != key:
-            self._strips = self._build(width, height, base)
+            base = self.rich_style
+            if self.curves is None or width < 12 or height < 4:
+                self._strips = [Strip.blank(width, base)] * height
+            else:
+                self._strips = self._build(width, height, base)
+                self._strips += [Strip.blank(width, base)] * (height - len(self._strips))
             self._key = key
-        if y >= len(self._strips):
-            return Strip.blank(width, base)
-        return self._strips[y]
+        return self._strips[y] if y < len(self._strips) else Strip.blank(width)
 
     def _build(self, width: int, height: int, base: Style) -> list[Strip]:
         assert self.curves is not None
