@@ -48,7 +48,8 @@ def read_columns(path: Path, wanted: list[str], label: str | None = None) -> Tab
             rows = list(csv.reader(handle))
     except FileNotFoundError:
         raise DataFileError(f"{name}: no such data file") from None
-    except (OSError, UnicodeDecodeError, csv.Error) as exc:
+    except (OSError, UnicodeDecodeError, csv.Error, ValueError) as exc:
+        # ValueError: a path with a NUL character in it.
         raise DataFileError(f"{name}: cannot be read as CSV ({exc})") from None
     while rows and not any(cell.strip() for cell in rows[-1]):
         rows.pop()

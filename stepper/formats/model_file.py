@@ -41,6 +41,7 @@ starting values (seeded by ``[init].seed``, or 0 without ``[init]``).
 from __future__ import annotations
 
 import hashlib
+import math
 import tomllib
 from dataclasses import dataclass
 from pathlib import Path
@@ -63,6 +64,11 @@ TOP_KEYS = {"name", "loss", "data", "init", "layers"}
 DATA_KEYS = {"file", "inputs", "targets", "standardize", "validation_fraction", "seed"}
 INIT_KEYS = {"scheme", "seed", "range", "file", "names"}
 LAYER_KEYS = {"units", "activation", "bias", "weights", "biases", "type", "file", "class", "options"}
+
+#: Most parameters a model file may describe. Stepper lists, checks and steps
+#: every weight, which is only practical for small networks; the limit turns a
+#: typo such as ``units = 30000000`` into a message instead of gigabytes of memory.
+MAX_PARAMETERS = 10_000_000
 
 
 @dataclass(frozen=True)
@@ -129,7 +135,17 @@ class _Keys:
         value = self.get(key, list)
         if not value or not all(isinstance(v, str) for v in value):
             self.fail(key, "expected a non-empty list of column names")
+        twice = sorted({v for v in value if value.count(v) > 1})
+        if twice:
+            self.fail(key, f"column(s) {', '.join(repr(v) for v in twice)} named more than once")
         return list(value)
+
+    def seed(self, key: str) -> int:
+        """A random seed: a whole number, 0 or more (numpy refuses negative seeds); default 0."""
+        value: int = self.get(key, int, 0)
+        if value < 0:
+            self.fail(key, f"{value} is negative (a seed is a whole number, 0 or more)")
+        return value
 
     def choice(self, key: str, allowed: dict[str, Any] | tuple[str, ...], default: Any = ...) -> str:
         value = self.get(key, str, default)
@@ -177,6 +193,8 @@ def load_setup(path: str | Path) -> Setup:
         raise ModelFileError(f"{label}: not UTF-8 text") from None
     except tomllib.TOMLDecodeError as exc:
         raise ModelFileError(f"{label}: not valid TOML ({exc})") from None
+    except RecursionError:
+        raise ModelFileError(f"{label}: not valid TOML (arrays or tables nested too deeply)") from None
 
     top = _Keys(label, "", doc, TOP_KEYS)
     name = top.get("name", str, path.parent.name or path.stem)
@@ -191,9 +209,15 @@ def load_setup(path: str | Path) -> Setup:
     layers: list[Layer] = []
     inline: list[tuple[int, _Keys]] = []
     n_in = len(data.input_names)
+    n_params = 0
     for i, entry in enumerate(layer_list):
         keys = _Keys(label, f"layers[{i}]", entry, LAYER_KEYS)
         layer = _build_layer(keys, n_in, path)
+        n_params += sum(math.prod(spec.shape) for spec in layer.param_specs())
+        if n_params > MAX_PARAMETERS:
+            keys.fail("units" if keys.has("units") else "",
+                      f"the network would have {n_params:,} parameters up to this layer; "
+                      f"Stepper handles at most {MAX_PARAMETERS:,}")
         layers.append(layer)
         if keys.has("weights") or keys.has("biases"):
             inline.append((i, keys))
@@ -211,6 +235,8 @@ def load_setup(path: str | Path) -> Setup:
 
 def _load_data(model_path: Path, keys: _Keys) -> Dataset:
     file = keys.get("file", str)
+    if not file.strip() or "\0" in file:
+        keys.fail("file", f"{file!r} is not a file name")
     inputs = keys.names("inputs")
     targets = keys.names("targets")
     overlap = sorted(set(inputs) & set(targets))
@@ -220,7 +246,7 @@ def _load_data(model_path: Path, keys: _Keys) -> Dataset:
     fraction = keys.get("validation_fraction", float, 0.0)
     if not 0.0 <= fraction < 1.0:
         keys.fail("validation_fraction", f"{fraction} is outside [0, 1)")
-    seed = keys.get("seed", int, 0)
+    seed = keys.seed("seed")
     csv_path = (model_path.parent / file) if not Path(file).is_absolute() else Path(file)
     table = read_columns(csv_path, inputs + targets, label=str(csv_path))
     return build_dataset(table, inputs, targets, standardize, fraction, seed, str(csv_path))
@@ -262,10 +288,10 @@ def _initial_values(label: str, top: _Keys, network: Network, inline: list[tuple
             imported = True
         else:
             scheme = init.choice("scheme", SCHEMES)
-            seed = init.get("seed", int, 0)
+            seed = init.seed("seed")
             spread = init.get("range", float, 0.5)
-            if spread <= 0:
-                init.fail("range", f"{spread} must be positive")
+            if not (math.isfinite(spread) and spread > 0):
+                init.fail("range", f"{spread} must be a positive number")
             theta = initial_params(network, scheme, seed, spread)
     elif needs_scheme:
         top.fail("init", "missing: give [init] scheme and seed, or inline weights for every layer")
@@ -287,7 +313,15 @@ def _apply_inline(keys: _Keys, network: Network, index: int, theta: Array) -> No
             keys.fail(key, "this layer has bias = false, so it takes no biases")
         target = views[array_key]
         value = keys.get(key, list)
+        rows = value if key == "weights" else [value]
+        numbers = all(
+            isinstance(row, list)
+            and all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in row)
+            for row in rows
+        )
         try:
+            if not numbers:
+                raise TypeError
             array = np.array(value, dtype=np.float64)
         except (TypeError, ValueError):
             keys.fail(key, "expected numbers (a list of rows for weights, a list for biases)")
