@@ -105,7 +105,9 @@ def build_plot(curves: Curves, width: int, height: int, log: bool) -> str:
         fig.ruler("y").scale("log")
     else:
         pad = 0.05 * (hi - lo) if hi > lo else max(abs(hi) * 0.1, 1e-12)
-        fig.ruler("y").lim(lo - pad, hi + pad)
+        # Costs are never negative here; keep the axis from showing negative values for them.
+        bottom = max(lo - pad, 0.0) if lo >= 0.0 else lo - pad
+        fig.ruler("y").lim(bottom, hi + pad)
     first = int(min(curves.steps[0], curves.current)) if curves.steps.size else 0
     last = int(max(curves.steps[-1], curves.current)) if curves.steps.size else 0
     if last == first:

@@ -8,6 +8,7 @@ from __future__ import annotations
 
 from typing import ClassVar, Sequence
 
+from rich.table import Table
 from rich.text import Text
 from textual import events, on
 from textual.app import ComposeResult
@@ -146,22 +147,32 @@ class ConfirmScreen(ModalScreen[bool]):
         self.dismiss(event.key == "y")
 
 
-def help_text() -> Text:
-    """Every key and what it does, grouped."""
-    text = Text()
-    for group in GROUPS:
-        keys = [k for k in KEYS if k.group == group]
-        if not keys:
-            continue
-        text.append(f"{group}\n", style="bold underline")
-        for key in keys:
-            text.append(f"  {' '.join(key.all_shown):<8}", style="bold")
-            text.append(f" {key.help}\n")
-        text.append("\n")
-    text.append("Numbers in the table are in scientific notation; verdicts are words: agree, doubtful, "
-                "DISAGREE, kink~ (the numeric slope crossed a kink and is not trusted), - (not checked). "
-                "numeric* means the weights changed since the numeric slopes were computed.")
-    return text
+def help_rows() -> list[tuple[str, str, str]]:
+    """``(group, keys, what it does)`` for every key, in help-screen order."""
+    return [(group, " ".join(k.all_shown), k.help) for group in GROUPS for k in KEYS if k.group == group]
+
+
+HELP_NOTE = ("Numbers are in scientific notation. Verdicts are words: agree, doubtful, DISAGREE, kink~ "
+             "(the numeric slope crossed a kink and is not trusted), - (not checked). numeric* in the "
+             "header: the weights changed since the numeric slopes were computed.")
+
+
+def help_table() -> Table:
+    """Every key and what it does, grouped; long lines wrap under their own column."""
+    table = Table(show_header=False, box=None, padding=(0, 1), expand=True)
+    table.add_column("key", no_wrap=True, style="bold", width=8)
+    table.add_column("does", ratio=1)
+    group = None
+    for name, keys, text in help_rows():
+        if name != group:
+            if group is not None:
+                table.add_row("", "")
+            table.add_row(Text(name, style="bold underline"), "")
+            group = name
+        table.add_row(keys, text)
+    table.add_row("", "")
+    table.add_row("", HELP_NOTE)
+    return table
 
 
 class HelpScreen(ModalScreen[None]):
@@ -175,7 +186,7 @@ class HelpScreen(ModalScreen[None]):
         with Vertical(classes="dialog help"):
             yield Label("Keys (esc closes, arrows scroll)", classes="dialog-title")
             with VerticalScroll(id="help-body"):
-                yield Static(help_text(), id="help-text")
+                yield Static(help_table(), id="help-text")
 
     def on_mount(self) -> None:
         self.query_one("#help-body").focus()

@@ -59,7 +59,7 @@ class StatusLine(Static):
 
 def preview_lines(preview: Sequence[tuple[float, float]], current: float, best: float | None) -> list[str]:
     """Rows of the rate preview: rate, cost after one step, and marks for the current and best rates."""
-    lines = ["rate        cost after 1 step"]
+    lines = []
     for rate, cost in preview:
         marks = []
         if best is not None and rate == best:
@@ -68,7 +68,6 @@ def preview_lines(preview: Sequence[tuple[float, float]], current: float, best: 
             marks.append("now")
         lead = ">" if best is not None and rate == best else " "
         lines.append(f"{lead}{rate:<10.4g} {cost_text(cost):>10} {' '.join(marks)}".rstrip())
-    lines.append("b adopts the best rate")
     return lines
 
 
@@ -78,7 +77,7 @@ class RatePanel(Static):
     _lines = 0
 
     def on_mount(self) -> None:
-        self.border_title = "rate preview"
+        self.border_title = "cost after 1 step | b: best"
 
     def show(self, preview: Sequence[tuple[float, float]], current: float, best: float | None) -> None:
         lines = preview_lines(preview, current, best)
