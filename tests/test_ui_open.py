@@ -2,15 +2,19 @@
 
 from __future__ import annotations
 
+import logging
 import sys
+import warnings
 from pathlib import Path
 
 import pytest
 
 from stepper.cli import build_parser, main
 from stepper.commands.open import cut_samples, default_log_file
+from stepper.errors import UsageError
 from stepper.formats.model_file import load_setup
 from stepper.scenarios import default_model
+from stepper.ui.app import log_to_file
 
 
 def test_open_is_registered_with_its_options() -> None:
@@ -41,3 +45,26 @@ def test_samples_cut_the_training_set_only() -> None:
 def test_log_file_follows_xdg_state_home(monkeypatch: pytest.MonkeyPatch, tmp_path: Path) -> None:
     monkeypatch.setenv("XDG_STATE_HOME", str(tmp_path))
     assert default_log_file() == tmp_path / "stepper" / "open.log"
+
+
+def test_while_the_app_runs_logs_and_warnings_go_to_the_log_file(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    log_file = tmp_path / "state" / "open.log"
+    with warnings.catch_warnings():
+        warnings.simplefilter("always")
+        with log_to_file(log_file):
+            logging.getLogger("stepper.session").warning("a record for the file")
+            warnings.warn("a warning for the file", RuntimeWarning)
+    out, err = capsys.readouterr()
+    assert (out, err) == ("", "")
+    text = log_file.read_text(encoding="utf-8")
+    assert "a record for the file" in text and "a warning for the file" in text
+
+
+def test_an_unwritable_log_file_is_a_usage_error(tmp_path: Path) -> None:
+    blocker = tmp_path / "file"
+    blocker.write_text("not a folder", encoding="utf-8")
+    with pytest.raises(UsageError, match="cannot write the log file"):
+        with log_to_file(blocker / "open.log"):
+            pass

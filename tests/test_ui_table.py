@@ -17,7 +17,7 @@ from stepper.core.network import Network
 from stepper.formats.model_file import load_setup
 from stepper.scenarios import default_model
 from stepper.session import Session
-from stepper.ui.snapshot import VERDICT_CODE, Snapshot, take, verdict_codes
+from stepper.ui.snapshot import VERDICT_CODE, HistoryArrays, Snapshot, take, verdict_codes
 from stepper.ui.weights import COLUMN_KEYS, WeightTable, sort_order, wildcard
 
 
@@ -134,3 +134,32 @@ def test_rows_show_values_and_verdict_words(snap: Snapshot) -> None:
     frozen = dataclasses.replace(snap, frozen=np.ones(snap.n_params, dtype=bool))
     table.snapshot = frozen
     assert table.row_cells(0)[6].strip() == "yes"
+
+
+def test_history_arrays_follow_steps_undo_redo_and_reset() -> None:
+    session = Session(load_setup(default_model()))
+    cache = HistoryArrays()
+
+    def fresh() -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        h = session.history
+        return (np.array([e.step for e in h]), np.array([e.train_cost for e in h]),
+                np.array([np.nan if e.val_cost is None else e.val_cost for e in h]))
+
+    def same() -> None:
+        for got, want in zip(cache.arrays(session.history), fresh()):
+            np.testing.assert_array_equal(got, want)
+
+    same()
+    session.step(3)
+    same()
+    session.undo()
+    same()
+    session.step(2)
+    same()
+    session.undo()
+    session.redo()
+    same()
+    session.perturb(0.1)
+    session.reset()
+    same()
+    assert cache.arrays(session.history)[0].size == len(session.history)

@@ -18,8 +18,9 @@ from __future__ import annotations
 import logging
 import math
 import time
+from contextlib import contextmanager
 from pathlib import Path
-from typing import Any, Callable, ClassVar
+from typing import Any, Callable, ClassVar, Iterator
 
 from textual import on, work
 from textual.app import App, ComposeResult
@@ -36,7 +37,7 @@ from stepper.ui.costplot import CostPlot
 from stepper.ui.dialogs import AskScreen, ChoiceScreen, ConfirmScreen, HelpScreen, QuitScreen
 from stepper.ui.keys import KEYS, bindings
 from stepper.ui.panels import JobBar, RatePanel, StatusLine
-from stepper.ui.snapshot import Snapshot, take
+from stepper.ui.snapshot import HistoryArrays, Snapshot, take
 from stepper.ui.weights import WeightTable
 
 log = logging.getLogger("stepper.ui")
@@ -100,7 +101,7 @@ class StepperApp(App[None]):
         self._worker: Worker[None] | None = None
         self.snapshot: Snapshot | None = None
         self.show_rates = False
-        self.refreshes = 0
+        self._history = HistoryArrays()
 
     # -- layout ----------------------------------------------------------------------------
 
@@ -129,9 +130,8 @@ class StepperApp(App[None]):
 
     def refresh_view(self) -> None:
         """Redraw every widget from a new snapshot of the session (on the app's thread only)."""
-        snap = take(self.session)
+        snap = take(self.session, self._history)
         self.snapshot = snap
-        self.refreshes += 1
         self.table.show(snap)
         self.plot.show(snap)
         self._show_status()
@@ -271,8 +271,8 @@ class StepperApp(App[None]):
     def action_toggle_preview(self) -> None:
         self.show_rates = not self.show_rates
         self.query_one(RatePanel).set_class(self.show_rates, "-shown")
-        if self.show_rates and not self.busy():
-            self._show_rates()
+        if self.show_rates and self.job is None:
+            self._show_rates()  # otherwise the end of the job fills it
 
     def action_adopt_best_rate(self) -> None:
         if self.busy():
@@ -532,14 +532,19 @@ class StepperApp(App[None]):
             self.after_steps()
 
 
-def run_app(session: Session, log_file: Path, noise: float = DEFAULT_NOISE) -> int:
-    """Run the app on the terminal until the user quits; returns the exit code.
+@contextmanager
+def log_to_file(log_file: Path) -> Iterator[None]:
+    """Send every log record and warning to ``log_file`` (appending) for the duration.
 
-    Textual draws on stderr, so while the app runs every log record and warning
-    goes to ``log_file`` instead.
+    Textual draws the screen on stderr, so nothing else may write there while
+    the app runs. A log file that cannot be opened is a UsageError naming it.
     """
-    log_file.parent.mkdir(parents=True, exist_ok=True)
-    handler = logging.FileHandler(log_file, encoding="utf-8")
+    try:
+        log_file.parent.mkdir(parents=True, exist_ok=True)
+        handler = logging.FileHandler(log_file, encoding="utf-8")
+    except OSError as exc:
+        raise UsageError(f"{log_file}: cannot write the log file ({exc.strerror or exc}); "
+                         "choose another with --log") from None
     handler.setFormatter(logging.Formatter("%(asctime)s %(name)s %(levelname)s %(message)s"))
     root = logging.getLogger()
     saved_level, saved_handlers = root.level, root.handlers[:]
@@ -547,10 +552,17 @@ def run_app(session: Session, log_file: Path, noise: float = DEFAULT_NOISE) -> i
     root.setLevel(logging.INFO)
     logging.captureWarnings(True)
     try:
-        StepperApp(session, noise=noise).run()
+        yield
     finally:
         logging.captureWarnings(False)
         root.handlers = saved_handlers
         root.setLevel(saved_level)
         handler.close()
+
+
+def run_app(session: Session, log_file: Path, noise: float = DEFAULT_NOISE) -> int:
+    """Run the app on the terminal until the user quits; returns the exit code."""
+    with log_to_file(log_file):
+        log.info("open %s", session.setup.path)
+        StepperApp(session, noise=noise).run()
     return 0

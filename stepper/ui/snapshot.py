@@ -7,13 +7,14 @@ widgets, which draw from it and drop the previous one. Taking the picture in
 one place means that a frame is consistent even while a worker thread is
 stepping the session, and that no widget ever calls the session.
 
-Every array has shape ``(n_params,)`` and is a copy.
+Every per-parameter array has shape ``(n_params,)``; the numbers are copies,
+the names and layer numbers are the layout's own (they never change).
 """
 
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING, Any, Sequence
 
 import numpy as np
 from numpy.typing import NDArray
@@ -98,8 +99,46 @@ def verdict_codes(verdict: NDArray[Any]) -> NDArray[np.int8]:
     return codes
 
 
-def take(session: Session) -> Snapshot:
-    """Copy what the screen shows out of ``session``. Call it on the app's thread only."""
+class HistoryArrays:
+    """The cost history as arrays, converting only the entries added since the last call.
+
+    A long run leaves hundreds of thousands of entries; converting them all on
+    every refresh would cost tens of milliseconds. The session only ever appends
+    to its history, cuts it from some point on (undo), extends it again with the
+    same entries (redo) or replaces it (load): if the last entry converted is
+    still in its place, everything before it is too.
+    """
+
+    def __init__(self) -> None:
+        self._length = 0
+        self._last: object | None = None
+        self._steps = np.zeros(0, dtype=np.int64)
+        self._train = np.zeros(0)
+        self._val = np.zeros(0)
+
+    def arrays(self, history: Sequence[Any]) -> tuple[NDArray[np.int64], Array, Array]:
+        """``(steps, train, val)`` for ``history`` (entries with step, train_cost, val_cost)."""
+        n = self._length
+        if not (0 < n <= len(history) and history[n - 1] is self._last):
+            n = 0
+            self._steps, self._train, self._val = np.zeros(0, dtype=np.int64), np.zeros(0), np.zeros(0)
+        new = history[n:]
+        if new:
+            self._steps = np.concatenate([self._steps, np.fromiter((h.step for h in new), np.int64, len(new))])
+            self._train = np.concatenate([self._train, np.fromiter((h.train_cost for h in new), float, len(new))])
+            self._val = np.concatenate([self._val, np.fromiter(
+                (np.nan if h.val_cost is None else h.val_cost for h in new), float, len(new))])
+        self._length = len(history)
+        self._last = history[-1] if history else None
+        return self._steps, self._train, self._val
+
+
+def take(session: Session, history: HistoryArrays | None = None) -> Snapshot:
+    """Copy what the screen shows out of ``session``. Call it on the app's thread only.
+
+    ``history`` keeps the cost history's arrays between calls (pass the same one
+    each time for one session); without it they are built afresh.
+    """
     net = session.net
     layout = net.layout
     n = net.n_params
@@ -114,10 +153,7 @@ def take(session: Session) -> Snapshot:
         rel = np.full(n, np.nan)
         codes = np.zeros(n, dtype=np.int8)
         counts = {name: 0 for name in VERDICTS}
-    history = list(session.history)
-    steps = np.array([h.step for h in history], dtype=np.int64)
-    train = np.array([h.train_cost for h in history], dtype=np.float64)
-    val = np.array([np.nan if h.val_cost is None else h.val_cost for h in history], dtype=np.float64)
+    steps, train, val = (history or HistoryArrays()).arrays(session.history)
     return Snapshot(
         name=session.setup.name,
         names=layout.names,
