@@ -308,3 +308,42 @@ def test_tiny_slopes_within_rounding_noise_agree() -> None:
     bad = result.analytic.copy()
     bad[tiny[0]] += 10.0 * noise
     assert compare(result.cost, bad, numeric).verdict[tiny[0]] == "disagree"
+
+
+# -- details of the batched pass -------------------------------------------------------------------
+
+
+@pytest.mark.parametrize("name", sorted(ACTIVATIONS))
+def test_in_place_activation_is_bit_for_bit(name: str) -> None:
+    # The numeric pass applies activations in place; the unperturbed cost uses fn.
+    Z = np.random.default_rng(0).normal(0.0, 4.0, size=(3, 20, 5))
+    Z[0, 0, :3] = [0.0, -0.0, 1e-300]
+    out = Z.copy()
+    assert ACTIVATIONS[name].apply_in_place(out) is out
+    expected = ACTIVATIONS[name].fn(Z)
+    assert np.array_equal(out, expected) and np.array_equal(np.signbit(out), np.signbit(expected))
+
+
+def test_relu_unit_exactly_at_zero_behind_a_zero_weight() -> None:
+    # A sample of zeros with zero biases puts the next ReLU layer exactly at its
+    # kink; a zero weight into it must not turn the look-up into 0 * inf = NaN.
+    net = Network(2, [Dense(2, 3, ACTIVATIONS["tanh"]), Dense(3, 2, ACTIVATIONS["relu"]),
+                      Dense(2, 1, ACTIVATIONS["identity"])], "mean_squared_error")
+    theta = np.random.default_rng(0).normal(size=net.n_params)
+    views = net.views(theta)
+    views[0]["b"][:] = 0.0
+    views[1]["b"][:] = 0.0
+    views[1]["W"][0, 1] = 0.0
+    X = np.array([[0.0, 0.0], [1.0, -0.5]])
+    Y = np.array([[1.0], [0.0]])
+    result = numeric_slopes(net, theta, X, Y)  # warnings are errors in this suite
+    assert np.all(np.isfinite(result.slopes))
+    # every first-layer bias moves the zero sample's ReLU units off zero
+    assert result.kink[net.layout.lookup("L1.b[0]")]
+
+
+@pytest.mark.parametrize("h", [0.0, -1e-6, float("nan"), float("inf")])
+def test_step_must_be_a_positive_number(h: float) -> None:
+    net, theta, X, Y = random_problem(NETWORKS[0], seed=2)
+    with pytest.raises(ValueError):
+        numeric_slopes(net, theta, X, Y, "central", h)

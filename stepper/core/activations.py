@@ -33,6 +33,8 @@ class Activation:
         kink: True when the function has a point where it is not differentiable
             (at ``Z == 0``); finite differences across it are unreliable.
         saturates: True for squashing functions whose slope can vanish (sigmoid, tanh).
+        in_place: optional ``Z -> None`` that overwrites ``Z`` with ``fn(Z)``, bit for
+            bit; the numeric slopes use it to avoid allocating large stacked arrays.
     """
 
     name: str
@@ -40,6 +42,7 @@ class Activation:
     derivative: Callable[[Array, Array], Array] | None
     kink: bool = False
     saturates: bool = False
+    in_place: Callable[[Array], object] | None = None
 
     @property
     def elementwise(self) -> bool:
@@ -55,10 +58,30 @@ class Activation:
         # softmax: J = diag(a) - a a^T, so J^T dA = a * (dA - <dA, a>).
         return A * (dA - np.sum(dA * A, axis=-1, keepdims=True))
 
+    def apply_in_place(self, Z: Array) -> Array:
+        """Overwrite ``Z`` (any shape ``(..., n_units)``) with ``fn(Z)`` and return it."""
+        if self.in_place is not None:
+            self.in_place(Z)
+        else:
+            Z[...] = self.fn(Z)
+        return Z
+
 
 def _sigmoid(Z: Array) -> Array:
     # 0.5 * (1 + tanh(z / 2)) equals 1 / (1 + exp(-z)) and never overflows.
     return 0.5 * (1.0 + np.tanh(0.5 * Z))
+
+
+def _sigmoid_in_place(Z: Array) -> None:
+    # The same operations as _sigmoid, in the same order, so the same bits.
+    np.multiply(Z, 0.5, out=Z)
+    np.tanh(Z, out=Z)
+    np.add(Z, 1.0, out=Z)
+    np.multiply(Z, 0.5, out=Z)
+
+
+def _leaky_in_place(Z: Array) -> None:
+    np.multiply(Z, LEAKY_SLOPE, out=Z, where=~(Z > 0.0))
 
 
 def _softplus(Z: Array) -> Array:
@@ -82,20 +105,24 @@ def log_softmax(Z: Array) -> Array:
 ACTIVATIONS: dict[str, Activation] = {
     a.name: a
     for a in (
-        Activation("identity", lambda Z: Z.copy(), lambda Z, A: np.ones_like(Z)),
-        Activation("sigmoid", _sigmoid, lambda Z, A: A * (1.0 - A), saturates=True),
-        Activation("tanh", np.tanh, lambda Z, A: 1.0 - A * A, saturates=True),
+        Activation("identity", lambda Z: Z.copy(), lambda Z, A: np.ones_like(Z), in_place=lambda Z: None),
+        Activation("sigmoid", _sigmoid, lambda Z, A: A * (1.0 - A), saturates=True,
+                   in_place=_sigmoid_in_place),
+        Activation("tanh", np.tanh, lambda Z, A: 1.0 - A * A, saturates=True,
+                   in_place=lambda Z: np.tanh(Z, out=Z)),
         Activation(
             "relu",
             lambda Z: np.maximum(Z, 0.0),
             lambda Z, A: (Z > 0.0).astype(np.float64),
             kink=True,
+            in_place=lambda Z: np.maximum(Z, 0.0, out=Z),
         ),
         Activation(
             "leaky_relu",
             lambda Z: np.where(Z > 0.0, Z, LEAKY_SLOPE * Z),
             lambda Z, A: np.where(Z > 0.0, 1.0, LEAKY_SLOPE),
             kink=True,
+            in_place=_leaky_in_place,
         ),
         Activation("softplus", _softplus, lambda Z, A: _sigmoid(Z)),
         Activation("softmax", softmax, None, saturates=True),

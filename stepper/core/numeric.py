@@ -19,11 +19,18 @@ updated one column at a time, the next dense layer receives a rank-one change,
 and only the layers after that are run in full -- for a whole chunk of
 perturbations at once, stacked on a leading axis. Parameters of custom layers
 fall back to re-running the network from that layer on, one at a time.
+
+Memory. The stacked arrays of a chunk live in two buffers that are reused from
+chunk to chunk, and activations are applied in place: fresh multi-megabyte
+arrays for every chunk are handed back to the system when freed, and touching
+new pages again costs more than the arithmetic (it doubled the time of a pass
+over a 10-64-64-1 network).
 """
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+import math
+from dataclasses import dataclass, field
 from typing import Any, Callable, Generator, Iterable, TypeVar
 
 import numpy as np
@@ -40,8 +47,10 @@ METHODS = ("central", "forward")
 _U = float(np.finfo(np.float64).eps)
 DEFAULT_STEP = {"central": _U ** (1.0 / 3.0), "forward": _U**0.5}
 
-#: Bytes one chunk of stacked perturbations may take (a working-set bound).
-CHUNK_BYTES = 12 * 1024 * 1024
+#: Bytes one chunk of stacked perturbations may take (a working-set bound). With
+#: the buffers reused, 4 MiB was fastest on a 2-core machine for the networks of
+#: tests/benchmarks/bench_numeric.py (1 to 12 MiB tried).
+CHUNK_BYTES = 4 * 1024 * 1024
 
 Progress = Generator[tuple[int, int], None, T]
 
@@ -64,6 +73,44 @@ class NumericSlopes:
     h: float
 
 
+@dataclass
+class _Workspace:
+    """What one pass keeps between chunks.
+
+    Attributes:
+        reach: per layer, :func:`_kink_reach` of the next (kinked) layer.
+        positive: per layer, ``Z > 0`` of its unperturbed pre-activation ``(n, units)``.
+        buffers: two flat float64 buffers the stacked arrays of a chunk live in.
+    """
+
+    reach: dict[int, Array] = field(default_factory=dict)
+    positive: dict[int, NDArray[np.bool_]] = field(default_factory=dict)
+    transposed: dict[tuple[int, str], Array] = field(default_factory=dict)
+    buffers: list[Array] = field(default_factory=lambda: [np.empty(0), np.empty(0)])
+
+    def array(self, slot: int, shape: tuple[int, ...]) -> Array:
+        """An uninitialised array of ``shape`` in buffer ``slot`` (0 or 1), grown when too small."""
+        size = math.prod(shape)
+        if self.buffers[slot].size < size:
+            self.buffers[slot] = np.empty(size)
+        return self.buffers[slot][:size].reshape(shape)
+
+    def rows_of(self, index: int, name: str, cache: DenseCache) -> Array:
+        """``X``, ``Z`` or ``A`` of layer ``index`` transposed and contiguous, ``(width, n)``.
+
+        Gathering rows of these is much faster than gathering strided columns.
+        """
+        key = (index, name)
+        if key not in self.transposed:
+            self.transposed[key] = np.ascontiguousarray(getattr(cache, name).T)
+        return self.transposed[key]
+
+    def is_positive(self, index: int, Z: Array) -> NDArray[np.bool_]:
+        if index not in self.positive:
+            self.positive[index] = Z > 0.0
+        return self.positive[index]
+
+
 def default_step(method: str) -> float:
     return DEFAULT_STEP[method]
 
@@ -83,7 +130,7 @@ def run_to_end(
                 job.close()
                 return None
     except StopIteration as stop:
-        return stop.value  # type: ignore[no-any-return]
+        return stop.value
 
 
 def numeric_slopes(
@@ -125,6 +172,8 @@ def iter_numeric_slopes(
     if method not in METHODS:
         raise ValueError(method)
     step = default_step(method) if h is None else float(h)
+    if not (math.isfinite(step) and step > 0.0):
+        raise ValueError(f"step {h!r} is not a positive number")
     wanted = np.arange(net.n_params) if which is None else np.unique(np.fromiter(which, dtype=np.int64))
     slopes = np.full(net.n_params, np.nan)
     kink = np.zeros(net.n_params, dtype=bool)
@@ -139,7 +188,7 @@ def iter_numeric_slopes(
     base_cost = float(net.output_cost(trace[-1][0], trace[-1][1], Y))
     inputs = [X] + [out for out, _ in trace[:-1]]
     params = net.views(theta)
-    memo: dict[int, Array] = {}
+    work = _Workspace()
 
     for block in net.layout.blocks:
         in_block = wanted[(wanted >= block.start) & (wanted < block.stop)]
@@ -148,14 +197,14 @@ def iter_numeric_slopes(
         layer = net.layers[block.layer]
         if isinstance(layer, Dense):
             if block.layer + 1 < len(net.layers):
-                _prepare_reach(net, params, trace, block.layer, memo)
+                _prepare_reach(net, params, trace, block.layer, work.reach)
             chunk = _chunk_size(net, block.layer, X.shape[0])
             pieces = [in_block[lo : lo + chunk] for lo in range(0, in_block.size, chunk)]
 
             def one_piece(idx: NDArray[np.int64]) -> tuple[NDArray[np.int64], Array, NDArray[np.bool_]]:
-                plus, kink_p = _dense_costs(net, params, trace, block, idx, +step, Y, memo)
+                plus, kink_p = _dense_costs(net, params, trace, block, idx, +step, Y, work)
                 if method == "central":
-                    minus, kink_m = _dense_costs(net, params, trace, block, idx, -step, Y, memo)
+                    minus, kink_m = _dense_costs(net, params, trace, block, idx, -step, Y, work)
                     return idx, (plus - minus) / (2.0 * step), kink_p | kink_m
                 return idx, (plus - base_cost) / step, kink_p
 
@@ -189,8 +238,13 @@ def _prepare_reach(
 
 
 def _chunk_size(net: Network, layer: int, n_samples: int) -> int:
-    widest = max(l.n_out for l in net.layers[layer:])
-    per_item = 8 * n_samples * max(widest, 1) * 4  # a few live arrays per perturbation
+    """Perturbations per chunk, so that a chunk's stacked arrays fit in :data:`CHUNK_BYTES`."""
+    this = net.layers[layer]
+    rank_one = (isinstance(this, Dense) and this.activation.elementwise and layer + 1 < len(net.layers)
+                and isinstance(net.layers[layer + 1], Dense))
+    # With the rank-one update this layer's full output is never stacked.
+    widest = max(l.n_out for l in net.layers[layer + 1 if rank_one else layer :])
+    per_item = 8 * n_samples * max(widest, 1) * 4  # two buffers and temporaries per perturbation
     return int(max(1, min(4096, CHUNK_BYTES // per_item)))
 
 
@@ -199,11 +253,23 @@ def _kink_reach(Z: Array, W: Array) -> Array:
 
     ``Z`` is ``(n, n_next)``, ``W`` is ``(n_units, n_next)``; returns ``(n_units, n)``.
     A change ``c`` of unit ``u``'s output on sample ``s`` can move some unit of the
-    next layer across zero only if ``|c| >= reach[u, s]``.
+    next layer across zero only if ``|c| >= reach[u, s]``; a zero weight never
+    moves a unit (its ratio is infinite), a unit sitting at zero is reached by any
+    change. Computed a block of units at a time so the temporary stays within
+    :data:`CHUNK_BYTES`.
     """
-    with np.errstate(divide="ignore"):
-        inverse = np.where(W != 0.0, 1.0 / np.abs(W), np.inf)  # (n_units, n_next)
-    return np.min(np.abs(Z)[None, :, :] * inverse[:, None, :], axis=2)
+    abs_Z = np.abs(Z)
+    abs_W = np.abs(W)
+    n_units = W.shape[0]
+    reach = np.empty((n_units, Z.shape[0]))
+    per_unit = max(8 * abs_Z.size, 1)
+    step = int(max(1, CHUNK_BYTES // per_unit))
+    for lo in range(0, n_units, step):
+        w = abs_W[lo : lo + step, None, :]  # (block, 1, n_next)
+        ratio = np.full((w.shape[0],) + abs_Z.shape, np.inf)
+        np.divide(abs_Z[None, :, :], w, out=ratio, where=w != 0.0)
+        reach[lo : lo + step] = np.min(ratio, axis=2)
+    return reach
 
 
 def _rerun_cost(
@@ -227,12 +293,12 @@ def _dense_costs(
     idx: NDArray[np.int64],
     delta: float,
     Y: Array,
-    memo: dict[int, Array],
+    work: _Workspace,
 ) -> tuple[Array, NDArray[np.bool_]]:
     """Costs ``(k,)`` with each parameter in ``idx`` (all in one dense block) moved by ``delta``.
 
     Also returns, per parameter, whether any kinked unit came within the change
-    of its kink. ``memo`` keeps per-layer look-ups between chunks.
+    of its kink. ``work`` keeps look-ups and buffers between chunks.
     """
     layer_index = block.layer
     layer = net.layers[layer_index]
@@ -243,53 +309,66 @@ def _dense_costs(
     n = cache.X.shape[0]
     if block.key == "W":
         rows, units = np.divmod(local, layer.n_out)
-        column = cache.X[:, rows].T  # (k, n): the input that multiplies each weight
+        column = work.rows_of(layer_index, "X", cache)[rows]  # (k, n): the input that multiplies each weight
     else:
         units = local
         column = np.ones((k, n))
-    z_col = cache.Z[:, units].T + delta * column  # (k, n)
+    z_base = work.rows_of(layer_index, "Z", cache)[units]  # (k, n)
+    z_col = z_base + delta * column
     kinked = np.zeros(k, dtype=bool)
     act = layer.activation
     if act.kink:
-        kinked |= np.any((z_col > 0.0) != (cache.Z[:, units].T > 0.0), axis=1)
+        kinked |= np.any((z_col > 0.0) != (z_base > 0.0), axis=1)
 
-    last = layer_index == len(net.layers) - 1
-    next_layer = None if last else net.layers[layer_index + 1]
+    n_layers = len(net.layers)
+    next_layer = net.layers[layer_index + 1] if layer_index + 1 < n_layers else None
+    slot = 0
     if act.elementwise and isinstance(next_layer, Dense):
         # Only column `unit` of this layer's output changes: a rank-one update
         # of the next layer's pre-activation.
-        a_col = act.fn(z_col)
-        change = a_col - cache.A[:, units].T  # (k, n)
+        change = act.fn(z_col) - work.rows_of(layer_index, "A", cache)[units]  # (k, n)
         nxt: DenseCache = trace[layer_index + 1][1]
         W_next = params[layer_index + 1]["W"]
-        Z = change[:, :, None] * W_next[units][:, None, :]  # (k, n, n_next)
+        Z = work.array(slot, (k, n, next_layer.n_out))
+        np.multiply(change[:, :, None], W_next[units][:, None, :], out=Z)
         Z += nxt.Z
-        A = next_layer.activation.fn(Z)
         if next_layer.activation.kink:
             # Unit m of sample s sits within this change of its kink when
             # |Z[s, m]| <= |change[s]| * |W_next[unit, m]|.
-            reach = memo[layer_index][units]  # (k, n)
+            reach = work.reach[layer_index][units]  # (k, n)
             kinked |= np.any(np.abs(change) >= reach, axis=1)
-        start = layer_index + 2
+        index = layer_index + 1
     else:
-        Z = np.broadcast_to(cache.Z, (k,) + cache.Z.shape).copy()
+        Z = work.array(slot, (k,) + cache.Z.shape)
+        Z[...] = cache.Z
         Z[np.arange(k), :, units] = z_col
-        A = act.fn(Z)
-        start = layer_index + 1
-        next_layer = layer
+        index = layer_index
 
-    last_cache: Any = DenseCache(np.empty(0), Z, A)
-    for index in range(start, len(net.layers)):
-        lay = net.layers[index]
-        if isinstance(lay, Dense):
-            base_Z = trace[index][1].Z
-            Z = lay.pre_activation(params[index], A)
-            A = lay.activation.fn(Z)
-            if lay.activation.kink:
-                kinked |= np.any((Z > 0.0) != (base_Z[None] > 0.0), axis=(1, 2))
-            last_cache = DenseCache(np.empty(0), Z, A)
-        else:
-            outs = [lay.forward(params[index], A[i]) for i in range(k)]
-            A = np.stack([o[0] for o in outs])
-            last_cache = None
-    return net.output_cost(A, last_cache, Y), kinked
+    # Z holds the pre-activations of dense layer `index` for every copy, (k, n, units).
+    while True:
+        dense = net.layers[index]
+        assert isinstance(dense, Dense)
+        if index == n_layers - 1:
+            A = Z if net.fused is not None else dense.activation.fn(Z)
+            return net.output_cost(A, DenseCache(_NOTHING, Z, A), Y), kinked
+        A = dense.activation.apply_in_place(Z)
+        index += 1
+        while not isinstance(net.layers[index], Dense):
+            custom = net.layers[index]
+            A = np.stack([custom.forward(params[index], A[i])[0] for i in range(k)])
+            if index == n_layers - 1:
+                return net.output_cost(A, None, Y), kinked
+            index += 1
+        dense = net.layers[index]
+        assert isinstance(dense, Dense)
+        slot = 1 - slot
+        Z = work.array(slot, (k, n, dense.n_out))
+        np.matmul(A.reshape(k * n, dense.n_in), params[index]["W"], out=Z.reshape(k * n, dense.n_out))
+        if dense.bias:
+            Z += params[index]["b"]
+        if dense.activation.kink:
+            positive = work.is_positive(index, trace[index][1].Z)
+            kinked |= np.any((Z > 0.0) != positive, axis=(1, 2))
+
+
+_NOTHING = np.empty(0)
