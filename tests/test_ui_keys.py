@@ -31,11 +31,6 @@ from stepper.ui.weights import WeightTable
 Check = Callable[[StepperApp, Pilot[Any], list[tuple[str, str]]], Awaitable[None]]
 
 
-@pytest.fixture(autouse=True)
-def _no_animation(monkeypatch: pytest.MonkeyPatch) -> None:
-    monkeypatch.setenv("TEXTUAL_ANIMATIONS", "none")
-
-
 @pytest.fixture
 def session() -> Session:
     return Session(load_setup(default_model()))
@@ -44,7 +39,7 @@ def session() -> Session:
 def drive(session: Session, check: Check, size: tuple[int, int] = (100, 30)) -> StepperApp:
     """Run the app headless around ``check(app, pilot, said)``; ``said`` collects notifications."""
     app = StepperApp(session)
-    app.animation_level = "none"
+    app.animation_level = "none"  # animations off (the environment variable is read once, at import)
     said: list[tuple[str, str]] = []
     original = app.notify
 
