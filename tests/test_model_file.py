@@ -160,6 +160,9 @@ MISTAKES = [
      "loss: unknown 'hinge' (expected one of: half_squared_error, mean_squared_error, "
      "binary_cross_entropy, categorical_cross_entropy)"),
     ('"mean_squared_error"', "2", "loss: expected a string, got an integer"),
+    ('"mean_squared_error"', "1979-05-27", "loss: expected a string, got a date"),
+    ('"mean_squared_error"', "1979-05-27T07:32:00Z", "loss: expected a string, got a date-time"),
+    ('"mean_squared_error"', "07:32:00", "loss: expected a string, got a time of day"),
     ('activation = "tanh"', 'activation = "relu6"',
      "layers[0].activation: unknown 'relu6' (expected one of: identity, sigmoid, tanh, relu, leaky_relu, "
      "softplus, softmax)"),

@@ -40,6 +40,7 @@ starting values (seeded by ``[init].seed``, or 0 without ``[init]``).
 
 from __future__ import annotations
 
+import datetime
 import hashlib
 import math
 import tomllib
@@ -172,6 +173,12 @@ def _kind(value: Any) -> str:
         return "a list"
     if isinstance(value, dict):
         return "a table"
+    if isinstance(value, datetime.datetime):  # before date: a datetime is also a date
+        return "a date-time"
+    if isinstance(value, datetime.date):
+        return "a date"
+    if isinstance(value, datetime.time):
+        return "a time of day"
     return type(value).__name__
 
 

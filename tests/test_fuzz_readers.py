@@ -1,0 +1,204 @@
+"""Property-based tests of the model-file and CSV readers (Hypothesis).
+
+Property: whatever the text of a model file or a CSV file, loading it gives a
+Setup or raises a StepperError (one readable message); any other exception is
+a crash the user would see as a traceback.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+
+from stepper.errors import StepperError
+from stepper.formats.dataset import read_columns
+from stepper.formats.model_file import Setup, load_setup
+
+SETTINGS = settings(max_examples=200, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+
+VALID_DATA = "a,b,y\n0.5,1,2\n-1,0.25,0\n3,2,1\n"
+
+VALID_MODEL = """\
+name = "fuzz"
+loss = "mean_squared_error"
+
+[data]
+file = "data.csv"
+inputs = ["a", "b"]
+targets = ["y"]
+standardize = true
+validation_fraction = 0.3
+seed = 1
+
+[init]
+scheme = "uniform"
+seed = 3
+range = 0.4
+
+[[layers]]
+units = 3
+activation = "relu"
+weights = [[0.1, -0.2, 0.3], [0.4, 0.5, -0.6]]
+biases = [0.0, 0.1, 0.2]
+
+[[layers]]
+units = 1
+activation = "identity"
+bias = false
+"""
+
+# Pieces that make random text look like TOML, and values of every TOML type.
+TOML_PIECES = [
+    "[", "]", "[[", "]]", "{", "}", "=", " = ", ",", ".", '"', "'", '"""', "\n", " ", "#", "\\",
+    "loss", "data", "init", "layers", "name", "file", "inputs", "targets", "units", "activation",
+    "bias", "biases", "weights", "scheme", "seed", "range", "standardize", "validation_fraction",
+    "type", "class", "options", '"data.csv"', '"relu"', '"softmax"', '"mean_squared_error"',
+    '"categorical_cross_entropy"', '"glorot_uniform"', '"custom"', "true", "false", "nan", "inf", "-inf",
+    "0", "1", "-1", "2", "0.5", "1e308", "1e400", "-0.0", "9223372036854775807", "-9223372036854775808",
+    "1979-05-27", "07:32:00", "1979-05-27T07:32:00Z", '["a", "b"]', '["y"]', "[[1, 2], [3, 4]]", "[]",
+    "{}", "\u00e9", "\u0000", "\t", "\r\n",
+]
+
+VALUES = st.one_of(
+    st.integers(min_value=-(2**63), max_value=2**63 - 1).map(str),
+    st.floats(allow_nan=True, allow_infinity=True).map(
+        lambda x: "nan" if x != x else ("inf" if x == float("inf") else ("-inf" if x == -float("inf") else repr(x)))),
+    st.booleans().map(lambda b: "true" if b else "false"),
+    st.text(max_size=12).map(lambda s: '"' + s.replace("\\", "\\\\").replace('"', '\\"') + '"'),
+    st.sampled_from(['["a", "b"]', '["y"]', "[]", "[[0.1]]", "[[1, 2, 3], [4, 5, 6]]", "[1, 2, 3]",
+                     "{ x = 1 }", '"relu"', '"tanh"', '"softmax"', '"sigmoid"', '"leaky_relu"',
+                     '"binary_cross_entropy"', '"half_squared_error"', '"he_normal"', '"data.csv"',
+                     '"missing.csv"', '"."', "1979-05-27"]),
+)
+
+
+@pytest.fixture(scope="module")
+def folder(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    return tmp_path_factory.mktemp("fuzz")
+
+
+def load(folder: Path, model: str | bytes, data: str | bytes = VALID_DATA) -> None:
+    """Write the two files and load them; only a Setup or a StepperError may come out."""
+    model_path = folder / "model.toml"
+    if isinstance(model, bytes):
+        model_path.write_bytes(model)
+    else:
+        model_path.write_bytes(model.encode("utf-8", "surrogatepass"))
+    data_path = folder / "data.csv"
+    if isinstance(data, bytes):
+        data_path.write_bytes(data)
+    else:
+        data_path.write_bytes(data.encode("utf-8", "surrogatepass"))
+    try:
+        setup = load_setup(model_path)
+    except StepperError as exc:
+        assert str(exc) and "\n" not in str(exc)
+        return
+    assert isinstance(setup, Setup)
+    assert setup.theta0.shape == (setup.network.n_params,)
+
+
+def test_the_valid_file_loads(folder: Path) -> None:
+    load(folder, VALID_MODEL)
+    setup = load_setup(folder / "model.toml")
+    assert setup.network.n_params == 2 * 3 + 3 + 3 * 1
+
+
+@SETTINGS
+@given(st.lists(st.sampled_from(TOML_PIECES), max_size=60))
+def test_toml_like_text(folder: Path, pieces: list[str]) -> None:
+    load(folder, "".join(pieces))
+
+
+@SETTINGS
+@given(st.text(max_size=300))
+def test_any_text(folder: Path, text: str) -> None:
+    load(folder, text)
+
+
+@SETTINGS
+@given(st.binary(max_size=200))
+def test_any_bytes(folder: Path, raw: bytes) -> None:
+    load(folder, raw)
+
+
+def mutate(text: str, edits: list[tuple[int, int, int, str]]) -> str:
+    """Apply edits (kind, position, length, payload) to ``text``."""
+    for kind, position, length, payload in edits:
+        at = position % (len(text) + 1)
+        if kind == 0:  # delete a span
+            text = text[:at] + text[at + length:]
+        elif kind == 1:  # insert a piece
+            text = text[:at] + payload + text[at:]
+        elif kind == 2:  # replace a span
+            text = text[:at] + payload + text[at + length:]
+        else:  # replace the value of the line holding `at`
+            start = text.rfind("\n", 0, at) + 1
+            end = text.find("\n", at)
+            end = len(text) if end < 0 else end
+            line = text[start:end]
+            if " = " in line:
+                key = line.split(" = ", 1)[0]
+                text = text[:start] + f"{key} = {payload}" + text[end:]
+    return text
+
+
+EDITS = st.lists(
+    st.tuples(st.integers(0, 3), st.integers(0, 10_000), st.integers(0, 40),
+              st.one_of(VALUES, st.sampled_from(TOML_PIECES))),
+    min_size=1, max_size=4,
+)
+
+
+@SETTINGS
+@given(EDITS)
+def test_mutations_of_a_valid_model_file(folder: Path, edits: list[tuple[int, int, int, str]]) -> None:
+    load(folder, mutate(VALID_MODEL, edits))
+
+
+VALUE_LINES = [i for i, line in enumerate(VALID_MODEL.splitlines()) if " = " in line]
+
+
+@SETTINGS
+@given(st.lists(st.tuples(st.sampled_from(VALUE_LINES), VALUES), min_size=1, max_size=3))
+def test_values_swapped_in_a_valid_model_file(folder: Path, swaps: list[tuple[int, str]]) -> None:
+    # Keep the file valid TOML more often, so the checks after parsing are reached.
+    lines = VALID_MODEL.splitlines()
+    for index, value in swaps:
+        lines[index] = lines[index].split(" = ", 1)[0] + " = " + value
+    load(folder, "\n".join(lines) + "\n")
+
+
+CSV_ALPHABET = st.sampled_from(list("ab y,.-+e0123456789\"\n\r\t;") + ["nan", "inf", "1e999", "\u00a0", "\x00",
+                                                                       "\ufeff", "_", "x"])
+
+
+@SETTINGS
+@given(st.lists(CSV_ALPHABET, max_size=120))
+def test_random_csv_through_the_model_file(folder: Path, pieces: list[str]) -> None:
+    load(folder, VALID_MODEL, "".join(pieces))
+
+
+@SETTINGS
+@given(st.text(max_size=200), st.lists(st.sampled_from(["a", "b", "y", "", " a", "x"]), min_size=1, max_size=3))
+def test_random_csv_read_directly(folder: Path, text: str, wanted: list[str]) -> None:
+    path = folder / "direct.csv"
+    path.write_bytes(text.encode("utf-8", "surrogatepass"))
+    try:
+        table = read_columns(path, wanted)
+    except StepperError as exc:
+        assert str(exc) and "\n" not in str(exc)
+        return
+    assert table.values.shape[1] == len(wanted)
+
+
+@SETTINGS
+@given(st.lists(st.lists(st.one_of(st.sampled_from(["1", "-2.5", "nan", "", " 3 ", "1e5", "x", '"4"']),
+                                   st.floats(allow_nan=False).map(repr)), min_size=0, max_size=4),
+                min_size=0, max_size=6))
+def test_random_csv_rows(folder: Path, rows: list[list[str]]) -> None:
+    text = "a,b,y\n" + "\n".join(",".join(row) for row in rows)
+    load(folder, VALID_MODEL, text)
