@@ -8,7 +8,15 @@ stderr. Exit codes: 0 ok, 1 check failed (or a step was refused), 2 bad input.
 
 from __future__ import annotations
 
-import argparse
+import os
+
+# One BLAS thread: Stepper's matrices are small, and a second OpenBLAS thread
+# spinning against the app's own thread made a step's redraw 2-3x slower on a
+# 2-core machine (tests/benchmarks/bench_ui.py). Set before numpy is imported;
+# a value the user set wins.
+os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
+
+import argparse  # noqa: E402
 import sys
 from importlib import import_module
 from typing import Sequence

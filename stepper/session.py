@@ -575,6 +575,15 @@ class Session:
         assert report is not None
         return report
 
+    def set_refresh_after_step(self, on: bool) -> None:
+        """Whether the numeric slopes should be recomputed after every step.
+
+        A preference for whoever drives the session (the app starts the
+        recomputation); it changes no model state, so it is neither undone nor
+        journaled.
+        """
+        self.refresh_numeric_after_step = bool(on)
+
     def refresh_if_wanted(self) -> Iterator[tuple[int, int]]:
         """Numeric slopes after a step when the user asked for that (a progress generator)."""
         if self.refresh_numeric_after_step:

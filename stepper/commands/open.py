@@ -67,15 +67,21 @@ def handle(args: argparse.Namespace) -> int:
     from stepper.session import Session
     from stepper.ui.app import run_app
 
-    session = Session(setup, journal=args.journal)
+    if args.resume is None:
+        # Starting settings go to the constructor (and the journal's header), so
+        # a fresh session with --rate or --rule has no unsaved changes yet.
+        session = Session(setup, journal=args.journal,
+                          rate=args.rate if args.rate is not None else 0.1, rule=args.rule or "gd")
+    else:
+        session = Session(setup, journal=args.journal)
     try:
         if args.resume is not None:
             session.load_checkpoint(args.resume)
-        if args.rate is not None:
-            session.set_rate(args.rate)
-        if args.rule is not None and args.rule != session.rule:
-            session.set_rule(args.rule)
-        session.refresh_numeric_after_step = bool(args.check_every_step)
+            if args.rate is not None:
+                session.set_rate(args.rate)
+            if args.rule is not None and args.rule != session.rule:
+                session.set_rule(args.rule)
+        session.set_refresh_after_step(bool(args.check_every_step))
         return run_app(session, args.log or default_log_file(), noise=args.noise)
     finally:
         session.close()

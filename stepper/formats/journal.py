@@ -53,7 +53,20 @@ class JournalWriter:
                      "digest": digest, "start": dict(start or {})})
 
     def append(self, entry: dict[str, Any]) -> None:
-        self._handle.write(json.dumps(entry, separators=(",", ":")) + "\n")
+        """Write one entry as a line and flush it to disk.
+
+        After :meth:`close` an entry is still appended (the file is opened for
+        that line alone): a job that finishes its last step while the session
+        is closing must not lose that step from the journal.
+        """
+        line = json.dumps(entry, separators=(",", ":")) + "\n"
+        if self._handle.closed:
+            with open(self.path, "a", encoding="utf-8") as handle:
+                handle.write(line)
+                handle.flush()
+                os.fsync(handle.fileno())
+            return
+        self._handle.write(line)
         self._handle.flush()
         os.fsync(self._handle.fileno())
 

@@ -297,7 +297,7 @@ class StepperApp(App[None]):
 
     def action_toggle_auto_check(self) -> None:
         # A preference the session keeps (it decides nothing with it); not an undoable operation.
-        self.session.refresh_numeric_after_step = not self.session.refresh_numeric_after_step
+        self.session.set_refresh_after_step(not self.session.refresh_numeric_after_step)
         state = "on" if self.session.refresh_numeric_after_step else "off"
         self.say(f"numeric slopes after every step: {state}")
         self._show_status()
