@@ -227,14 +227,10 @@ class Session:
         return self.session_folder() / f"step-{self.step_count:06d}.safetensors"
 
     def session_folder(self) -> Path:
-        model = self.setup.path.resolve()
-        folder = model.parent / f"{model.stem}.checkpoints"
-        if os.access(model.parent, os.W_OK):
-            return folder
-        return Path.cwd() / f"{model.stem}.checkpoints"
+        return session_folder_for(self.setup.path)
 
     def default_journal_path(self) -> Path:
-        return self.session_folder() / f"journal-{datetime.now():%Y%m%d-%H%M%S}.jsonl"
+        return default_journal_for(self.setup.path)
 
     # -- undo machinery --------------------------------------------------------------------
 
@@ -761,6 +757,25 @@ class Session:
         if self.journal is not None:
             self.journal.close()
             self.journal = None
+
+
+def session_folder_for(model: Path) -> Path:
+    """Where checkpoints and journals of sessions over ``model`` go by default.
+
+    ``<model stem>.checkpoints`` beside the model file; for a bundled scenario
+    inside the installed package, or a model in a read-only folder,
+    ``<folder name>.checkpoints`` in the current folder instead.
+    """
+    model = Path(model).resolve()
+    package = Path(__file__).resolve().parent
+    if model.is_relative_to(package) or not os.access(model.parent, os.W_OK):
+        return Path.cwd() / f"{model.parent.name}.checkpoints"
+    return model.parent / f"{model.stem}.checkpoints"
+
+
+def default_journal_for(model: Path) -> Path:
+    """A new journal file name for a session starting now."""
+    return session_folder_for(model) / f"journal-{datetime.now():%Y%m%d-%H%M%S}.jsonl"
 
 
 def _check_rate(rate: float) -> float:

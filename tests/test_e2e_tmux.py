@@ -20,6 +20,7 @@ import numpy as np
 import pytest
 
 from stepper.formats.model_file import load_setup
+from stepper.commands.replay import replay
 from stepper.scenarios import default_model
 from stepper.session import Session
 
@@ -83,7 +84,9 @@ def test_step_save_and_quit_in_an_80x24_terminal(tmp_path: Path, term: str, no_c
     checkpoint = tmp_path / "after three steps.safetensors"
     status_file = tmp_path / "exit-status"
     env = f"TERM={term}" + (" NO_COLOR=1" if no_color else "")
-    command = (f"env {env} {shlex.quote(str(STEPPER))} open --log {shlex.quote(str(tmp_path / 'open.log'))}; "
+    journal = tmp_path / "journal.jsonl"
+    command = (f"env {env} {shlex.quote(str(STEPPER))} open --log {shlex.quote(str(tmp_path / 'open.log'))} "
+               f"--journal {shlex.quote(str(journal))}; "
                f"echo $? > {shlex.quote(str(status_file))}; sleep 30")
     pane = Pane(command)
     try:
@@ -129,3 +132,8 @@ def test_step_save_and_quit_in_an_80x24_terminal(tmp_path: Path, term: str, no_c
     loaded.load_checkpoint(checkpoint)
     assert loaded.step_count == 3
     assert np.array_equal(loaded.theta, expected.theta)
+
+    # The journal the app kept rebuilds the same state (the crash-recovery path).
+    replayed = replay(journal)
+    assert replayed.step_count == 3
+    assert np.array_equal(replayed.theta, expected.theta)

@@ -37,7 +37,9 @@ def add_parser(subs: Any) -> None:
     p.add_argument("--samples", type=positive_int, default=None, metavar="N",
                    help="train on the first N training samples only (not with --journal)")
     p.add_argument("--journal", type=Path, default=None, metavar="PATH",
-                   help="append every operation to this journal file (for stepper replay)")
+                   help="append every operation to this journal file, for stepper replay (default: "
+                   "a new journal-<time>.jsonl beside the checkpoints)")
+    p.add_argument("--no-journal", action="store_true", help="keep no journal")
     p.add_argument("--noise", type=positive_float, default=0.01, metavar="SCALE",
                    help="standard deviation of the noise the perturb keys add (default 0.01)")
     p.add_argument("--check-every-step", action="store_true",
@@ -64,8 +66,14 @@ def handle(args: argparse.Namespace) -> int:
     if args.samples is not None:
         setup = cut_samples(setup, args.samples)
     # Imported here so that the other commands start without loading Textual.
-    from stepper.session import Session
+    from stepper.session import Session, default_journal_for
     from stepper.ui.app import run_app
+
+    if args.no_journal or args.samples is not None:
+        # A journal of a cut training set could not be replayed from the model file.
+        args.journal = None
+    elif args.journal is None:
+        args.journal = default_journal_for(setup.path)
 
     if args.resume is None:
         # Starting settings go to the constructor (and the journal's header), so
