@@ -59,13 +59,13 @@ def read_columns(path: Path, wanted: list[str], label: str | None = None) -> Tab
     seen: set[str] = set()
     for cell in header:
         if cell in seen:
-            raise DataFileError(f"{name}: line 1: column '{cell}' appears twice in the header")
+            raise DataFileError(f"{name}: line 1: column {_shown(cell)} appears twice in the header")
         seen.add(cell)
     missing = [col for col in wanted if col not in header]
     if missing:
         raise DataFileError(
             f"{name}: line 1: no column named {', '.join(repr(m) for m in missing)} "
-            f"(the header has: {', '.join(header)})"
+            f"(the header has: {', '.join(_shown(cell, quote=False) for cell in header)})"
         )
     body = rows[1:]
     if not body:
@@ -89,6 +89,13 @@ def read_columns(path: Path, wanted: list[str], label: str | None = None) -> Tab
             f"{name}: line {line + 2}, column '{column}': {text!r} is not a finite number"
         )
     return Table(header, values, tuple(wanted))
+
+
+def _shown(cell: str, quote: bool = True) -> str:
+    """A header cell for a one-line message: quoted, with line breaks and other controls escaped."""
+    if cell.isprintable():
+        return f"'{cell}'" if quote else cell
+    return repr(cell)
 
 
 def _first_bad_cell(cells: NDArray[np.str_], wanted: list[str]) -> tuple[int, str, str]:
