@@ -159,8 +159,8 @@ def test_wrong_backward_pass_fails_with_exit_1(capsys: pytest.CaptureFixture[str
     # A deliberately wrong analytic slope: the first layer's dW comes out 2% too large.
     original = Dense.backward_from_z
 
-    def wrong(self: Dense, params: Any, cache: Any, dZ: Any) -> Any:
-        grads, dX = original(self, params, cache, dZ)
+    def wrong(self: Dense, params: Any, cache: Any, dZ: Any, *args: Any, **kwargs: Any) -> Any:
+        grads, dX = original(self, params, cache, dZ, *args, **kwargs)
         if self.activation.name == "tanh":
             grads = dict(grads, W=grads["W"] * 1.02)
         return grads, dX

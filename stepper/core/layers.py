@@ -106,7 +106,7 @@ class Dense:
         else:
             Z = X @ W
         if self.bias:
-            Z = Z + params["b"]
+            Z += params["b"]  # Z is a fresh array: add in place
         return Z
 
     def forward(self, params: Params, X: Array) -> tuple[Array, DenseCache]:
@@ -118,9 +118,15 @@ class Dense:
         dZ = self.activation.vjp(cache.Z, cache.A, dOut)
         return self.backward_from_z(params, cache, dZ)
 
-    def backward_from_z(self, params: Params, cache: DenseCache, dZ: Array) -> tuple[Params, Array]:
-        """Slopes given ``dZ`` (``(n, n_out)``): ``dW = X^T dZ``, ``db = sum dZ``, ``dX = dZ W^T``."""
+    def backward_from_z(
+        self, params: Params, cache: DenseCache, dZ: Array, input_slopes: bool = True
+    ) -> tuple[Params, Array]:
+        """Slopes given ``dZ`` (``(n, n_out)``): ``dW = X^T dZ``, ``db = sum dZ``, ``dX = dZ W^T``.
+
+        With ``input_slopes=False`` the (often largest) product ``dX`` is skipped and
+        an empty array returned in its place: the first layer's ``dX`` is not needed.
+        """
         grads: Params = {"W": cache.X.T @ dZ}
         if self.bias:
             grads["b"] = dZ.sum(axis=0)
-        return grads, dZ @ params["W"].T
+        return grads, (dZ @ params["W"].T if input_slopes else np.empty((0, self.n_in)))

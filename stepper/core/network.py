@@ -257,17 +257,25 @@ class Network:
             # The slope w.r.t. the output A is not needed by backprop here; report
             # the plain loss's one so the breakdown views can still show it.
             output_slopes[-1] = self.loss_fn.grad(A, Y)
-            layer_grads, dA = last.backward_from_z(params[-1], cache, dZ)
+            layer_grads, dA = last.backward_from_z(params[-1], cache, dZ, len(self.layers) > 1)
         else:
             dOut = self.loss_fn.grad(A, Y)
             output_slopes[-1] = dOut
-            layer_grads, dA = last.backward(params[-1], cache, dOut)
+            layer_grads, dA = self._layer_backward(len(self.layers) - 1, params, cache, dOut)
         self._store(gviews[-1], layer_grads)
         for index in range(len(self.layers) - 2, -1, -1):
             output_slopes[index] = dA
-            layer_grads, dA = self.layers[index].backward(params[index], trace[index][1], dA)
+            layer_grads, dA = self._layer_backward(index, params, trace[index][1], dA)
             self._store(gviews[index], layer_grads)
         return cost, grads, output_slopes
+
+    def _layer_backward(self, index: int, params: list[Params], cache: Any, dOut: Array) -> tuple[Params, Array]:
+        """One layer's backward; a dense first layer skips its unused input slopes ``dX``."""
+        layer = self.layers[index]
+        if index == 0 and isinstance(layer, Dense) and isinstance(cache, DenseCache):
+            dZ = layer.activation.vjp(cache.Z, cache.A, dOut)
+            return layer.backward_from_z(params[0], cache, dZ, input_slopes=False)
+        return layer.backward(params[index], cache, dOut)
 
     @staticmethod
     def _store(target: Params, source: Params) -> None:
