@@ -177,6 +177,26 @@ def test_wrong_backward_pass_fails_with_exit_1(capsys: pytest.CaptureFixture[str
     assert "XX  disagree" in out and "result      FAIL: some slopes disagree" in out
 
 
+def test_cost_that_overflows_fails_with_valid_json(capsys: pytest.CaptureFixture[str],
+                                                   write_model: WriteModel) -> None:
+    text = MODEL.replace('[init]\nscheme = "glorot_uniform"\nseed = 2\n', "").replace(
+        'activation = "tanh"', 'activation = "tanh"\nweights = [[1, 2, 3], [4, 5, 6]]').replace(
+        'activation = "identity"', 'activation = "identity"\nweights = [[1e300], [1e300], [1e300]]')
+    path = str(write_model(text, DATA))
+    code, out, err = run(capsys, path, "--json")
+    assert code == 1 and err == ""
+
+    def refuse(constant: str) -> None:
+        raise AssertionError(f"{constant} is not JSON (RFC 8259)")
+
+    doc = json.loads(out, parse_constant=refuse)
+    assert doc["cost"] is None and doc["passed"] is False
+    assert doc["counts"]["disagree"] == doc["model"]["parameters"]
+    code, out, err = run(capsys, path)
+    assert code == 1 and err == ""
+    assert "(not a finite number: no slope can be checked here)" in out and "FAIL" in out
+
+
 # -- bad input: one line on stderr, exit code 2 ----------------------------------------------------
 
 

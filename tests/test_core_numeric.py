@@ -347,3 +347,21 @@ def test_step_must_be_a_positive_number(h: float) -> None:
     net, theta, X, Y = random_problem(NETWORKS[0], seed=2)
     with pytest.raises(ValueError):
         numeric_slopes(net, theta, X, Y, "central", h)
+
+
+def test_non_finite_slopes_disagree_and_uncomputed_ones_stay_blank() -> None:
+    net, theta, X, Y = random_problem(NETWORKS[0], seed=8)
+    cost, analytic = net.cost_and_slopes(theta, X, Y)
+    part = numeric_slopes(net, theta, X, Y, which=[0, 1, 2])
+    assert part.computed is not None and list(np.nonzero(part.computed)[0]) == [0, 1, 2]
+    bad = analytic.copy()
+    bad[1] = np.inf
+    result = compare(cost, bad, part)
+    assert list(result.verdict[:3]) == ["agree", "disagree", "agree"]
+    assert set(result.verdict[3:]) == {""}
+    assert not result.passed
+    # A cost that overflows: no slope can be checked, so the check must not pass.
+    with np.errstate(over="ignore", invalid="ignore"):
+        big = run_to_end(iter_check(net, theta, X, Y * 1e200))
+    assert big is not None and big.cost == np.inf
+    assert not big.passed and big.counts["disagree"] == net.n_params

@@ -53,24 +53,28 @@ def add_parser(subs: Any) -> None:
 def handle(args: argparse.Namespace) -> int:
     setup = load(args)
     X, Y = sample_limit(setup, args.samples)
-    result = run_to_end(
-        iter_check(setup.network, setup.theta0, X, Y, args.method, args.step),
-        progress_printer("numeric slopes"),
-    )
-    assert result is not None
     net = setup.network
-    health = layer_health(net, setup.theta0, X, Y, args.rate)
-    inputs = [
-        check_input_slopes(net, setup.theta0, X, Y, i, args.input_samples, args.method, args.step)
-        for i, layer in enumerate(net.layers) if not isinstance(layer, Dense)
-    ]
+    # Overflow and NaN show up in the report (a non-finite slope disagrees);
+    # numpy's warnings about them would only add lines of noise on stderr.
+    with np.errstate(over="ignore", invalid="ignore", divide="ignore", under="ignore"):
+        result = run_to_end(
+            iter_check(setup.network, setup.theta0, X, Y, args.method, args.step),
+            progress_printer("numeric slopes"),
+        )
+        assert result is not None
+        health = layer_health(net, setup.theta0, X, Y, args.rate)
+        inputs = [
+            check_input_slopes(net, setup.theta0, X, Y, i, args.input_samples, args.method, args.step)
+            for i, layer in enumerate(net.layers) if not isinstance(layer, Dense)
+        ]
     passed = result.passed and all(c.passed for c in inputs)
     if args.json:
         doc = check_document(setup, result, X.shape[0])
         doc["passed"] = passed
         doc["input_slopes"] = [input_slopes_document(c) for c in inputs]
         doc["health"] = health_document(health)
-        json.dump(doc, sys.stdout, indent=1)
+        # JSON (RFC 8259) has no NaN or Infinity: non-finite numbers become null.
+        json.dump(_json_safe(doc), sys.stdout, indent=1, allow_nan=False)
         sys.stdout.write("\n")
     else:
         print_report(setup, result, X.shape[0], args.worst, inputs)
@@ -134,6 +138,17 @@ def _finite_or_none(value: float) -> float | None:
     return float(value) if np.isfinite(value) else None
 
 
+def _json_safe(value: Any) -> Any:
+    """``value`` with every float that is not finite replaced by None, at any depth."""
+    if isinstance(value, float):
+        return value if np.isfinite(value) else None
+    if isinstance(value, dict):
+        return {key: _json_safe(item) for key, item in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_json_safe(item) for item in value]
+    return value
+
+
 def print_report(setup: Setup, result: CheckResult, n_samples: int, worst: int | None,
                  inputs: list[InputSlopeCheck] | None = None) -> None:
     net = setup.network
@@ -163,7 +178,9 @@ def print_report(setup: Setup, result: CheckResult, n_samples: int, worst: int |
     if inputs:
         print_input_slopes(inputs)
     out.write("\n")
-    out.write(f"cost        {result.cost:.10g}\n")
+    out.write(f"cost        {result.cost:.10g}"
+              + ("" if np.isfinite(result.cost) else "  (not a finite number: no slope can be checked here)")
+              + "\n")
     out.write("verdicts    " + ", ".join(f"{counts[v]} {v}" for v in VERDICTS) + "\n")
     out.write(f"worst       {names[w]} (relative error {result.rel_error[w]:.2e}, {result.verdict[w]})\n")
     bad_inputs = [f"L{c.layer + 1}" for c in inputs if not c.passed]

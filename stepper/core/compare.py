@@ -17,6 +17,10 @@ Verdicts (thresholds are common practice with no single published source):
   finite-difference evaluations: the numeric slope is not trustworthy there, so
   the parameter is not counted as failed.
 
+A slope that is not a finite number (the cost overflowed, or became NaN) cannot
+agree with anything: such a parameter gets ``disagree``, so a check never passes on
+it. ``""`` is kept for parameters whose numeric slope was not computed.
+
 Rounding noise. A numeric slope is a difference of two costs divided by the
 step, so it carries a rounding error of about ``eps * |C| / h`` whatever the
 size of the slope (Press, Teukolsky, Vetterling & Flannery, *Numerical

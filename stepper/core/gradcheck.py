@@ -51,10 +51,13 @@ class CheckResult:
 
 def compare(cost: float, analytic: Array, numeric: NumericSlopes, limits: Thresholds = Thresholds()) -> CheckResult:
     """Combine analytic and numeric slopes into a :class:`CheckResult`."""
-    rel = relative_error(analytic, numeric.slopes, limits.floor)
-    quiet = np.abs(analytic - numeric.slopes) <= noise_level(cost, numeric.h)
-    return CheckResult(cost, analytic, numeric.slopes, rel, verdicts(rel, numeric.kink, limits, quiet),
-                       numeric.method, numeric.h)
+    with np.errstate(invalid="ignore", over="ignore"):
+        rel = relative_error(analytic, numeric.slopes, limits.floor)
+        quiet = np.abs(analytic - numeric.slopes) <= noise_level(cost, numeric.h)
+    verdict = verdicts(rel, numeric.kink, limits, quiet)
+    computed = np.ones(analytic.shape, dtype=bool) if numeric.computed is None else numeric.computed
+    verdict[computed & ~(np.isfinite(analytic) & np.isfinite(numeric.slopes))] = "disagree"
+    return CheckResult(cost, analytic, numeric.slopes, rel, verdict, numeric.method, numeric.h)
 
 
 def iter_check(

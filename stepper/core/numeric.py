@@ -65,12 +65,15 @@ class NumericSlopes:
             evaluations of that parameter, ``(n_params,)``.
         method: ``"central"`` or ``"forward"``.
         h: the step used.
+        computed: True for the parameters the pass computed, ``(n_params,)``;
+            None means all. A computed slope can still be NaN (cost not finite).
     """
 
     slopes: Array
     kink: NDArray[np.bool_]
     method: str
     h: float
+    computed: NDArray[np.bool_] | None = None
 
 
 @dataclass
@@ -177,11 +180,13 @@ def iter_numeric_slopes(
     wanted = np.arange(net.n_params) if which is None else np.unique(np.fromiter(which, dtype=np.int64))
     slopes = np.full(net.n_params, np.nan)
     kink = np.zeros(net.n_params, dtype=bool)
+    computed = np.zeros(net.n_params, dtype=bool)
+    computed[wanted] = True
     total = int(wanted.size)
     done = 0
     yield done, total
     if total == 0:
-        return NumericSlopes(slopes, kink, method, step)
+        return NumericSlopes(slopes, kink, method, step, computed)
 
     theta = np.array(theta, dtype=np.float64, copy=True)
     trace = net.forward(theta, X)
@@ -225,7 +230,7 @@ def iter_numeric_slopes(
                 if done % 16 == 0 or done == total:
                     yield done, total
     del params
-    return NumericSlopes(slopes, kink, method, step)
+    return NumericSlopes(slopes, kink, method, step, computed)
 
 
 def _prepare_reach(
