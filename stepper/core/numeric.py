@@ -354,7 +354,8 @@ def _dense_costs(
         dense = net.layers[index]
         assert isinstance(dense, Dense)
         if index == n_layers - 1:
-            A = Z if net.fused is not None else dense.activation.fn(Z)
+            # The last layer: its Z is needed afterwards only by a fused loss.
+            A = Z if net.fused is not None else dense.activation.apply_in_place(Z)
             return net.output_cost(A, DenseCache(_NOTHING, Z, A), Y), kinked
         A = dense.activation.apply_in_place(Z)
         index += 1
