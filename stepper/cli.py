@@ -32,7 +32,9 @@ class _Parser(argparse.ArgumentParser):
     """argparse that reports a usage problem as one line and exit code 2."""
 
     def error(self, message: str) -> None:  # type: ignore[override]
-        raise StepperError(f"{self.prog}: {message}")
+        # The boundary prints "stepper: " itself; keep only the subcommand's name.
+        where = self.prog.removeprefix("stepper").strip()
+        raise StepperError(f"{where}: {message}" if where else message)
 
 
 def build_parser() -> argparse.ArgumentParser:

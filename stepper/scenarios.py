@@ -32,10 +32,14 @@ def resolve_model(arg: str | None) -> Path:
     if arg is None:
         return default_model()
     path = Path(arg)
-    if path.is_dir() and (path / "model.toml").is_file():
-        return path / "model.toml"
-    if not path.exists() and "/" not in arg and not arg.endswith(".toml"):
-        candidate = scenarios_root() / arg / "model.toml"
-        if candidate.is_file():
-            return candidate
+    try:
+        if path.is_dir() and (path / "model.toml").is_file():
+            return path / "model.toml"
+        if not path.exists() and "/" not in arg and not arg.endswith(".toml"):
+            candidate = scenarios_root() / arg / "model.toml"
+            if candidate.is_file():
+                return candidate
+    except (OSError, ValueError):
+        # A name the system refuses (too long, a NUL byte): reading it will say so.
+        pass
     return path

@@ -269,10 +269,10 @@ def test_bad_step(capsys: pytest.CaptureFixture[str], tmp_path: Path, write_mode
                   reason: str) -> None:
     path = write_model(MODEL, DATA)
     assert bad(capsys, tmp_path, str(path), f"--step={step}") == (
-        f"stepper: stepper check: argument --step: {step!r} {reason}")
+        f"stepper: check: argument --step: {step!r} {reason}")
 
 
 def test_bad_method(capsys: pytest.CaptureFixture[str], tmp_path: Path, write_model: WriteModel) -> None:
     path = write_model(MODEL, DATA)
     assert bad(capsys, tmp_path, str(path), "--method", "backward").startswith(
-        "stepper: stepper check: argument --method: invalid choice: 'backward'")
+        "stepper: check: argument --method: invalid choice: 'backward'")

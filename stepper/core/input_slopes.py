@@ -23,7 +23,7 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
-from stepper.core.compare import Thresholds, relative_error, verdict_counts, verdicts
+from stepper.core.compare import Thresholds, noise_level, relative_error, verdict_counts, verdicts
 from stepper.core.layers import Dense, DenseCache
 from stepper.core.network import Network
 from stepper.core.numeric import METHODS, default_step
@@ -152,8 +152,12 @@ def check_input_slopes(
             work[s, i] = saved
     analytic = np.asarray(dX, dtype=np.float64)[rows]
     rel = relative_error(analytic, numeric, limits.floor)
-    return InputSlopeCheck(layer, lay.label, rows, analytic, numeric, rel, verdicts(rel, kink, limits),
-                           method, step)
+    # Only sample s's cost moves, so the rounding noise is that of its own cost,
+    # divided by the n of the average (see compare.noise_level).
+    noise = np.array([noise_level(float(base[s]), step) for s in rows])[:, None] / n
+    quiet = np.abs(analytic - numeric) <= noise
+    return InputSlopeCheck(layer, lay.label, rows, analytic, numeric, rel,
+                           verdicts(rel, kink, limits, within_noise=quiet), method, step)
 
 
 def _moved(
