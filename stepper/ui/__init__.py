@@ -8,6 +8,9 @@ Modules, one job each:
 - :mod:`stepper.ui.costplot`: the cost plot drawn by plotext.
 - :mod:`stepper.ui.panels`: status line, rate preview panel and the job bar.
 - :mod:`stepper.ui.dialogs`: the modal screens (typed values, choices, quit, help).
+- :mod:`stepper.ui.insight`: the figures of the "why" panels, computed by the core from a snapshot.
+- :mod:`stepper.ui.slicepanel`, :mod:`stepper.ui.factorpanel`, :mod:`stepper.ui.healthpanel`:
+  the "why" panels: the cost along a weight, its slope's factors, layer health.
 - :mod:`stepper.ui.app`: the app, which owns the session and routes keys to it.
 
 Widgets render and post messages; only the app calls the session, and only

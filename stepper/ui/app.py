@@ -35,8 +35,12 @@ from stepper.errors import StepperError, UsageError
 from stepper.session import SLOPE_SOURCES, Session
 from stepper.ui.costplot import CostPlot
 from stepper.ui.dialogs import AskScreen, ChoiceScreen, ConfirmScreen, HelpScreen, QuitScreen
+from stepper.ui.factorpanel import FactorPanel
+from stepper.ui.healthpanel import HealthPanel
+from stepper.ui.insight import Figures, InputChecks, SliceFigures
 from stepper.ui.keys import KEYS, bindings
 from stepper.ui.panels import JobBar, RatePanel, StatusLine
+from stepper.ui.slicepanel import SlicePanel
 from stepper.ui.snapshot import HistoryArrays, Snapshot, take
 from stepper.ui.weights import WeightTable
 
@@ -49,6 +53,8 @@ _MAIN_ACTIONS = frozenset(k.action.split("(")[0] for k in KEYS if k.scope == "ap
 UPDATE_EVERY = 0.2
 #: Standard deviation of the noise ``p`` and ``P`` add, unless the command line says otherwise.
 DEFAULT_NOISE = 0.01
+#: The "why" panels by name (the slice, the slope factors, the layer health) and their keys.
+WHY_KEY = {"slice": "t", "factors": "i", "health": "h"}
 
 RULE_TEXT = {
     "gd": "plain gradient descent",
@@ -102,6 +108,19 @@ class StepperApp(App[None]):
         self.snapshot: Snapshot | None = None
         self.show_rates = False
         self._history = HistoryArrays()
+        #: The "why" panel shown (a key of WHY_KEY), or None; view settings, not model state.
+        self.why: str | None = None
+        #: Half-width of the slice's sweep (None: the core's default), and the sample the factors show.
+        self.span: float | None = None
+        self.sample: int | None = None
+        self.figures = Figures(session.net, session.setup.data)
+        self._shown_slice: SliceFigures | None = None
+        self._shown_samples: tuple[int, int] | None = None  # (sample shown, number of samples)
+        self._shown_index: int | None = None
+        self._input_checks: InputChecks | None = None
+        self._last_error: str | None = None
+        self._snapshot_problem: str | None = None
+        self._worker_waiting = False
 
     # -- layout ----------------------------------------------------------------------------
 
@@ -112,6 +131,9 @@ class StepperApp(App[None]):
             with Container(id="side"):
                 yield CostPlot(id="plot")
                 yield RatePanel(id="rates")
+                yield SlicePanel(id="slice", classes="why")
+                yield FactorPanel(id="factors", classes="why")
+                yield HealthPanel(id="health", classes="why")
         yield JobBar(id="job")
         yield Footer()
 
@@ -135,8 +157,14 @@ class StepperApp(App[None]):
         self.table.show(snap)
         self.plot.show(snap)
         self._show_status()
+        if snap.problem != self._snapshot_problem:
+            # Said when it appears (unless the operation's own message just said it), not on every redraw.
+            self._snapshot_problem = snap.problem
+            if snap.problem is not None and snap.problem != self._last_error:
+                self.say(snap.problem, error=True)
         if self.show_rates and self.job != "steps":
             self._show_rates()
+        self._show_why()
 
     def _show_status(self) -> None:
         if self.snapshot is not None:
@@ -144,7 +172,12 @@ class StepperApp(App[None]):
             self.query_one(StatusLine).show(self.snapshot, self.session.refresh_numeric_after_step, job)
 
     def _show_rates(self) -> None:
-        preview = self.session.preview_rates()
+        try:
+            preview = self.session.preview_rates()
+        except StepperError as exc:  # a custom layer's code raised
+            self.query_one(RatePanel).show([], self.session.rate, None)
+            self._problem(exc.message)
+            return
         best = self.session.best_preview_rate(preview) if preview else None
         self.query_one(RatePanel).show(preview, self.session.rate, best)
 
@@ -158,8 +191,16 @@ class StepperApp(App[None]):
 
     def say(self, message: str, error: bool = False) -> None:
         """A notification; never markup, since weight names contain brackets."""
+        if error:
+            self._last_error = message
         self.notify(message, severity="error" if error else "information", markup=False,
                     timeout=8 if error else 4)
+
+    def _problem(self, message: str) -> None:
+        """An error found while drawing (not asked for by a key): said once, not on every redraw."""
+        log.info("problem: %s", message)
+        if message != self._last_error:
+            self.say(message, error=True)
 
     def busy(self) -> bool:
         """True (and says so) when a job runs and the session must not be touched."""
@@ -277,7 +318,11 @@ class StepperApp(App[None]):
     def action_adopt_best_rate(self) -> None:
         if self.busy():
             return
-        preview = self.session.preview_rates()
+        try:
+            preview = self.session.preview_rates()
+        except StepperError as exc:
+            self.say(exc.message, error=True)
+            return
         best = self.session.best_preview_rate(preview)
         if math.isclose(best, self.session.rate, rel_tol=1e-12):
             self.say(f"the current rate {best:g} is already the best of the preview")
@@ -382,6 +427,172 @@ class StepperApp(App[None]):
     @on(WeightTable.ViewChanged)
     def _view_changed(self, event: WeightTable.ViewChanged) -> None:
         log.debug("table: %s", event.description)
+
+    @on(WeightTable.Selected)
+    def _selected(self, event: WeightTable.Selected) -> None:
+        if self.why in ("slice", "factors") and event.index != self._shown_index:
+            self._show_why()
+
+    # -- why: slice, factors, health (view only; computed from the snapshot) ----------------
+
+    def action_toggle_slice(self) -> None:
+        self._toggle_why("slice")
+
+    def action_toggle_factors(self) -> None:
+        self._toggle_why("factors")
+
+    def action_toggle_health(self) -> None:
+        self._toggle_why("health")
+
+    def _toggle_why(self, name: str) -> None:
+        """Show panel ``name`` in place of the cost plot (beside it on wide screens), or hide it."""
+        self.why = None if self.why == name else name
+        for panel in self.query(".why"):
+            panel.set_class(panel.id == self.why, "-shown")
+        self.query_one("#side").set_class(self.why is not None, "-why")
+        self._shown_index = None
+        self._show_why()
+
+    def _shows(self, name: str) -> bool:
+        """True when panel ``name`` is shown; otherwise says which key shows it."""
+        if self.why != name:
+            self.say(f"the {name} panel is not shown ({WHY_KEY[name]} shows it)", error=True)
+            return False
+        return True
+
+    def action_widen_span(self) -> None:
+        self._scale_span(2.0)
+
+    def action_narrow_span(self) -> None:
+        self._scale_span(0.5)
+
+    def _scale_span(self, factor: float) -> None:
+        if not self._shows("slice"):
+            return
+        if self._shown_slice is None:
+            self.say("no slice is drawn to widen or narrow (see the panel)", error=True)
+            return
+        self.span = self._shown_slice.span * factor
+        self._show_why()
+
+    def action_type_span(self) -> None:
+        if not self._shows("slice"):
+            return
+        current = "" if self.span is None else f"{self.span:g}"
+
+        def chosen(text: str) -> None:
+            if not text.strip():
+                self.span = None
+            else:
+                try:
+                    span = parse_float(text, "span")
+                    if span <= 0:
+                        raise UsageError(f"span: {span:g} must be positive")
+                except UsageError as exc:
+                    self.say(exc.message, error=True)
+                    return
+                self.span = span
+            self._show_why()
+
+        self.ask("Span of the slice", "Half-width of the sweep around the value (empty: automatic):",
+                 current, chosen)
+
+    def action_next_sample(self) -> None:
+        self._step_sample(1)
+
+    def action_previous_sample(self) -> None:
+        self._step_sample(-1)
+
+    def _step_sample(self, delta: int) -> None:
+        if not self._shows("factors"):
+            return
+        if self._shown_samples is None:
+            self.say("this weight has no factors to show sample by sample (see the panel)", error=True)
+            return
+        shown, n = self._shown_samples
+        self.sample = (shown + delta) % n
+        self._show_why()
+
+    def action_type_sample(self) -> None:
+        if not self._shows("factors"):
+            return
+        n = self.session.setup.data.n_train
+
+        def chosen(text: str) -> None:
+            if not text.strip():
+                self.sample = None
+            else:
+                try:
+                    sample = int(text.strip())
+                except ValueError:
+                    self.say(f"sample: {text.strip()!r} is not a whole number", error=True)
+                    return
+                if not 0 <= sample < n:
+                    self.say(f"sample {sample}: the training set has samples 0 to {n - 1}", error=True)
+                    return
+                self.sample = sample
+            self._show_why()
+
+        current = "" if self.sample is None else str(self.sample)
+        self.ask("Sample", f"Training sample to show, 0 to {n - 1} (empty: the largest product):",
+                 current, chosen)
+
+    def _show_why(self) -> None:
+        """Compute and draw the shown "why" panel from the current snapshot."""
+        snap = self.snapshot
+        if self.why is None or snap is None:
+            return
+        if self.job is not None and self.figures.custom and not self._worker_waiting:
+            # A custom layer's code is not known to be safe on two threads at once: the
+            # panel follows at the job's next screen update (or its end).
+            return
+        index = self.table.selected
+        self._shown_index = index
+        try:
+            if self.why == "slice":
+                self._show_slice(snap, index)
+            elif self.why == "factors":
+                self._show_factors(snap, index)
+            else:
+                self.query_one(HealthPanel).show(self.figures.health(snap, self._input_checks))
+        except StepperError as exc:  # the user's layer raised
+            name = "" if index is None else f" {snap.names[index]}"
+            panel: SlicePanel | FactorPanel | HealthPanel
+            if self.why == "slice":
+                panel, title = self.query_one(SlicePanel), f"cost along{name}"
+            elif self.why == "factors":
+                panel, title = self.query_one(FactorPanel), f"slope factors of{name}"
+            else:
+                panel, title = self.query_one(HealthPanel), "layer health"
+            panel.show_note(title, f"cannot be computed here: {exc.message}")
+            self._shown_slice = None
+            self._shown_samples = None
+            self._problem(exc.message)
+
+    def _show_slice(self, snap: Snapshot, index: int | None) -> None:
+        panel = self.query_one(SlicePanel)
+        if index is None:
+            self._shown_slice = None
+            panel.show_note("cost along a weight", "no weight is selected (the filter shows no rows)")
+            return
+        figures = self.figures.slice(snap, index, self.span)
+        self._shown_slice = figures
+        panel.show(figures)
+
+    def _show_factors(self, snap: Snapshot, index: int | None) -> None:
+        panel = self.query_one(FactorPanel)
+        if index is None:
+            self._shown_samples = None
+            panel.show_note("slope factors", "no weight is selected (the filter shows no rows)")
+            return
+        figures = self.figures.factors(snap, index, self.sample)
+        if isinstance(figures, str):
+            self._shown_samples = None
+            panel.show_note(f"slope factors of {snap.names[index]}",
+                            f"{figures}. t shows the cost along it; c compares its slope with finite differences.")
+            return
+        self._shown_samples = (figures.result.sample, figures.result.n_samples)
+        panel.show(figures)
 
     # -- files -----------------------------------------------------------------------------
 
@@ -500,11 +711,28 @@ class StepperApp(App[None]):
                 if now - last >= UPDATE_EVERY:
                     last = now
                     self._from_worker(self._job_progress, done, total, False)
+            if not cancelled and self.figures.custom:
+                # As `stepper check` does: the custom layers' dX against numeric input slopes.
+                version = self.session.version
+                checks = self.figures.input_slopes(self.session.theta.copy(), lambda: worker.is_cancelled)
+                if checks is None:
+                    cancelled = True
+                else:
+                    self._from_worker(self._input_checks_done, InputChecks(version, checks))
         except StepperError as exc:
             error = exc
         finally:
             job.close()
         self._from_worker(self._job_done, "numeric slopes", error, cancelled)
+
+    def _input_checks_done(self, checks: InputChecks) -> None:
+        self._input_checks = checks
+        for c in checks.checks:
+            if not c.passed:
+                bad = c.counts["disagree"]
+                self.say(f"custom layer L{c.layer + 1} ({c.label}): its backward pass's dX disagrees with "
+                         f"numeric input slopes on {bad} of {c.analytic.size} entries (h: layer health)",
+                         error=True)
 
     def _from_worker(self, callback: Callable[..., None], *args: Any) -> None:
         """``call_from_thread`` that gives up quietly when the app has already closed."""
@@ -516,7 +744,12 @@ class StepperApp(App[None]):
     def _job_progress(self, done: int, total: int, redraw: bool) -> None:
         self.query_one(JobBar).advance(done, total)
         if redraw:
-            self.refresh_view()
+            # The worker waits in call_from_thread until this returns: the session is still.
+            self._worker_waiting = True
+            try:
+                self.refresh_view()
+            finally:
+                self._worker_waiting = False
 
     def _job_done(self, job: str, error: StepperError | None, cancelled: bool) -> None:
         self.job = None

@@ -154,7 +154,12 @@ def help_rows() -> list[tuple[str, str, str]]:
 
 HELP_NOTE = ("Numbers are in scientific notation. Verdicts are words: agree, doubtful, DISAGREE, kink~ "
              "(the numeric slope crossed a kink and is not trusted), - (not checked). numeric* in the "
-             "header: the weights changed since the numeric slopes were computed.")
+             "header: the weights changed since the numeric slopes were computed.\n\n"
+             "Slice (t): along one weight a step multiplies the distance to the minimum by "
+             "1 - rate x curvature, so below 1 it stops short, between 1 and 2 it overshoots, above 2 "
+             "steps diverge, and 1/curvature is the best rate along that weight (LeCun, Bottou, Orr & "
+             "Mueller, \"Efficient BackProp\", 1998, section 5.1; recalled from memory). Thresholds in the "
+             "factors (i) and health (h) panels are common practice, without a published source.")
 
 
 def help_table() -> Table:

@@ -109,10 +109,26 @@ KEYS: tuple[Key, ...] = (
     Key("l", "load", "load", "load a checkpoint (asks for the path)", "files"),
     Key("question_mark,f1", "help", "help", "this list of keys", "app", footer=True, display="?"),
     Key("q", "quit", "quit", "quit (asks first when there are unsaved changes)", "app", footer=True),
+    # -- why: last, so that a narrow footer drops these before ? and q (t and h fit in 100
+    # columns; each panel lists its own keys) ---------------------------------------------
+    Key("t", "toggle_slice", "slice", "show or hide the cost along the selected weight: its tangent, "
+        "its curvature, and where one step at the current rate lands", "why", footer=True),
+    Key("greater_than_sign", "widen_span", "wider", "slice: sweep twice as wide", "why", display=">"),
+    Key("less_than_sign", "narrow_span", "narrower", "slice: sweep half as wide", "why", display="<"),
+    Key("T", "type_span", "span", "slice: type the half-width of the sweep (empty: automatic)", "why"),
+    Key("i", "toggle_factors", "factors", "show or hide the selected weight's slope taken apart: error "
+        "signal x activation slope x input, averaged and for one sample", "why"),
+    Key("full_stop", "next_sample", "next sample", "factors: show the next sample", "why", display="."),
+    Key("comma", "previous_sample", "prev sample", "factors: show the previous sample", "why",
+        display=","),
+    Key("I", "type_sample", "sample", "factors: type a sample number (empty: the one that contributes "
+        "most)", "why"),
+    Key("h", "toggle_health", "health", "show or hide layer health: sizes of weights and slopes, "
+        "update-to-weight ratio, saturated and dead units, slopes layer by layer", "why", footer=True),
 )
 
 #: Help-screen headings in order.
-GROUPS = ("descent", "slopes", "weights", "table", "plot", "files", "app")
+GROUPS = ("descent", "slopes", "why", "weights", "table", "plot", "files", "app")
 
 
 def bindings(scope: str) -> list[Binding]:

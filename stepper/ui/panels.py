@@ -15,8 +15,8 @@ from stepper.ui.snapshot import Snapshot
 
 def cost_text(value: float | None) -> str:
     """A cost with enough digits to see a step's effect."""
-    if value is None:
-        return "-"
+    if value is None or math.isnan(value):
+        return "-"  # none, or not computable (see Snapshot.problem)
     if not math.isfinite(value):
         return "diverges"
     return f"{value:.6g}"
@@ -43,6 +43,8 @@ def status_lines(snap: Snapshot, auto_check: bool, job: str | None = None) -> li
         flags.append("auto-check")
     second = " | ".join(flags)
     third = f"last: {snap.last_action}" if snap.last_action else "last: nothing yet"
+    if snap.problem:
+        third = f"PROBLEM: {snap.problem}"
     if job:
         third = f"{job} | {third}"
     return [first, second, third]

@@ -14,12 +14,13 @@ the names and layer numbers are the layout's own (they never change).
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import TYPE_CHECKING, Any, Sequence
+from typing import TYPE_CHECKING, Any, Callable, Sequence
 
 import numpy as np
 from numpy.typing import NDArray
 
 from stepper.core.compare import VERDICTS
+from stepper.errors import StepperError
 
 if TYPE_CHECKING:
     from stepper.session import Session
@@ -56,6 +57,9 @@ class Snapshot:
         counts: number of parameters per verdict of the last check.
         last_action: the session's description of its last operation.
         dirty: changes since the last save or load.
+        version: the session's parameter version (changes whenever a weight does).
+        problem: why the slopes or costs could not be computed (a custom layer raised, say);
+            the missing numbers are NaN. None when all is well.
     """
 
     name: str
@@ -85,6 +89,8 @@ class Snapshot:
     dirty: bool
     can_undo: bool
     can_redo: bool
+    version: int
+    problem: str | None
 
     @property
     def n_params(self) -> int:
@@ -154,13 +160,19 @@ def take(session: Session, history: HistoryArrays | None = None) -> Snapshot:
         codes = np.zeros(n, dtype=np.int8)
         counts = {name: 0 for name in VERDICTS}
     steps, train, val = (history or HistoryArrays()).arrays(session.history)
+    # A custom layer's code may raise at these weights: the frame still draws, with NaN
+    # where a number is missing and the message in ``problem`` (never a crash of the app).
+    problems: list[str] = []
+    analytic = _or_nan(session.analytic_slopes, np.full(n, np.nan), problems)
+    train_cost = _or_nan(session.train_cost, np.nan, problems)
+    val_cost = _or_nan(session.val_cost, np.nan, problems)
     return Snapshot(
         name=session.setup.name,
         names=layout.names,
         layer=layout.layer_index,
         n_layers=len(net.layers),
         value=np.array(session.theta, dtype=np.float64),
-        analytic=np.array(session.analytic_slopes(), dtype=np.float64),
+        analytic=np.array(analytic, dtype=np.float64),
         numeric=numeric,
         rel_error=rel,
         verdict=codes,
@@ -175,11 +187,22 @@ def take(session: Session, history: HistoryArrays | None = None) -> Snapshot:
         rule=str(session.rule),
         slope_source=str(session.slope_source),
         batch_size=session.batch_size,
-        train_cost=float(session.train_cost()),
-        val_cost=session.val_cost(),
+        train_cost=float(train_cost),
+        val_cost=None if val_cost is None else float(val_cost),
         counts=counts,
         last_action=session.last_action,
         dirty=bool(session.dirty),
         can_undo=bool(session.can_undo),
         can_redo=bool(session.can_redo),
+        version=int(session.version),
+        problem=problems[0] if problems else None,
     )
+
+
+def _or_nan(compute: Callable[[], Any], missing: Any, problems: list[str]) -> Any:
+    """``compute()``, or ``missing`` when it raises a StepperError (its message goes to ``problems``)."""
+    try:
+        return compute()
+    except StepperError as exc:
+        problems.append(exc.message)
+        return missing

@@ -1,0 +1,154 @@
+"""The health panel: per layer, sizes of weights and slopes, the step's relative size, idle units.
+
+One row per layer, from :func:`stepper.core.health.layer_health` at the
+current weights and rate: the norms of the weights and of their slopes, the
+update-to-weight ratio one plain step would make (the common-practice range
+1e-4 to 1e-2 is named, and drawn on a log scale where the panel is wide enough), the
+saturated or dead units, and how the error signal changes from each layer to
+the next on the way back. Below: the trend over the whole network and, for
+custom layers, how their backward pass's input slopes compared with numeric
+ones at the last check (``c``). Text only, so it reads without colour.
+"""
+
+from __future__ import annotations
+
+import math
+import textwrap
+
+from rich.text import Text
+from textual.widgets import Static
+
+from stepper.core.health import RATIO_HIGH, RATIO_LOW, RATIO_TYPICAL, LayerHealth
+from stepper.ui.insight import HealthFigures
+
+#: The gauge spans 1e-6 to 1 in two cells per decade.
+GAUGE_FROM, GAUGE_DECADES, GAUGE_CELLS = -6, 6, 2
+
+
+def gauge(ratio: float) -> str:
+    """The ratio on a log scale from 1e-6 to 1: ``[`` and ``]`` mark 1e-4 and 1e-2, ``*`` the ratio.
+
+    ``<`` or ``>`` at an end when the ratio is off the scale; blank when it is not defined.
+    """
+    size = GAUGE_DECADES * GAUGE_CELLS + 1
+    cells = ["."] * size
+    cells[round((math.log10(RATIO_LOW) - GAUGE_FROM) * GAUGE_CELLS)] = "["
+    cells[round((math.log10(RATIO_HIGH) - GAUGE_FROM) * GAUGE_CELLS)] = "]"
+    if not (math.isfinite(ratio) and ratio > 0):
+        return " " * size
+    at = round((math.log10(ratio) - GAUGE_FROM) * GAUGE_CELLS)
+    if at < 0:
+        cells[0] = "<"
+    elif at >= size:
+        cells[-1] = ">"
+    else:
+        cells[at] = "*"
+    return "".join(cells)
+
+
+def _units(e: LayerHealth) -> str:
+    if e.saturation is not None:
+        return f"{e.saturated_units.size}/{e.saturation.size} sat"
+    if e.active is not None:
+        return f"{e.dead_units.size}/{e.active.size} dead"
+    return "-"
+
+
+def _exp(value: float) -> str:
+    """``1e-4`` rather than ``1e-04``."""
+    mantissa, exponent = f"{value:.0e}".split("e")
+    return f"{mantissa}e{int(exponent)}"
+
+
+def health_table(f: HealthFigures, wide: bool) -> list[str]:
+    """The header and one row per layer; ``wide`` adds the ratio gauge and the error signal's size."""
+    type_width = max(8, *(len(k) for k in f.kinds))
+    head = f"{'':<4}{'layer':<{type_width}} {'|weights|':>10} {'|slopes|':>10}  {'update/weight':<16}"
+    if wide:
+        head += f"{'[ ] ' + _exp(RATIO_LOW) + '..' + _exp(RATIO_HIGH):<15}"
+    head += f"{'units':<10}{'back':>6}"
+    if wide:
+        head += f"{'error rms':>10}"
+    lines = [head.rstrip()]
+    for e, kind in zip(f.report.layers, f.kinds):
+        ratio = "-" if not e.ratio_verdict else f"{e.update_ratio:.1e} {e.ratio_verdict}"
+        back = "-" if e.signal_change != e.signal_change else f"{e.signal_change:.2g}x"
+        row = (f"{'L' + str(e.index + 1):<4}{kind:<{type_width}} {e.weight_norm:>10.3e} {e.slope_norm:>10.3e}  "
+               f"{ratio:<16}")
+        if wide:
+            row += f"{gauge(e.update_ratio):<15}"
+        row += f"{_units(e):<10}{back:>6}"
+        if wide:
+            row += f"{e.signal_rms:>10.2e}"
+        lines.append(row.rstrip())
+    return lines
+
+
+def health_lines(f: HealthFigures, width: int) -> list[str]:
+    """The panel's text for a content ``width``: the gauge and the error rms when they fit."""
+    lines = health_table(f, wide=True)
+    if max(len(line) for line in lines) > width:
+        lines = health_table(f, wide=False)
+    r = f.report
+    wrap = max(width, 40)
+    if r.trend in ("single layer", "no signal"):
+        trend = f"slopes on the way back: {r.trend}"
+    else:
+        trend = (f"slopes on the way back: {r.trend.upper()} (layer 1's error signal is {r.travel:.2g}x "
+                 f"layer {len(r.layers)}'s; back: each layer's over the next one's)")
+    lines += textwrap.wrap(trend, wrap, subsequent_indent="  ")
+    lines += textwrap.wrap(f"update/weight: one plain step at rate {r.rate:g}; {_exp(RATIO_LOW)} to "
+                           f"{_exp(RATIO_HIGH)} (around {_exp(RATIO_TYPICAL)}) is common practice, no published "
+                           "source; sat: saturated on 90% of the samples", wrap, subsequent_indent="  ")
+    for line in _input_lines(f):
+        lines += textwrap.wrap(line, wrap, subsequent_indent="  ")
+    return lines
+
+
+def _input_lines(f: HealthFigures) -> list[str]:
+    if not f.custom:
+        return []
+    if f.inputs is None:
+        return [f"custom layer{'s' if len(f.custom) > 1 else ''} "
+                f"{', '.join('L' + str(i + 1) for i in f.custom)}: input slopes (dX) not checked yet (c checks)"]
+    stale = " (weights changed since; c again)" if f.inputs_stale else ""
+    out = []
+    for c in f.inputs:
+        counts = c.counts
+        verdict = "agrees" if c.passed else "DISAGREES"
+        out.append(f"L{c.layer + 1} {f.kinds[c.layer]} input slopes (dX): {verdict}: {counts['agree']} agree "
+                   f"{counts['doubtful']} doubtful {counts['disagree']} DISAGREE {counts['kink']} kink~ on "
+                   f"{c.samples.size} samples, worst {c.worst_error:.1e}{stale}")
+    return out
+
+
+class HealthPanel(Static):
+    """Layer health; the app feeds it after every change of the weights or the rate."""
+
+    def __init__(self, *, name: str | None = None, id: str | None = None, classes: str | None = None) -> None:
+        super().__init__("", name=name, id=id, classes=classes)
+        self.figures: HealthFigures | None = None
+        self.note = ""
+
+    def show(self, figures: HealthFigures) -> None:
+        self.figures = figures
+        self.border_title = f"layer health at rate {figures.report.rate:g}"
+        self._draw()
+
+    def show_note(self, title: str, note: str) -> None:
+        """No figures: ``note`` says why."""
+        self.figures = None
+        self.note = note
+        self.border_title = title
+        self._draw()
+
+    def on_resize(self) -> None:
+        self._draw()
+
+    def _draw(self) -> None:
+        width = self.content_size.width or 78
+        if self.figures is not None:
+            lines = health_lines(self.figures, width)
+        else:
+            lines = textwrap.wrap(self.note, max(width, 40))
+        self.update(Text("\n".join(lines), no_wrap=True, overflow="ellipsis"))

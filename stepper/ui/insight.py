@@ -1,0 +1,201 @@
+"""The figures behind the three "why" panels, computed by the core from a snapshot.
+
+Widgets do no maths: the app asks :class:`Figures` for what a panel shows and
+hands the result to the panel. Everything here reads the snapshot's copy of the
+weights (so a panel agrees with the table on screen) and the setup's network
+and data, which never change during a session; nothing here changes the session.
+
+A custom layer's code may raise while it runs here: that comes back as the
+:class:`~stepper.errors.CustomLayerError` the layer wrapper made of it, for the
+app to show.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any, Callable
+
+import numpy as np
+from numpy.typing import NDArray
+
+from stepper.core.breakdown import Breakdown, slope_breakdown
+from stepper.core.compare import relative_error
+from stepper.core.health import HealthReport, layer_health
+from stepper.core.input_slopes import InputSlopeCheck, check_input_slopes
+from stepper.core.layers import Dense
+from stepper.core.network import Network
+from stepper.core.slice import CostSlice, cost_slice
+from stepper.formats.dataset import Dataset
+from stepper.ui.snapshot import Snapshot
+
+Array = NDArray[np.float64]
+
+
+@dataclass(frozen=True)
+class SliceFigures:
+    """The cost along one weight.
+
+    Attributes:
+        name: the weight's name.
+        result: the core's sweep, tangent, curvature and step.
+        automatic: the span is the core's default (no span was asked for).
+    """
+
+    name: str
+    result: CostSlice
+    automatic: bool
+
+    @property
+    def span(self) -> float:
+        """Half-width of the sweep."""
+        return float(self.result.points[-1] - self.result.points[0]) / 2.0
+
+
+@dataclass(frozen=True)
+class FactorFigures:
+    """One weight's slope taken apart into its factors.
+
+    Attributes:
+        name: the weight's name.
+        what: where the weight sits, e.g. ``weight from input 2 (wind) to unit 0 of layer 1 (dense 4->5 tanh)``.
+        result: the core's breakdown.
+        input_name: the input column's name for a first-layer weight, else None.
+        table_slope: the slope the table shows for the weight.
+        mismatch: relative error between the sum of the products and ``table_slope``.
+        largest: the sample whose product is largest in size.
+        at_z: why the error signal is taken at the unit's input, or None when it is not.
+    """
+
+    name: str
+    what: str
+    result: Breakdown
+    input_name: str | None
+    table_slope: float
+    mismatch: float
+    largest: int
+    at_z: str | None
+
+
+@dataclass(frozen=True)
+class HealthFigures:
+    """Layer health, and the custom layers' input-slope checks when there are any.
+
+    Attributes:
+        report: the core's health report at the snapshot's weights and rate.
+        kinds: a short name per layer, e.g. ``tanh 4->5`` or ``custom 5->3``.
+        custom: 0-based indices of custom layers.
+        inputs: the last input-slope checks of the custom layers (None: never run).
+        inputs_stale: the weights changed since those checks.
+    """
+
+    report: HealthReport
+    kinds: tuple[str, ...]
+    custom: tuple[int, ...]
+    inputs: tuple[InputSlopeCheck, ...] | None
+    inputs_stale: bool
+
+
+@dataclass(frozen=True)
+class InputChecks:
+    """The custom layers' input-slope checks at one parameter version."""
+
+    version: int
+    checks: tuple[InputSlopeCheck, ...]
+
+
+class Figures:
+    """Computes each panel's figures, keeping the last result of each panel.
+
+    A result is reused while the weights (the snapshot's version), the rate, the
+    selected weight and the panel's setting stay the same, so redrawing after a
+    change that moves no weight (freezing, say) computes nothing.
+    """
+
+    def __init__(self, net: Network, data: Dataset) -> None:
+        self.net = net
+        self.data = data
+        self.custom = tuple(i for i, layer in enumerate(net.layers) if not isinstance(layer, Dense))
+        self.kinds = tuple(
+            f"{layer.activation.name} {layer.n_in}->{layer.n_out}" if isinstance(layer, Dense)
+            else f"custom {layer.n_in}->{layer.n_out}"
+            for layer in net.layers
+        )
+        self._last: dict[str, tuple[tuple[Any, ...], Any]] = {}
+
+    def _cached(self, panel: str, key: tuple[Any, ...], compute: Callable[[], Any]) -> Any:
+        hit = self._last.get(panel)
+        if hit is not None and hit[0] == key:
+            return hit[1]
+        value = compute()
+        self._last[panel] = (key, value)
+        return value
+
+    def slice(self, snap: Snapshot, index: int, span: float | None) -> SliceFigures:
+        """The cost along weight ``index``, swept over ``value +- span`` (the core's default when None)."""
+        X, Y = self.data.X, self.data.Y
+
+        def compute() -> SliceFigures:
+            result = cost_slice(self.net, snap.value, X, Y, index, snap.rate, span)
+            return SliceFigures(snap.names[index], result, span is None)
+
+        figures: SliceFigures = self._cached("slice", (snap.version, index, span, snap.rate), compute)
+        return figures
+
+    def factors(self, snap: Snapshot, index: int, sample: int | None) -> FactorFigures | str:
+        """The factors of weight ``index``'s slope, or a sentence saying why there are none.
+
+        ``sample`` is the training row shown on its own (None: the one contributing most).
+        """
+        X, Y = self.data.X, self.data.Y
+
+        def compute() -> FactorFigures | str:
+            try:
+                b = slope_breakdown(self.net, snap.value, X, Y, index, sample)
+            except ValueError as exc:  # a custom layer's parameter: no units to break down
+                return str(exc)
+            table = float(snap.analytic[index])
+            mismatch = float(relative_error(np.array([b.total]), np.array([table]))[0])
+            input_name = self.data.input_names[b.source] if b.layer == 0 and b.source is not None else None
+            largest = int(np.argmax(np.abs(b.products)))
+            at_z = None
+            if b.through_z:
+                last = b.layer == len(self.net.layers) - 1
+                at_z = ("the output activation is computed together with its loss, from Z"
+                        if last and self.net.fused is not None else f"{b.activation} couples its units")
+            return FactorFigures(snap.names[index], self._where(b, input_name), b, input_name, table, mismatch,
+                                 largest, at_z)
+
+        figures: FactorFigures | str = self._cached("factors", (snap.version, index, sample), compute)
+        return figures
+
+    def _where(self, b: Breakdown, input_name: str | None) -> str:
+        label = self.net.layers[b.layer].label
+        if b.source is None:
+            what = f"bias of unit {b.unit}"
+        elif b.layer == 0:
+            what = f"weight from input {b.source} ({input_name}) to unit {b.unit}"
+        else:
+            what = f"weight from unit {b.source} of layer {b.layer} to unit {b.unit}"
+        return f"{what} of layer {b.layer + 1} ({label})"
+
+    def health(self, snap: Snapshot, inputs: InputChecks | None) -> HealthFigures:
+        """Layer health at the snapshot's weights and rate, with the last input-slope checks."""
+        X, Y = self.data.X, self.data.Y
+        report: HealthReport = self._cached(
+            "health", (snap.version, snap.rate), lambda: layer_health(self.net, snap.value, X, Y, snap.rate))
+        checks = None if inputs is None else inputs.checks
+        stale = inputs is not None and inputs.version != snap.version
+        return HealthFigures(report, self.kinds, self.custom, checks, stale)
+
+    def input_slopes(self, theta: Array, cancelled: Callable[[], bool]) -> tuple[InputSlopeCheck, ...] | None:
+        """Input-slope checks of every custom layer at ``theta`` ``(n_params,)``; None if cancelled.
+
+        Runs the network many times (twice per checked input entry): the app calls
+        it in its check worker, which has the session to itself.
+        """
+        out = []
+        for layer in self.custom:
+            if cancelled():
+                return None
+            out.append(check_input_slopes(self.net, theta, self.data.X, self.data.Y, layer))
+        return tuple(out)

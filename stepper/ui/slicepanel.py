@@ -1,0 +1,260 @@
+"""The slice panel: the cost along the selected weight, with every other weight held fixed.
+
+Left, a plotext plot of the swept cost (``*``), the tangent whose slope is the
+analytic slope (``.``), the current point (``O``) and where one plain step at
+the current rate lands (``X``); right, the figures: slope, curvature,
+``rate x curvature`` and what it means for the rate, the step, the span.
+
+The numbers come from :func:`stepper.core.slice.cost_slice` through
+:class:`stepper.ui.insight.Figures`. plotext draws into one module-wide figure,
+so the plot is built only in ``render_line``, on the app's thread (as the cost
+plot is), sized to the widget's content area each time that size changes.
+"""
+
+from __future__ import annotations
+
+import math
+import re
+import textwrap
+from typing import Any, ClassVar
+
+import numpy as np
+import plotext  # type: ignore[import-untyped]
+from rich.segment import Segment
+from rich.style import Style
+from rich.text import Text
+from textual.app import ComposeResult
+from textual.containers import Horizontal
+from textual.strip import Strip
+from textual.widget import Widget
+from textual.widgets import Static
+
+from stepper.core.slice import CostSlice
+from stepper.ui.insight import SliceFigures
+
+COST_MARK = "*"
+TANGENT_MARK = "."
+NOW_MARK = "O"
+STEP_MARK = "X"
+
+#: Where the verdict on ``rate x curvature`` comes from, short beside the verdict (the help
+#: screen names it in full, as stepper.core.slice does).
+SHORT_SOURCE = "LeCun et al. 1998"
+
+#: One line per regime of :attr:`CostSlice.regime`: what ``rate x curvature`` says about one step.
+MEANING = {
+    "short": "below 1: one step stops short of the minimum",
+    "overshoots": "over 1: one step overshoots; steps oscillate",
+    "diverges": "over 2: steps along this weight diverge",
+    "no minimum": "curvature <= 0: no minimum, no limit on the rate",
+}
+
+
+def slice_plot_text(result: CostSlice, width: int, height: int) -> str:
+    """The slice as plain text, ``width`` x ``height`` cells. Call on the app's thread only.
+
+    The tangent is drawn only where it stays inside the cost curve's range, so a
+    steep tangent does not flatten the curve.
+    """
+    fig: Any = plotext.figure
+    plotext.terminal.limit(False, False)
+    fig.clear()
+    fig.theme("colorless")
+    fig.plot_size(width, height)
+    fig.legend(False)
+    costs = result.costs
+    finite = np.isfinite(costs)
+    lo = float(np.min(costs[finite])) if finite.any() else 0.0
+    hi = float(np.max(costs[finite])) if finite.any() else 1.0
+    pad = 0.05 * (hi - lo) if hi > lo else max(abs(hi), 1.0) * 1e-3
+    # The tangent first: where it runs along the curve the curve shows, where it parts the tangent does.
+    keep = np.isfinite(result.tangent) & (result.tangent >= lo - pad) & (result.tangent <= hi + pad)
+    if np.count_nonzero(keep) >= 2:
+        tangent = fig.signal(result.points[keep].tolist(), result.tangent[keep].tolist(), marker=TANGENT_MARK)
+        tangent.lines()
+        fig.draw(tangent)
+    if np.count_nonzero(finite) >= 2:
+        curve = fig.signal(result.points[finite].tolist(), costs[finite].tolist(), marker=COST_MARK)
+        curve.lines()
+        fig.draw(curve)
+    landing_shown = (result.points[0] <= result.landing <= result.points[-1]
+                     and math.isfinite(result.landing_cost) and lo - pad <= result.landing_cost <= hi + pad)
+    if landing_shown:
+        fig.draw(fig.signal([result.landing], [result.landing_cost], marker=STEP_MARK))
+    # Drawn last: when the step is too small to leave the current point's cell, the point shows.
+    fig.draw(fig.signal([result.value], [result.cost], marker=NOW_MARK))
+    fig.ruler("y").lim(lo - pad, hi + pad)
+    first, last = float(result.points[0]), float(result.points[-1])
+    fig.ruler("x").lim(first, last)
+    ticks = np.linspace(first, last, 3 if width < 50 else 5)
+    fig.ruler("x").ticks(ticks.tolist(), tick_labels(ticks.tolist()))
+    return str(fig.build().string(colorless=True))
+
+
+def tick_labels(ticks: list[float]) -> list[str]:
+    """Labels with the fewest significant digits (3 or more) that tell every tick apart."""
+    for digits in range(3, 16):
+        labels = [f"{t:.{digits}g}" for t in ticks]
+        if len(set(labels)) == len(labels):
+            return labels
+    return labels
+
+
+def slice_lines(figures: SliceFigures, width: int = 37) -> list[str]:
+    """The figures beside the plot, one string per line, wrapped at ``width``."""
+    s = figures.result
+    lines = [
+        f"cost      {s.cost: .6e}",
+        f"slope     {s.slope: .4e} (tangent)",
+        f"curvature {s.curvature: .4e}",
+        f"rate x curv. {s.rate_curvature:.3g}: {s.regime.upper()}",
+        f"  {MEANING[s.regime]} ({SHORT_SOURCE})",
+    ]
+    if s.curvature > 0:
+        lines.append(f"best rate 1/curv. {s.best_rate:.3g}, limit {2 * s.best_rate:.3g}")
+    beyond = "" if s.points[0] <= s.landing <= s.points[-1] else " (beyond the span)"
+    lines.append(f"one step {s.value:.4g} -> {s.landing:.4g}{beyond}")
+    lines.append(f"  cost {s.landing_cost:.6e} (model {s.model_cost:.4g})")
+    lines.append(f"span +-{figures.span:.3g} {'automatic' if figures.automatic else 'set'}: < > T")
+    return [piece for line in lines for piece in textwrap.wrap(line, width, subsequent_indent="  ")]
+
+
+class SlicePlot(Widget):
+    """The plotext plot of one :class:`SliceFigures`; rebuilt when the figures or the size change."""
+
+    COMPONENT_CLASSES: ClassVar[set[str]] = {"sliceplot--cost", "sliceplot--tangent", "sliceplot--point"}
+
+    DEFAULT_CSS = """
+    SlicePlot {
+        width: 1fr;
+        height: 1fr;
+    }
+    SlicePlot > .sliceplot--cost { color: $primary; text-style: bold; }
+    SlicePlot > .sliceplot--tangent { color: $warning; }
+    SlicePlot > .sliceplot--point { color: $error; text-style: bold; }
+    """
+
+    def __init__(self, *, name: str | None = None, id: str | None = None, classes: str | None = None) -> None:
+        super().__init__(name=name, id=id, classes=classes)
+        self.figures: SliceFigures | None = None
+        self.builds = 0
+        self._key: tuple[Any, ...] | None = None
+        self._strips: list[Strip] = []
+
+    def show(self, figures: SliceFigures | None) -> None:
+        self.figures = figures
+        self._key = None
+        self.refresh()
+
+    def notify_style_update(self) -> None:
+        super().notify_style_update()
+        self._key = None
+
+    def plot_lines(self) -> list[str]:
+        """The plot as plain text lines, as last drawn."""
+        return [strip.text for strip in self._strips]
+
+    def render_line(self, y: int) -> Strip:
+        width, height = self.content_size.width, self.content_size.height
+        key = (width, height)
+        if self._key != key:
+            base = self.rich_style
+            if self.figures is None or width < 16 or height < 5:
+                self._strips = [Strip.blank(width, base)] * height
+            else:
+                self._strips = self._build(self.figures.result, width, height, base)
+                self._strips += [Strip.blank(width, base)] * (height - len(self._strips))
+            self._key = key
+        return self._strips[y] if y < len(self._strips) else Strip.blank(width)
+
+    def _build(self, result: CostSlice, width: int, height: int, base: Style) -> list[Strip]:
+        text = slice_plot_text(result, width, height)
+        self.builds += 1
+        styles = {
+            COST_MARK: base + self.get_component_rich_style("sliceplot--cost"),
+            TANGENT_MARK: base + self.get_component_rich_style("sliceplot--tangent"),
+            NOW_MARK: base + self.get_component_rich_style("sliceplot--point"),
+            STEP_MARK: base + self.get_component_rich_style("sliceplot--point"),
+        }
+        strips = []
+        for line in text.splitlines()[:height]:
+            segments = [Segment(part, styles.get(part[0], base)) for part in _canvas_runs(line)]
+            strips.append(Strip(segments).adjust_cell_length(width, base))
+        return strips
+
+
+#: Runs of one mark.
+_MARKS = re.compile(r"\*+|\.+|O+|X+")
+
+
+def _canvas_runs(line: str) -> list[str]:
+    """``line`` cut into pieces, each mark run inside the plot's frame a piece of its own.
+
+    Only the canvas, between the frame's left and right edges, holds marks: the
+    tick labels outside it have digits and decimal points that are not marks.
+    """
+    left = min((i for i in (line.find("\u2524"), line.find("\u2502")) if i >= 0), default=-1)
+    right = line.rfind("\u2502")
+    if not 0 <= left < right:
+        return [line] if line else []
+    pieces = [line[: left + 1]]
+    inside = line[left + 1 : right]
+    at = 0
+    for run in _MARKS.finditer(inside):
+        if run.start() > at:
+            pieces.append(inside[at : run.start()])
+        pieces.append(run.group())
+        at = run.end()
+    if at < len(inside):
+        pieces.append(inside[at:])
+    pieces.append(line[right:])
+    return pieces
+
+
+class SlicePanel(Horizontal):
+    """The plot and the figures of the cost along the selected weight; the app feeds it."""
+
+    DEFAULT_CSS = """
+    SlicePanel #slice-figures {
+        width: 38;
+        height: 1fr;
+        padding: 0 0 0 1;
+    }
+    """
+
+    def __init__(self, *, name: str | None = None, id: str | None = None, classes: str | None = None) -> None:
+        super().__init__(name=name, id=id, classes=classes)
+        self._figures: SliceFigures | None = None
+
+    def compose(self) -> ComposeResult:
+        yield SlicePlot(id="slice-plot")
+        yield Static("", id="slice-figures")
+
+    def on_resize(self) -> None:
+        self._draw_figures()
+
+    def _draw_figures(self) -> None:
+        if self._figures is not None:
+            box = self.query_one("#slice-figures", Static)
+            lines = slice_lines(self._figures, box.content_size.width or 37)
+            box.update(Text("\n".join(lines), no_wrap=True, overflow="ellipsis"))
+
+    def show(self, figures: SliceFigures) -> None:
+        """Draw ``figures``."""
+        self.border_title = (f"cost along {figures.name} = {figures.result.value:.4g}  {COST_MARK} cost  "
+                             f"{TANGENT_MARK} tangent  {NOW_MARK} now  {STEP_MARK} one step")
+        self.query_one(SlicePlot).show(figures)
+        self._figures = figures
+        self._draw_figures()
+
+    def show_note(self, title: str, note: str) -> None:
+        """No plot: ``note`` says why (no weight selected, the layer's code raised, ...)."""
+        self.border_title = title
+        self._figures = None
+        self.query_one(SlicePlot).show(None)
+        self.query_one("#slice-figures", Static).update(Text(note))
+
+    @property
+    def figures_text(self) -> str:
+        """The figures as shown (for tests and the log)."""
+        return str(self.query_one("#slice-figures", Static).content)
