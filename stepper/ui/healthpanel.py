@@ -151,4 +151,5 @@ class HealthPanel(Static):
             lines = health_lines(self.figures, width)
         else:
             lines = textwrap.wrap(self.note, max(width, 40))
-        self.update(Text("\n".join(lines), no_wrap=True, overflow="ellipsis"))
+        # The panel has a fixed size (1fr): no layout pass (which would redraw the whole screen).
+        self.update(Text("\n".join(lines), no_wrap=True, overflow="ellipsis"), layout=False)

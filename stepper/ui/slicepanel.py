@@ -237,7 +237,8 @@ class SlicePanel(Horizontal):
         if self._figures is not None:
             box = self.query_one("#slice-figures", Static)
             lines = slice_lines(self._figures, box.content_size.width or 37)
-            box.update(Text("\n".join(lines), no_wrap=True, overflow="ellipsis"))
+            # The box has a fixed size: no layout pass (which would redraw the whole screen).
+            box.update(Text("\n".join(lines), no_wrap=True, overflow="ellipsis"), layout=False)
 
     def show(self, figures: SliceFigures) -> None:
         """Draw ``figures``."""
@@ -252,7 +253,7 @@ class SlicePanel(Horizontal):
         self.border_title = title
         self._figures = None
         self.query_one(SlicePlot).show(None)
-        self.query_one("#slice-figures", Static).update(Text(note))
+        self.query_one("#slice-figures", Static).update(Text(note), layout=False)
 
     @property
     def figures_text(self) -> str:
