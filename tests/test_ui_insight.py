@@ -77,8 +77,9 @@ async def answer(app: StepperApp, pilot: Pilot[Any], text: str) -> None:
 
 
 async def jump(app: StepperApp, pilot: Pilot[Any], name: str) -> None:
-    await pilot.press("j")
-    await answer(app, pilot, name)
+    """Put the table's cursor on weight ``name`` (what ``j`` does, without its dialog)."""
+    app.table.select(app.session.net.layout.index_of[name])
+    await pilot.pause()
 
 
 def errors(said: list[tuple[str, str]]) -> list[str]:
@@ -382,6 +383,22 @@ def test_the_fixed_gate_agrees_everywhere() -> None:
         assert session.check is not None
         assert f"{session.net.n_params} agree 0 doubtful 0 DISAGREE" in str(app.query_one(StatusLine).content)
         assert not errors(said)
+        # During a run the custom layer's code is not called from two threads: the slice
+        # waits for the run's next screen update, then shows the weights of that moment.
+        await pilot.press("n")
+        assert isinstance(app.screen, AskScreen)
+        app.screen.query_one("#answer").value = "1000000"  # type: ignore[attr-defined]
+        await pilot.press("enter")  # not press(): that waits for the job to end
+        while session.step_count < 3:
+            await asyncio.sleep(0.01)
+        app.action_toggle_slice()  # what t does, checked before the next screen update can come
+        panel = app.query_one(SlicePanel)
+        assert "follows at the running job's next screen update" in flat(panel.figures_text)
+        while "=" not in (panel.border_title or ""):
+            await asyncio.sleep(0.02)
+        assert shows(panel.figures_text, "rate x curv.")
+        await press(app, pilot, "x")
+        assert app.job is None and session.step_count >= 3
 
     drive(session, check, (100, 30))
 

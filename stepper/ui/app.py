@@ -542,11 +542,13 @@ class StepperApp(App[None]):
         snap = self.snapshot
         if self.why is None or snap is None:
             return
+        index = self.table.selected
         if self.job is not None and self.figures.custom and not self._worker_waiting:
             # A custom layer's code is not known to be safe on two threads at once: the
             # panel follows at the job's next screen update (or its end).
+            self._why_note(snap, index, "follows at the running job's next screen update (a custom layer's "
+                                        "code runs on one thread at a time)")
             return
-        index = self.table.selected
         self._shown_index = index
         try:
             if self.why == "slice":
@@ -556,18 +558,22 @@ class StepperApp(App[None]):
             else:
                 self.query_one(HealthPanel).show(self.figures.health(snap, self._input_checks))
         except StepperError as exc:  # the user's layer raised
-            name = "" if index is None else f" {snap.names[index]}"
-            panel: SlicePanel | FactorPanel | HealthPanel
-            if self.why == "slice":
-                panel, title = self.query_one(SlicePanel), f"cost along{name}"
-            elif self.why == "factors":
-                panel, title = self.query_one(FactorPanel), f"slope factors of{name}"
-            else:
-                panel, title = self.query_one(HealthPanel), "layer health"
-            panel.show_note(title, f"cannot be computed here: {exc.message}")
-            self._shown_slice = None
-            self._shown_samples = None
+            self._why_note(snap, index, f"cannot be computed here: {exc.message}")
             self._problem(exc.message)
+
+    def _why_note(self, snap: Snapshot, index: int | None, note: str) -> None:
+        """The shown "why" panel says ``note`` instead of figures."""
+        name = "" if index is None else f" {snap.names[index]}"
+        panel: SlicePanel | FactorPanel | HealthPanel
+        if self.why == "slice":
+            panel, title = self.query_one(SlicePanel), f"cost along{name}"
+        elif self.why == "factors":
+            panel, title = self.query_one(FactorPanel), f"slope factors of{name}"
+        else:
+            panel, title = self.query_one(HealthPanel), "layer health"
+        panel.show_note(title, note)
+        self._shown_slice = None
+        self._shown_samples = None
 
     def _show_slice(self, snap: Snapshot, index: int | None) -> None:
         panel = self.query_one(SlicePanel)
