@@ -418,20 +418,25 @@ class Session:
     def _set_values(self, idx: NDArray[np.int64], values: Array, name: str, journal: dict[str, Any]) -> None:
         before = {"theta_at": (idx, self.theta[idx].copy())}
         after = {"theta_at": (idx, values.copy())}
-        hist = self._history_change()
-        self._restore(after)
-        after_hist = self._history_append_current()
-        self._commit(_Change(name, {**before, "history": hist}, {**after, "history": after_hist}), journal)
+        self._manual_change(name, before, after, journal)
 
-    def _history_change(self) -> tuple[int, list[HistoryEntry]]:
-        """The history from its last entry on, for undo: (position, entries)."""
-        return (len(self.history), [])
+    def _manual_change(self, name: str, before: dict[str, Any], after: dict[str, Any],
+                       journal: dict[str, Any]) -> None:
+        """Apply ``after``, add the new cost to the history as a point of its own, and commit.
 
-    def _history_append_current(self) -> tuple[int, list[HistoryEntry]]:
-        """Record the current cost as a new history point (a manual change), for redo."""
+        If the new cost cannot be computed (a custom layer raising on the new
+        values), ``before`` is put back and the error passes on: nothing changed.
+        """
         start = len(self.history)
-        self.history.append(self._entry())
-        return (start, [self.history[-1]])
+        self._restore(after)
+        try:
+            entry = self._entry()
+        except BaseException:
+            self._restore(before)
+            raise
+        self.history.append(entry)
+        self._commit(_Change(name, {**before, "history": (start, [])}, {**after, "history": (start, [entry])}),
+                     journal)
 
     def set_value(self, index: int, value: float) -> None:
         """Set one parameter to a typed value."""
@@ -469,12 +474,8 @@ class Session:
         """All parameters back to their initial values; the rule's memory starts afresh."""
         before_cost = self.train_cost()
         before = self._snapshot(["theta", "rule_state"])
-        hist = self._history_change()
-        self.theta[...] = self.setup.theta0
-        self.rule_state = fresh_state(self.rule, self.net.n_params)
-        self._version += 1
-        after = {**self._snapshot(["theta", "rule_state"]), "history": self._history_append_current()}
-        self._commit(_Change("reset", {**before, "history": hist}, after), {"op": "reset"})
+        after = {"theta": self.setup.theta0.copy(), "rule_state": fresh_state(self.rule, self.net.n_params)}
+        self._manual_change("reset", before, after, {"op": "reset"})
         self.last_action = f"reset to initial values: cost {before_cost:.6g} -> {self.train_cost():.6g}"
 
     # -- stepping ------------------------------------------------------------------------------
