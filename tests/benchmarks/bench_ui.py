@@ -16,7 +16,9 @@ Measures, headless (Textual's run_test) on the same machine and model:
 
 BLAS threads matter on a small, busy machine: with OpenBLAS's default of one
 thread per core, tiny matrix products can wait for each other when the other
-core is taken. Run once as is and once with OPENBLAS_NUM_THREADS=1 to see it.
+core is taken. The ``stepper`` command therefore runs with one BLAS thread
+(stepper/cli.py), and so does this script unless OPENBLAS_NUM_THREADS is set:
+run it with OPENBLAS_NUM_THREADS=2 to see the difference.
 
 The model (invented for speed, no meaning): 20 inputs, 400 tanh units, 4
 linear outputs, mean squared error, 256 training samples: 10,004 weights.
@@ -24,8 +26,12 @@ linear outputs, mean squared error, 256 training samples: 10,004 weights.
 
 from __future__ import annotations
 
-import asyncio
 import os
+
+# As the stepper command does (stepper/cli.py): one BLAS thread unless the caller chose.
+os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
+
+import asyncio  # noqa: E402
 import shutil
 import statistics
 import subprocess
