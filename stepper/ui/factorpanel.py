@@ -13,11 +13,9 @@ from __future__ import annotations
 
 import textwrap
 
-from rich.text import Text
-from textual.widgets import Static
-
 from stepper.core.breakdown import Breakdown
 from stepper.ui.insight import FactorFigures
+from stepper.ui.panels import FiguresPanel
 
 #: Width of one number column.
 CELL = 13
@@ -74,34 +72,11 @@ def factor_lines(f: FactorFigures, width: int) -> list[str]:
     return lines
 
 
-class FactorPanel(Static):
+class FactorPanel(FiguresPanel[FactorFigures]):
     """The factors of the selected weight's slope; the app feeds it."""
 
-    def __init__(self, *, name: str | None = None, id: str | None = None, classes: str | None = None) -> None:
-        super().__init__("", name=name, id=id, classes=classes)
-        self.figures: FactorFigures | None = None
-        self.note = ""
+    def figures_title(self, figures: FactorFigures) -> str:
+        return f"slope factors of {figures.name}"
 
-    def show(self, figures: FactorFigures) -> None:
-        self.figures = figures
-        self.border_title = f"slope factors of {figures.name}"
-        self._draw()
-
-    def show_note(self, title: str, note: str) -> None:
-        """No factors: ``note`` says why (a custom layer's parameter, no weight selected, ...)."""
-        self.figures = None
-        self.note = note
-        self.border_title = title
-        self._draw()
-
-    def on_resize(self) -> None:
-        self._draw()
-
-    def _draw(self) -> None:
-        width = self.content_size.width or 78
-        if self.figures is not None:
-            lines = factor_lines(self.figures, width)
-        else:
-            lines = textwrap.wrap(self.note, max(width, 40))
-        # The panel has a fixed size (1fr): no layout pass (which would redraw the whole screen).
-        self.update(Text("\n".join(lines), no_wrap=True, overflow="ellipsis"), layout=False)
+    def figures_lines(self, figures: FactorFigures, width: int) -> list[str]:
+        return factor_lines(figures, width)

@@ -15,11 +15,9 @@ from __future__ import annotations
 import math
 import textwrap
 
-from rich.text import Text
-from textual.widgets import Static
-
 from stepper.core.health import RATIO_HIGH, RATIO_LOW, RATIO_TYPICAL, LayerHealth
 from stepper.ui.insight import HealthFigures
+from stepper.ui.panels import FiguresPanel
 
 #: The gauge spans 1e-6 to 1 in two cells per decade.
 GAUGE_FROM, GAUGE_DECADES, GAUGE_CELLS = -6, 6, 2
@@ -122,34 +120,11 @@ def _input_lines(f: HealthFigures) -> list[str]:
     return out
 
 
-class HealthPanel(Static):
+class HealthPanel(FiguresPanel[HealthFigures]):
     """Layer health; the app feeds it after every change of the weights or the rate."""
 
-    def __init__(self, *, name: str | None = None, id: str | None = None, classes: str | None = None) -> None:
-        super().__init__("", name=name, id=id, classes=classes)
-        self.figures: HealthFigures | None = None
-        self.note = ""
+    def figures_title(self, figures: HealthFigures) -> str:
+        return f"layer health at rate {figures.report.rate:g}"
 
-    def show(self, figures: HealthFigures) -> None:
-        self.figures = figures
-        self.border_title = f"layer health at rate {figures.report.rate:g}"
-        self._draw()
-
-    def show_note(self, title: str, note: str) -> None:
-        """No figures: ``note`` says why."""
-        self.figures = None
-        self.note = note
-        self.border_title = title
-        self._draw()
-
-    def on_resize(self) -> None:
-        self._draw()
-
-    def _draw(self) -> None:
-        width = self.content_size.width or 78
-        if self.figures is not None:
-            lines = health_lines(self.figures, width)
-        else:
-            lines = textwrap.wrap(self.note, max(width, 40))
-        # The panel has a fixed size (1fr): no layout pass (which would redraw the whole screen).
-        self.update(Text("\n".join(lines), no_wrap=True, overflow="ellipsis"), layout=False)
+    def figures_lines(self, figures: HealthFigures, width: int) -> list[str]:
+        return health_lines(figures, width)

@@ -1,9 +1,10 @@
-"""Small display widgets: the status line, the rate preview and the job bar."""
+"""Small display widgets: the status line, the rate preview, the job bar and a base for text panels."""
 
 from __future__ import annotations
 
 import math
-from typing import Sequence
+import textwrap
+from typing import Generic, Sequence, TypeVar
 
 from rich.text import Text
 from textual.app import ComposeResult
@@ -11,6 +12,8 @@ from textual.containers import Horizontal
 from textual.widgets import Label, ProgressBar, Static
 
 from stepper.ui.snapshot import Snapshot
+
+F = TypeVar("F")
 
 
 def cost_text(value: float | None) -> str:
@@ -122,3 +125,48 @@ class JobBar(Horizontal):
 
     def stop(self) -> None:
         self.remove_class("-running")
+
+
+class FiguresPanel(Static, Generic[F]):
+    """A fixed-size panel of text lines drawn from figures of type ``F``, or a note saying why there are none.
+
+    Subclasses give the border title (:meth:`figures_title`) and the lines for a
+    content width (:meth:`figures_lines`); the app feeds the panel.
+    """
+
+    def __init__(self, *, name: str | None = None, id: str | None = None, classes: str | None = None) -> None:
+        super().__init__("", name=name, id=id, classes=classes)
+        self.figures: F | None = None
+        self.note = ""
+
+    def figures_title(self, figures: F) -> str:
+        """The border title while ``figures`` are shown."""
+        raise NotImplementedError
+
+    def figures_lines(self, figures: F, width: int) -> list[str]:
+        """The text of ``figures`` for a content ``width``, one string per line."""
+        raise NotImplementedError
+
+    def show(self, figures: F) -> None:
+        self.figures = figures
+        self.border_title = self.figures_title(figures)
+        self._draw()
+
+    def show_note(self, title: str, note: str) -> None:
+        """No figures: ``note`` says why (no weight selected, a custom layer's parameter, ...)."""
+        self.figures = None
+        self.note = note
+        self.border_title = title
+        self._draw()
+
+    def on_resize(self) -> None:
+        self._draw()
+
+    def _draw(self) -> None:
+        width = self.content_size.width or 78
+        if self.figures is not None:
+            lines = self.figures_lines(self.figures, width)
+        else:
+            lines = textwrap.wrap(self.note, max(width, 40))
+        # The panel has a fixed size (1fr): no layout pass (which would redraw the whole screen).
+        self.update(Text("\n".join(lines), no_wrap=True, overflow="ellipsis"), layout=False)
