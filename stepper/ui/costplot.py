@@ -1,10 +1,9 @@
 """The cost plot: training and validation cost per step, drawn by plotext inside a widget.
 
-plotext draws into one module-wide figure and, left alone, sizes it from the
-terminal it finds on stdout. Here the figure is cleared and sized to the
-widget's content area on every build, with plotext's own terminal limits off,
-and builds happen only on the app's thread (in ``render``). A built plot is
-kept until the data, the size or the scale change, so repaints cost nothing.
+plotext draws into one module-wide figure, cleared and sized to the widget's
+content area on every build (see :mod:`stepper.ui.plotwidget`); builds happen
+only on the app's thread (in ``render_line``). A built plot is kept until the
+data, the size or the scale change, so repaints cost nothing.
 
 Training cost is drawn with ``*`` and validation cost with ``o``, so the two
 read apart without colour (the marks get colours from the stylesheet, which
@@ -19,14 +18,13 @@ from dataclasses import dataclass
 from typing import Any, ClassVar
 
 import numpy as np
-import plotext  # type: ignore[import-untyped]
 from numpy.typing import NDArray
 from rich.segment import Segment
 from rich.style import Style
 from textual.reactive import reactive
 from textual.strip import Strip
-from textual.widget import Widget
 
+from stepper.ui.plotwidget import PlotWidget, plotext_figure
 from stepper.ui.snapshot import Snapshot
 
 Array = NDArray[np.float64]
@@ -82,12 +80,7 @@ def build_plot(curves: Curves, width: int, height: int, log: bool) -> str:
     ``log`` asks for a logarithmic y axis; it is used only where
     :func:`log_possible` allows it.
     """
-    fig: Any = plotext.figure
-    plotext.terminal.limit(False, False)
-    fig.clear()
-    fig.theme("colorless")
-    fig.plot_size(width, height)
-    fig.legend(False)
+    fig = plotext_figure(width, height)
     keep = thin(curves.steps.size, max(2, POINTS_PER_COLUMN * width))
     x = curves.steps[keep].astype(np.float64)
     series = [(curves.train[keep], TRAIN_MARK), (curves.val[keep], VAL_MARK)]
@@ -119,7 +112,7 @@ def build_plot(curves: Curves, width: int, height: int, log: bool) -> str:
     return str(fig.build().string(colorless=True))
 
 
-class CostPlot(Widget):
+class CostPlot(PlotWidget):
     """Training and validation cost per step; the app feeds it snapshots.
 
     A line-API widget: plotext builds plain text once per change of data, size or
@@ -137,21 +130,20 @@ class CostPlot(Widget):
     CostPlot > .costplot--val { color: $warning; }
     """
 
+    MIN_WIDTH = 12
+    MIN_HEIGHT = 4
+
     log_scale: reactive[bool] = reactive(False)
 
     def __init__(self, *, name: str | None = None, id: str | None = None, classes: str | None = None) -> None:
         super().__init__(name=name, id=id, classes=classes)
         self.curves: Curves | None = None
-        self.builds = 0
-        self._key: tuple[Any, ...] | None = None
-        self._strips: list[Strip] = []
 
     def show(self, snap: Snapshot) -> None:
         """Plot the cost history of ``snap``."""
         self.curves = Curves(snap.steps, snap.train, snap.val, snap.step_count)
-        self._key = None
         self._set_title()
-        self.refresh()
+        self.replot()
 
     @property
     def is_log(self) -> bool:
@@ -159,35 +151,18 @@ class CostPlot(Widget):
         return self.log_scale and self.curves is not None and log_possible(self.curves)
 
     def watch_log_scale(self, value: bool) -> None:
-        self._key = None
         self._set_title()
-        self.refresh()
+        self.replot()
 
-    def notify_style_update(self) -> None:
-        super().notify_style_update()
-        self._key = None
+    def has_data(self) -> bool:
+        return self.curves is not None
 
-    def plot_lines(self) -> list[str]:
-        """The plot as plain text lines, as last drawn."""
-        return [strip.text for strip in self._strips]
+    def key_extras(self) -> tuple[Any, ...]:
+        return (self.log_scale,)
 
-    def render_line(self, y: int) -> Strip:
-        width, height = self.content_size.width, self.content_size.height
-        key = (width, height, self.log_scale)
-        if self._key != key:
-            base = self.rich_style
-            if self.curves is None or width < 12 or height < 4:
-                self._strips = [Strip.blank(width, base)] * height
-            else:
-                self._strips = self._build(width, height, base)
-                self._strips += [Strip.blank(width, base)] * (height - len(self._strips))
-            self._key = key
-        return self._strips[y] if y < len(self._strips) else Strip.blank(width)
-
-    def _build(self, width: int, height: int, base: Style) -> list[Strip]:
+    def build_strips(self, width: int, height: int, base: Style) -> list[Strip]:
         assert self.curves is not None
         text = build_plot(self.curves, width, height, self.log_scale)
-        self.builds += 1
         marks = {
             TRAIN_MARK: base + self.get_component_rich_style("costplot--train"),
             VAL_MARK: base + self.get_component_rich_style("costplot--val"),

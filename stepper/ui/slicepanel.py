@@ -16,21 +16,20 @@ from __future__ import annotations
 import math
 import re
 import textwrap
-from typing import Any, ClassVar
+from typing import ClassVar
 
 import numpy as np
-import plotext  # type: ignore[import-untyped]
 from rich.segment import Segment
 from rich.style import Style
 from rich.text import Text
 from textual.app import ComposeResult
 from textual.containers import Horizontal
 from textual.strip import Strip
-from textual.widget import Widget
 from textual.widgets import Static
 
 from stepper.core.slice import CostSlice
 from stepper.ui.insight import SliceFigures
+from stepper.ui.plotwidget import PlotWidget, plotext_figure
 
 COST_MARK = "*"
 TANGENT_MARK = "."
@@ -56,12 +55,7 @@ def slice_plot_text(result: CostSlice, width: int, height: int) -> str:
     The tangent is drawn only where it stays inside the cost curve's range, so a
     steep tangent does not flatten the curve.
     """
-    fig: Any = plotext.figure
-    plotext.terminal.limit(False, False)
-    fig.clear()
-    fig.theme("colorless")
-    fig.plot_size(width, height)
-    fig.legend(False)
+    fig = plotext_figure(width, height)
     costs = result.costs
     finite = np.isfinite(costs)
     lo = float(np.min(costs[finite])) if finite.any() else 0.0
@@ -119,7 +113,7 @@ def slice_lines(figures: SliceFigures, width: int = 37) -> list[str]:
     return [piece for line in lines for piece in textwrap.wrap(line, width, subsequent_indent="  ")]
 
 
-class SlicePlot(Widget):
+class SlicePlot(PlotWidget):
     """The plotext plot of one :class:`SliceFigures`; rebuilt when the figures or the size change."""
 
     COMPONENT_CLASSES: ClassVar[set[str]] = {"sliceplot--cost", "sliceplot--tangent", "sliceplot--point"}
@@ -134,42 +128,23 @@ class SlicePlot(Widget):
     SlicePlot > .sliceplot--point { color: $error; text-style: bold; }
     """
 
+    MIN_WIDTH = 16
+    MIN_HEIGHT = 5
+
     def __init__(self, *, name: str | None = None, id: str | None = None, classes: str | None = None) -> None:
         super().__init__(name=name, id=id, classes=classes)
         self.figures: SliceFigures | None = None
-        self.builds = 0
-        self._key: tuple[Any, ...] | None = None
-        self._strips: list[Strip] = []
 
     def show(self, figures: SliceFigures | None) -> None:
         self.figures = figures
-        self._key = None
-        self.refresh()
+        self.replot()
 
-    def notify_style_update(self) -> None:
-        super().notify_style_update()
-        self._key = None
+    def has_data(self) -> bool:
+        return self.figures is not None
 
-    def plot_lines(self) -> list[str]:
-        """The plot as plain text lines, as last drawn."""
-        return [strip.text for strip in self._strips]
-
-    def render_line(self, y: int) -> Strip:
-        width, height = self.content_size.width, self.content_size.height
-        key = (width, height)
-        if self._key != key:
-            base = self.rich_style
-            if self.figures is None or width < 16 or height < 5:
-                self._strips = [Strip.blank(width, base)] * height
-            else:
-                self._strips = self._build(self.figures.result, width, height, base)
-                self._strips += [Strip.blank(width, base)] * (height - len(self._strips))
-            self._key = key
-        return self._strips[y] if y < len(self._strips) else Strip.blank(width)
-
-    def _build(self, result: CostSlice, width: int, height: int, base: Style) -> list[Strip]:
-        text = slice_plot_text(result, width, height)
-        self.builds += 1
+    def build_strips(self, width: int, height: int, base: Style) -> list[Strip]:
+        assert self.figures is not None
+        text = slice_plot_text(self.figures.result, width, height)
         styles = {
             COST_MARK: base + self.get_component_rich_style("sliceplot--cost"),
             TANGENT_MARK: base + self.get_component_rich_style("sliceplot--tangent"),
