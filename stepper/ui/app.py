@@ -20,7 +20,7 @@ import math
 import time
 from contextlib import contextmanager
 from pathlib import Path
-from typing import Any, Callable, ClassVar, Iterator
+from typing import Any, Callable, ClassVar, Generator, Iterator
 
 from textual import on, work
 from textual.app import App, ComposeResult
@@ -681,30 +681,24 @@ class StepperApp(App[None]):
 
     @work(thread=True, exclusive=True, group="session", exit_on_error=False)
     def _steps_worker(self, n: int) -> None:
-        worker = get_current_worker()
-        job = self.session.iter_steps(n)
-        error: StepperError | None = None
-        cancelled = False
-        last = time.monotonic()
-        try:
-            for done, total in job:
-                if worker.is_cancelled:
-                    cancelled = True
-                    break
-                now = time.monotonic()
-                if now - last >= UPDATE_EVERY:
-                    last = now
-                    self._from_worker(self._job_progress, done, total, True)
-        except StepperError as exc:
-            error = exc
-        finally:
-            job.close()
-        self._from_worker(self._job_done, "steps", error, cancelled)
+        self._run_job("steps", self.session.iter_steps(n), redraw=True)
 
     @work(thread=True, exclusive=True, group="session", exit_on_error=False)
     def _check_worker(self) -> None:
+        self._run_job("numeric slopes", self.session.iter_refresh_check(), redraw=False,
+                      then=self._check_input_slopes)
+
+    def _run_job(self, name: str, job: Generator[tuple[int, int], None, object], redraw: bool,
+                 then: Callable[[Worker[None]], bool] | None = None) -> None:
+        """Drive the session's ``job`` in the current worker thread, then ``then``, and report the end.
+
+        ``job`` yields ``(done, total)``; the worker's cancellation is checked
+        before each item, progress goes to the screen at most every
+        UPDATE_EVERY seconds (with the table and plot too when ``redraw``).
+        ``then`` runs after a job that was not cancelled and returns whether it
+        was cancelled itself. A StepperError ends the job and is reported.
+        """
         worker = get_current_worker()
-        job = self.session.iter_refresh_check()
         error: StepperError | None = None
         cancelled = False
         last = time.monotonic()
@@ -716,20 +710,25 @@ class StepperApp(App[None]):
                 now = time.monotonic()
                 if now - last >= UPDATE_EVERY:
                     last = now
-                    self._from_worker(self._job_progress, done, total, False)
-            if not cancelled and self.figures.custom:
-                # As `stepper check` does: the custom layers' dX against numeric input slopes.
-                version = self.session.version
-                checks = self.figures.input_slopes(self.session.theta.copy(), lambda: worker.is_cancelled)
-                if checks is None:
-                    cancelled = True
-                else:
-                    self._from_worker(self._input_checks_done, InputChecks(version, checks))
+                    self._from_worker(self._job_progress, done, total, redraw)
+            if not cancelled and then is not None:
+                cancelled = then(worker)
         except StepperError as exc:
             error = exc
         finally:
             job.close()
-        self._from_worker(self._job_done, "numeric slopes", error, cancelled)
+        self._from_worker(self._job_done, name, error, cancelled)
+
+    def _check_input_slopes(self, worker: Worker[None]) -> bool:
+        """As `stepper check` does: the custom layers' dX against numeric input slopes; True if cancelled."""
+        if not self.figures.custom:
+            return False
+        version = self.session.version
+        checks = self.figures.input_slopes(self.session.theta.copy(), lambda: worker.is_cancelled)
+        if checks is None:
+            return True
+        self._from_worker(self._input_checks_done, InputChecks(version, checks))
+        return False
 
     def _input_checks_done(self, checks: InputChecks) -> None:
         self._input_checks = checks
