@@ -15,6 +15,7 @@ from stepper.commands.slice import weight_index, weights_and_rate
 from stepper.core.breakdown import Breakdown, slope_breakdown
 from stepper.errors import UsageError
 from stepper.formats.model_file import Setup
+from stepper.report import at_z_reason, factor_names, weight_place
 
 
 def add_parser(subs: Any) -> None:
@@ -60,31 +61,12 @@ def handle(args: argparse.Namespace) -> int:
 
 def describe(setup: Setup, b: Breakdown) -> str:
     """``weight from input 2 (weekday) to unit 3 of layer 1 (dense 4->6 tanh)``."""
-    layer = setup.network.layers[b.layer]
-    if b.source is None:
-        what = f"bias of unit {b.unit}"
-    elif b.layer == 0:
-        what = f"weight from input {b.source} ({setup.data.input_names[b.source]}) to unit {b.unit}"
-    else:
-        what = f"weight from unit {b.source} of layer {b.layer} to unit {b.unit}"
-    return f"{what} of layer {b.layer + 1} ({layer.label})"
-
-
-def _factor_names(setup: Setup, b: Breakdown) -> tuple[str, str, str]:
-    error = f"dC/dZ[{b.unit}]" if b.through_z else f"dC/dA[{b.unit}]"
-    slope = "1 (at Z)" if b.through_z else f"{b.activation}'(Z[{b.unit}])"
-    if b.source is None:
-        source = "1 (bias)"
-    elif b.layer == 0:
-        source = f"input {b.source}"
-    else:
-        source = f"A{b.layer}[{b.source}]"
-    return error, slope, source
+    return weight_place(setup.network, setup.data.input_names, b)
 
 
 def report(setup: Setup, name: str, b: Breakdown, value: float) -> str:
     """The text form: the factors averaged, for one sample, their sum against the slope, and flags."""
-    e_name, f_name, a_name = _factor_names(setup, b)
+    e_name, f_name, a_name = factor_names(b)
     n = b.n_samples
     mean = b.means()
     one = b.at(b.sample)
@@ -107,10 +89,8 @@ def report(setup: Setup, name: str, b: Breakdown, value: float) -> str:
         f"analytic slope (table)    {b.analytic: .12e}",
         "",
     ]
-    if b.through_z:
-        last = b.layer == len(setup.network.layers) - 1
-        reason = ("the output activation is computed together with its loss, from Z"
-                  if last and setup.network.fused is not None else f"{b.activation} couples its units")
+    reason = at_z_reason(setup.network, b)
+    if reason is not None:
         lines.append(f"The error signal is taken at the unit's input Z and the activation factor is 1: {reason}.")
     else:
         lines.append(f"The error signal is the cost's slope w.r.t. unit {b.unit}'s output (it carries the 1/n "

@@ -13,7 +13,7 @@ from __future__ import annotations
 
 import textwrap
 
-from stepper.core.breakdown import Breakdown
+from stepper.report import factor_names
 from stepper.ui.insight import FactorFigures
 from stepper.ui.panels import FiguresPanel
 
@@ -24,19 +24,6 @@ LABEL = 20
 #: Up to this relative error the sum of the products "matches" the table's slope
 #: (the same sum taken in another order differs by rounding only; common practice).
 MATCH = 1e-9
-
-
-def factor_names(b: Breakdown) -> tuple[str, str, str]:
-    """Column titles: the error signal, the activation factor and the input factor."""
-    error = f"dC/dZ[{b.unit}]" if b.through_z else f"dC/dA[{b.unit}]"
-    slope = "1 (at Z)" if b.through_z else f"{b.activation}'(Z)"
-    if b.source is None:
-        source = "1 (bias)"
-    elif b.layer == 0:
-        source = f"input {b.source}"
-    else:
-        source = f"A{b.layer}[{b.source}]"
-    return error, slope, source
 
 
 def _row(label: str, values: tuple[float, float, float, float]) -> str:
@@ -51,7 +38,7 @@ def factor_lines(f: FactorFigures, width: int) -> list[str]:
     lines = textwrap.wrap(f"{f.name}: {f.what}", wrap, subsequent_indent="  ")
     lines += [
         "slope = sum over samples of error signal x activation slope x input",
-        " " * LABEL + "".join(h.rjust(CELL) for h in (*factor_names(b), "product")),
+        " " * LABEL + "".join(h.rjust(CELL) for h in (*factor_names(b, unit_in_slope=False), "product")),
         _row(f"mean of {n}", b.means()),
         _row(f"sample {b.sample}" + (" (most)" if b.sample == f.largest else ""), b.at(b.sample)),
     ]

@@ -26,6 +26,7 @@ from stepper.core.layers import Dense
 from stepper.core.network import Network
 from stepper.core.slice import CostSlice, cost_slice
 from stepper.formats.dataset import Dataset
+from stepper.report import at_z_reason, weight_place
 from stepper.ui.snapshot import Snapshot
 
 Array = NDArray[np.float64]
@@ -157,26 +158,11 @@ class Figures:
             mismatch = float(relative_error(np.array([b.total]), np.array([table]))[0])
             input_name = self.data.input_names[b.source] if b.layer == 0 and b.source is not None else None
             largest = int(np.argmax(np.abs(b.products)))
-            at_z = None
-            if b.through_z:
-                last = b.layer == len(self.net.layers) - 1
-                at_z = ("the output activation is computed together with its loss, from Z"
-                        if last and self.net.fused is not None else f"{b.activation} couples its units")
-            return FactorFigures(snap.names[index], self._where(b, input_name), b, input_name, table, mismatch,
-                                 largest, at_z)
+            return FactorFigures(snap.names[index], weight_place(self.net, self.data.input_names, b), b,
+                                 input_name, table, mismatch, largest, at_z_reason(self.net, b))
 
         figures: FactorFigures | str = self._cached("factors", (snap.version, index, sample), compute)
         return figures
-
-    def _where(self, b: Breakdown, input_name: str | None) -> str:
-        label = self.net.layers[b.layer].label
-        if b.source is None:
-            what = f"bias of unit {b.unit}"
-        elif b.layer == 0:
-            what = f"weight from input {b.source} ({input_name}) to unit {b.unit}"
-        else:
-            what = f"weight from unit {b.source} of layer {b.layer} to unit {b.unit}"
-        return f"{what} of layer {b.layer + 1} ({label})"
 
     def health(self, snap: Snapshot, inputs: InputChecks | None) -> HealthFigures:
         """Layer health at the snapshot's weights and rate, with the last input-slope checks."""
