@@ -1,16 +1,20 @@
-"""Shared fixtures: model files in a temporary folder, and small seeded networks."""
+"""Shared fixtures: model files in a temporary folder, small seeded networks, and the app run headless."""
 
 from __future__ import annotations
 
+import asyncio
 from pathlib import Path
-from typing import Callable, Sequence
+from typing import Any, Awaitable, Callable, Sequence
 
 import numpy as np
 import pytest
+from textual.pilot import Pilot
 
 from stepper.core.activations import ACTIVATIONS
 from stepper.core.layers import Dense
 from stepper.core.network import Network
+from stepper.session import Session
+from stepper.ui.app import StepperApp
 
 
 @pytest.fixture
@@ -54,3 +58,97 @@ def dense_net() -> Callable[..., tuple[Network, np.ndarray]]:
         return net, theta
 
     return build
+
+
+#: What a test runs inside the app: ``check(app, pilot, said)``, with ``said`` the notifications so far.
+AppCheck = Callable[[StepperApp, Pilot[Any], list[tuple[str, str]]], Awaitable[None]]
+
+
+@pytest.fixture
+def drive() -> Callable[..., StepperApp]:
+    """Run the real app headless around one check; returns the app once it has closed.
+
+    Usage: ``drive(session, check, size=(100, 30))``. Animations are off (the
+    environment variable is read once, at import), the first screen settles
+    (one pilot pause) before ``check(app, pilot, said)`` runs, and ``said``
+    collects every notification as ``(message, severity)``.
+    """
+
+    def run(session: Session, check: AppCheck, size: tuple[int, int] = (100, 30)) -> StepperApp:
+        app = StepperApp(session)
+        app.animation_level = "none"
+        said: list[tuple[str, str]] = []
+        original = app.notify
+
+        def notify(message: str, **kwargs: Any) -> None:
+            said.append((message, kwargs.get("severity", "information")))
+            original(message, **kwargs)
+
+        app.notify = notify  # type: ignore[method-assign]
+
+        async def main() -> None:
+            async with app.run_test(size=size) as pilot:
+                await pilot.pause()
+                await check(app, pilot, said)
+
+        asyncio.run(main())
+        return app
+
+    return run
+
+
+def _two_input_csv() -> str:
+    """Two inputs ``a``, ``b`` and a target ``y = sin(a) + 0.5 b`` (rounded), 30 seeded rows; invented for tests."""
+    rng = np.random.default_rng(9)
+    rows = ["a,b,y"] + [f"{a:.3f},{b:.3f},{np.sin(a) + 0.5 * b:.3f}" for a, b in rng.normal(size=(30, 2))]
+    return "\n".join(rows) + "\n"
+
+
+#: A model around one custom layer: tanh (2 units), the custom layer (3 units), identity (1 unit), on
+#: ``_two_input_csv``; ``{file}`` and ``{cls}`` name the layer, ``{extra}`` adds lines to its table.
+CUSTOM_MODEL = '''\
+loss = "mean_squared_error"
+
+[data]
+file = "data.csv"
+inputs = ["a", "b"]
+targets = ["y"]
+
+[init]
+scheme = "glorot_uniform"
+seed = 2
+
+[[layers]]
+units = 2
+activation = "tanh"
+
+[[layers]]
+type = "custom"
+file = "{file}"
+class = "{cls}"
+units = 3
+{extra}
+
+[[layers]]
+units = 1
+activation = "identity"
+'''
+
+
+@pytest.fixture
+def custom_model(tmp_path: Path) -> Callable[..., Path]:
+    """Write data.csv, a custom layer's source and model.toml around it into ``tmp_path``; returns the model.
+
+    Usage: ``custom_model(source, file, cls, extra="")``: ``source`` is the layer's
+    Python text, written to ``file``; ``cls`` is its class; ``extra`` adds lines
+    to the layer's table (``options = {...}``). Calling it again rewrites the files.
+    """
+
+    def write(source: str, file: str, cls: str, extra: str = "") -> Path:
+        (tmp_path / file).write_text(source, encoding="utf-8")
+        (tmp_path / "data.csv").write_text(_two_input_csv(), encoding="utf-8")
+        model = tmp_path / "model.toml"
+        model.write_text(CUSTOM_MODEL.format(file=file, cls=cls, extra=extra), encoding="utf-8")
+        return model
+
+    return write

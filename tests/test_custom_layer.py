@@ -43,43 +43,8 @@ class Mix:
         return slopes, dX
 '''
 
-MODEL = '''\
-loss = "mean_squared_error"
-
-[data]
-file = "data.csv"
-inputs = ["a", "b"]
-targets = ["y"]
-
-[init]
-scheme = "glorot_uniform"
-seed = 2
-
-[[layers]]
-units = 2
-activation = "tanh"
-
-[[layers]]
-type = "custom"
-file = "mix.py"
-class = "Mix"
-units = 3
-{extra}
-
-[[layers]]
-units = 1
-activation = "identity"
-'''
-
-
-def csv_text() -> str:
-    rng = np.random.default_rng(9)
-    rows = ["a,b,y"] + [f"{a:.3f},{b:.3f},{np.sin(a) + 0.5 * b:.3f}" for a, b in rng.normal(size=(30, 2))]
-    return "\n".join(rows) + "\n"
-
-
 @pytest.fixture
-def model_with(tmp_path: Path):
+def model_with(custom_model):
     """Write model.toml, data.csv and mix.py (the base layer with one replacement) into tmp_path."""
 
     def write(old: str = "", new: str = "", extra: str = "") -> Path:
@@ -87,11 +52,7 @@ def model_with(tmp_path: Path):
         if old:
             assert old in source
             source = source.replace(old, new)
-        (tmp_path / "mix.py").write_text(source, encoding="utf-8")
-        (tmp_path / "data.csv").write_text(csv_text(), encoding="utf-8")
-        model = tmp_path / "model.toml"
-        model.write_text(MODEL.format(extra=extra), encoding="utf-8")
-        return model
+        return custom_model(source, "mix.py", "Mix", extra)
 
     return write
 

@@ -11,9 +11,8 @@ what the user reads is known to be the slope and curvature of the cost.
 from __future__ import annotations
 
 import asyncio
-import textwrap
 from pathlib import Path
-from typing import Any, Awaitable, Callable
+from typing import Any, Callable
 
 import numpy as np
 import pytest
@@ -37,30 +36,6 @@ from stepper.ui.slicepanel import SlicePanel, SlicePlot
 
 SCENARIOS = Path(__file__).resolve().parents[1] / "scenarios"
 SIZES = [(80, 24), (100, 30)]
-
-Check = Callable[[StepperApp, Pilot[Any], list[tuple[str, str]]], Awaitable[None]]
-
-
-def drive(session: Session, check: Check, size: tuple[int, int]) -> None:
-    """Run the app headless around ``check(app, pilot, said)``; ``said`` collects notifications."""
-    app = StepperApp(session)
-    app.animation_level = "none"
-    said: list[tuple[str, str]] = []
-    original = app.notify
-
-    def notify(message: str, **kwargs: Any) -> None:
-        said.append((message, kwargs.get("severity", "information")))
-        original(message, **kwargs)
-
-    app.notify = notify  # type: ignore[method-assign]
-
-    async def main() -> None:
-        async with app.run_test(size=size) as pilot:
-            await pilot.pause()
-            await check(app, pilot, said)
-
-    asyncio.run(main())
-
 
 async def press(app: StepperApp, pilot: Pilot[Any], *keys: str) -> None:
     for key in keys:
@@ -124,7 +99,7 @@ def cost_along(session: Session, index: int) -> Callable[[Any], Any]:
 
 
 @pytest.mark.parametrize("size", SIZES)
-def test_t_shows_the_cost_along_the_selected_weight(size: tuple[int, int]) -> None:
+def test_t_shows_the_cost_along_the_selected_weight(size: tuple[int, int], drive) -> None:
     session = Session(load_setup(default_model()))
     data = session.setup.data
 
@@ -169,7 +144,7 @@ def test_t_shows_the_cost_along_the_selected_weight(size: tuple[int, int]) -> No
     drive(session, check, size)
 
 
-def test_span_keys_widen_narrow_and_type_the_sweep() -> None:
+def test_span_keys_widen_narrow_and_type_the_sweep(drive) -> None:
     session = Session(load_setup(default_model()))
     data = session.setup.data
 
@@ -209,7 +184,7 @@ def test_span_keys_widen_narrow_and_type_the_sweep() -> None:
 
 
 @pytest.mark.parametrize("size", SIZES)
-def test_i_takes_the_selected_weights_slope_apart(size: tuple[int, int]) -> None:
+def test_i_takes_the_selected_weights_slope_apart(size: tuple[int, int], drive) -> None:
     session = Session(load_setup(default_model()))
     data = session.setup.data
     index = session.net.layout.index_of["L1.W[3,2]"]
@@ -244,7 +219,7 @@ def test_i_takes_the_selected_weights_slope_apart(size: tuple[int, int]) -> None
     drive(session, check, size)
 
 
-def test_sample_keys_move_through_the_samples_and_a_saturated_unit_is_flagged() -> None:
+def test_sample_keys_move_through_the_samples_and_a_saturated_unit_is_flagged(drive) -> None:
     session = Session(load_setup(default_model()))
     data = session.setup.data
     index = session.net.layout.index_of["L1.W[3,2]"]
@@ -289,7 +264,7 @@ def test_sample_keys_move_through_the_samples_and_a_saturated_unit_is_flagged() 
     drive(session, check, (80, 24))
 
 
-def test_i_on_a_custom_layers_parameter_says_why_there_are_no_factors() -> None:
+def test_i_on_a_custom_layers_parameter_says_why_there_are_no_factors(drive) -> None:
     session = Session(load_setup(SCENARIOS / "hive-gate-fixed" / "model.toml"))
 
     async def check(app: StepperApp, pilot: Pilot[Any], said: list[tuple[str, str]]) -> None:
@@ -307,7 +282,7 @@ def test_i_on_a_custom_layers_parameter_says_why_there_are_no_factors() -> None:
 
 
 @pytest.mark.parametrize("size", SIZES)
-def test_h_shows_layer_health_and_follows_steps_and_the_rate(size: tuple[int, int]) -> None:
+def test_h_shows_layer_health_and_follows_steps_and_the_rate(size: tuple[int, int], drive) -> None:
     session = Session(load_setup(default_model()))
     data = session.setup.data
 
@@ -347,7 +322,7 @@ def test_h_shows_layer_health_and_follows_steps_and_the_rate(size: tuple[int, in
 # -- custom layers in the app ----------------------------------------------------------------
 
 
-def test_the_buggy_gate_shows_its_three_wrong_slopes_after_c() -> None:
+def test_the_buggy_gate_shows_its_three_wrong_slopes_after_c(drive) -> None:
     session = Session(load_setup(SCENARIOS / "hive-gate-buggy" / "model.toml"))
     data = session.setup.data
     # The true slopes, by SciPy's forward differences of the cost (scipy.optimize.approx_fprime).
@@ -375,7 +350,7 @@ def test_the_buggy_gate_shows_its_three_wrong_slopes_after_c() -> None:
     drive(session, check, (80, 24))
 
 
-def test_the_fixed_gate_agrees_everywhere() -> None:
+def test_the_fixed_gate_agrees_everywhere(drive) -> None:
     session = Session(load_setup(SCENARIOS / "hive-gate-fixed" / "model.toml"))
 
     async def check(app: StepperApp, pilot: Pilot[Any], said: list[tuple[str, str]]) -> None:
@@ -437,42 +412,23 @@ class Fragile:
 '''
 
 
-def fragile_model(folder: Path, low: float, high: float, check_in: str, dx_factor: float = 1.0) -> Path:
-    rng = np.random.default_rng(9)
-    rows = ["a,b,y"] + [f"{a:.3f},{b:.3f},{np.sin(a) + 0.5 * b:.3f}" for a, b in rng.normal(size=(30, 2))]
-    (folder / "data.csv").write_text("\n".join(rows) + "\n", encoding="utf-8")
-    (folder / "fragile.py").write_text(FRAGILE, encoding="utf-8")
-    model = folder / "model.toml"
-    model.write_text(textwrap.dedent(f"""\
-        loss = "mean_squared_error"
-        [data]
-        file = "data.csv"
-        inputs = ["a", "b"]
-        targets = ["y"]
-        [init]
-        scheme = "glorot_uniform"
-        seed = 2
-        [[layers]]
-        units = 2
-        activation = "tanh"
-        [[layers]]
-        type = "custom"
-        file = "fragile.py"
-        class = "Fragile"
-        units = 3
-        options = {{ low = {low!r}, high = {high!r}, check_in = "{check_in}", dx_factor = {dx_factor!r} }}
-        [[layers]]
-        units = 1
-        activation = "identity"
-        """), encoding="utf-8")
-    return model
+@pytest.fixture
+def fragile_model(custom_model):
+    """Write the Fragile layer's model into tmp_path: ``fragile_model(low, high, check_in, dx_factor=1.0)``."""
+
+    def write(low: float, high: float, check_in: str, dx_factor: float = 1.0) -> Path:
+        options = (f'options = {{ low = {low!r}, high = {high!r}, check_in = "{check_in}", '
+                   f'dx_factor = {dx_factor!r} }}')
+        return custom_model(FRAGILE, "fragile.py", "Fragile", options)
+
+    return write
 
 
-def test_a_layer_raising_in_forward_during_a_step_is_a_message_and_changes_nothing(tmp_path: Path) -> None:
-    start = load_setup(fragile_model(tmp_path, -1e9, 1e9, "forward")).theta0
+def test_a_layer_raising_in_forward_during_a_step_is_a_message_and_changes_nothing(tmp_path: Path, fragile_model, drive) -> None:
+    start = load_setup(fragile_model(-1e9, 1e9, "forward")).theta0
     m00 = float(start[load_setup(tmp_path / "model.toml").network.layout.index_of["L2.M[0,0]"]])
     # Any step that moves M[0, 0] makes the layer's forward pass raise on the new weights.
-    session = Session(load_setup(fragile_model(tmp_path, m00 - 1e-12, m00 + 1e-12, "forward")))
+    session = Session(load_setup(fragile_model(m00 - 1e-12, m00 + 1e-12, "forward")))
     theta = session.theta.copy()
 
     async def check(app: StepperApp, pilot: Pilot[Any], said: list[tuple[str, str]]) -> None:
@@ -489,8 +445,8 @@ def test_a_layer_raising_in_forward_during_a_step_is_a_message_and_changes_nothi
     drive(session, check, (80, 24))
 
 
-def test_a_layer_raising_in_backward_shows_in_every_view_and_undo_recovers(tmp_path: Path) -> None:
-    session = Session(load_setup(fragile_model(tmp_path, -2.0, 2.0, "backward")))
+def test_a_layer_raising_in_backward_shows_in_every_view_and_undo_recovers(fragile_model, drive) -> None:
+    session = Session(load_setup(fragile_model(-2.0, 2.0, "backward")))
 
     async def check(app: StepperApp, pilot: Pilot[Any], said: list[tuple[str, str]]) -> None:
         await jump(app, pilot, "L2.M[0,0]")
@@ -522,8 +478,8 @@ def test_a_layer_raising_in_backward_shows_in_every_view_and_undo_recovers(tmp_p
     drive(session, check, (80, 24))
 
 
-def test_a_wrong_dx_shows_in_the_layers_before_and_in_the_health_panel(tmp_path: Path) -> None:
-    session = Session(load_setup(fragile_model(tmp_path, -1e9, 1e9, "neither", dx_factor=2.0)))
+def test_a_wrong_dx_shows_in_the_layers_before_and_in_the_health_panel(fragile_model, drive) -> None:
+    session = Session(load_setup(fragile_model(-1e9, 1e9, "neither", dx_factor=2.0)))
     data = session.setup.data
     # The true slopes, by SciPy's forward differences of the cost (scipy.optimize.approx_fprime).
     reference = approx_fprime(session.theta.copy(), lambda t: session.net.cost(t, data.X, data.Y), 1e-7)

@@ -12,7 +12,7 @@ from __future__ import annotations
 import asyncio
 import math
 from pathlib import Path
-from typing import Any, Awaitable, Callable
+from typing import Any
 
 import numpy as np
 import pytest
@@ -28,33 +28,9 @@ from stepper.ui.keys import KEYS
 from stepper.ui.panels import JobBar, RatePanel, StatusLine
 from stepper.ui.weights import WeightTable
 
-Check = Callable[[StepperApp, Pilot[Any], list[tuple[str, str]]], Awaitable[None]]
-
-
 @pytest.fixture
 def session() -> Session:
     return Session(load_setup(default_model()))
-
-
-def drive(session: Session, check: Check, size: tuple[int, int] = (100, 30)) -> StepperApp:
-    """Run the app headless around ``check(app, pilot, said)``; ``said`` collects notifications."""
-    app = StepperApp(session)
-    app.animation_level = "none"  # animations off (the environment variable is read once, at import)
-    said: list[tuple[str, str]] = []
-    original = app.notify
-
-    def notify(message: str, **kwargs: Any) -> None:
-        said.append((message, kwargs.get("severity", "information")))
-        original(message, **kwargs)
-
-    app.notify = notify  # type: ignore[method-assign]
-
-    async def main() -> None:
-        async with app.run_test(size=size) as pilot:
-            await check(app, pilot, said)
-
-    asyncio.run(main())
-    return app
 
 
 async def press(app: StepperApp, pilot: Pilot[Any], *keys: str) -> None:
@@ -91,7 +67,7 @@ def errors(said: list[tuple[str, str]]) -> list[str]:
 # -- descent ---------------------------------------------------------------------------------
 
 
-def test_s_takes_one_gradient_descent_step(session: Session) -> None:
+def test_s_takes_one_gradient_descent_step(session: Session, drive) -> None:
     setup = session.setup
     theta0 = setup.theta0.copy()
     X, Y = setup.data.X, setup.data.Y
@@ -109,7 +85,7 @@ def test_s_takes_one_gradient_descent_step(session: Session) -> None:
     drive(session, check)
 
 
-def test_n_runs_n_steps_in_a_worker_with_a_progress_bar(session: Session) -> None:
+def test_n_runs_n_steps_in_a_worker_with_a_progress_bar(session: Session, drive) -> None:
     async def check(app: StepperApp, pilot: Pilot[Any], said: list[tuple[str, str]]) -> None:
         await pilot.press("n")
         assert isinstance(app.screen, AskScreen)
@@ -126,7 +102,7 @@ def test_n_runs_n_steps_in_a_worker_with_a_progress_bar(session: Session) -> Non
     drive(session, check)
 
 
-def test_n_refuses_a_count_that_is_not_a_whole_number(session: Session) -> None:
+def test_n_refuses_a_count_that_is_not_a_whole_number(session: Session, drive) -> None:
     async def check(app: StepperApp, pilot: Pilot[Any], said: list[tuple[str, str]]) -> None:
         await pilot.press("n")
         await answer(app, pilot, "many")
@@ -139,7 +115,7 @@ def test_n_refuses_a_count_that_is_not_a_whole_number(session: Session) -> None:
     drive(session, check)
 
 
-def test_x_cancels_a_long_run_and_keeps_the_steps_done(session: Session) -> None:
+def test_x_cancels_a_long_run_and_keeps_the_steps_done(session: Session, drive) -> None:
     async def check(app: StepperApp, pilot: Pilot[Any], said: list[tuple[str, str]]) -> None:
         await pilot.press("n")
         assert isinstance(app.screen, AskScreen)
@@ -168,7 +144,7 @@ def test_x_cancels_a_long_run_and_keeps_the_steps_done(session: Session) -> None
     drive(session, check)
 
 
-def test_escape_also_cancels_and_says_when_nothing_runs(session: Session) -> None:
+def test_escape_also_cancels_and_says_when_nothing_runs(session: Session, drive) -> None:
     async def check(app: StepperApp, pilot: Pilot[Any], said: list[tuple[str, str]]) -> None:
         await press(app, pilot, "x")
         assert ("nothing is running", "information") in said
@@ -176,7 +152,7 @@ def test_escape_also_cancels_and_says_when_nothing_runs(session: Session) -> Non
     drive(session, check)
 
 
-def test_plus_equals_and_minus_double_and_halve_the_rate(session: Session) -> None:
+def test_plus_equals_and_minus_double_and_halve_the_rate(session: Session, drive) -> None:
     async def check(app: StepperApp, pilot: Pilot[Any], said: list[tuple[str, str]]) -> None:
         await press(app, pilot, "plus")
         assert session.rate == pytest.approx(0.2)
@@ -189,7 +165,7 @@ def test_plus_equals_and_minus_double_and_halve_the_rate(session: Session) -> No
     drive(session, check)
 
 
-def test_r_types_a_rate_and_refuses_text(session: Session) -> None:
+def test_r_types_a_rate_and_refuses_text(session: Session, drive) -> None:
     async def check(app: StepperApp, pilot: Pilot[Any], said: list[tuple[str, str]]) -> None:
         await pilot.press("r")
         await answer(app, pilot, "0.025")
@@ -206,7 +182,7 @@ def test_r_types_a_rate_and_refuses_text(session: Session) -> None:
     drive(session, check)
 
 
-def test_u_chooses_the_update_rule(session: Session) -> None:
+def test_u_chooses_the_update_rule(session: Session, drive) -> None:
     async def check(app: StepperApp, pilot: Pilot[Any], said: list[tuple[str, str]]) -> None:
         await press(app, pilot, "u")
         assert isinstance(app.screen, ChoiceScreen)
@@ -221,7 +197,7 @@ def test_u_chooses_the_update_rule(session: Session) -> None:
     drive(session, check)
 
 
-def test_g_switches_the_slope_source(session: Session) -> None:
+def test_g_switches_the_slope_source(session: Session, drive) -> None:
     async def check(app: StepperApp, pilot: Pilot[Any], said: list[tuple[str, str]]) -> None:
         await press(app, pilot, "g")
         assert session.slope_source == "numeric"
@@ -234,7 +210,7 @@ def test_g_switches_the_slope_source(session: Session) -> None:
     drive(session, check)
 
 
-def test_m_sets_the_mini_batch_size(session: Session) -> None:
+def test_m_sets_the_mini_batch_size(session: Session, drive) -> None:
     async def check(app: StepperApp, pilot: Pilot[Any], said: list[tuple[str, str]]) -> None:
         await pilot.press("m")
         await answer(app, pilot, "8")
@@ -252,7 +228,7 @@ def test_m_sets_the_mini_batch_size(session: Session) -> None:
     drive(session, check)
 
 
-def test_v_shows_the_rate_preview_and_b_adopts_the_best(session: Session) -> None:
+def test_v_shows_the_rate_preview_and_b_adopts_the_best(session: Session, drive) -> None:
     async def check(app: StepperApp, pilot: Pilot[Any], said: list[tuple[str, str]]) -> None:
         panel = app.query_one(RatePanel)
         assert not panel.display
@@ -274,7 +250,7 @@ def test_v_shows_the_rate_preview_and_b_adopts_the_best(session: Session) -> Non
 # -- slopes ----------------------------------------------------------------------------------
 
 
-def test_c_computes_numeric_slopes_and_fills_the_table(session: Session) -> None:
+def test_c_computes_numeric_slopes_and_fills_the_table(session: Session, drive) -> None:
     async def check(app: StepperApp, pilot: Pilot[Any], said: list[tuple[str, str]]) -> None:
         assert "numeric slopes not computed" in status(app)
         assert row_text(app, 1).rstrip().endswith("-")
@@ -291,7 +267,7 @@ def test_c_computes_numeric_slopes_and_fills_the_table(session: Session) -> None
     drive(session, check)
 
 
-def test_a_recomputes_numeric_slopes_after_every_step(session: Session) -> None:
+def test_a_recomputes_numeric_slopes_after_every_step(session: Session, drive) -> None:
     async def check(app: StepperApp, pilot: Pilot[Any], said: list[tuple[str, str]]) -> None:
         await press(app, pilot, "a")
         assert session.refresh_numeric_after_step
@@ -309,7 +285,7 @@ def test_a_recomputes_numeric_slopes_after_every_step(session: Session) -> None:
 # -- weights ---------------------------------------------------------------------------------
 
 
-def test_f_freezes_and_unfreezes_the_selected_weight(session: Session) -> None:
+def test_f_freezes_and_unfreezes_the_selected_weight(session: Session, drive) -> None:
     async def check(app: StepperApp, pilot: Pilot[Any], said: list[tuple[str, str]]) -> None:
         await press(app, pilot, "down", "f")
         assert app.table.selected == 1
@@ -324,7 +300,7 @@ def test_f_freezes_and_unfreezes_the_selected_weight(session: Session) -> None:
     drive(session, check)
 
 
-def test_shift_f_freezes_the_whole_layer(session: Session) -> None:
+def test_shift_f_freezes_the_whole_layer(session: Session, drive) -> None:
     layer = session.net.layout.layer_index
 
     async def check(app: StepperApp, pilot: Pilot[Any], said: list[tuple[str, str]]) -> None:
@@ -336,7 +312,7 @@ def test_shift_f_freezes_the_whole_layer(session: Session) -> None:
     drive(session, check)
 
 
-def test_p_perturbs_the_selected_weight_and_shift_p_all(session: Session) -> None:
+def test_p_perturbs_the_selected_weight_and_shift_p_all(session: Session, drive) -> None:
     theta0 = session.theta.copy()
 
     async def check(app: StepperApp, pilot: Pilot[Any], said: list[tuple[str, str]]) -> None:
@@ -350,7 +326,7 @@ def test_p_perturbs_the_selected_weight_and_shift_p_all(session: Session) -> Non
     drive(session, check)
 
 
-def test_e_types_a_value_for_the_selected_weight(session: Session) -> None:
+def test_e_types_a_value_for_the_selected_weight(session: Session, drive) -> None:
     async def check(app: StepperApp, pilot: Pilot[Any], said: list[tuple[str, str]]) -> None:
         await press(app, pilot, "e")
         assert isinstance(app.screen, AskScreen)
@@ -366,7 +342,7 @@ def test_e_types_a_value_for_the_selected_weight(session: Session) -> None:
     drive(session, check)
 
 
-def test_shift_r_resets_and_z_undoes_and_shift_z_redoes(session: Session) -> None:
+def test_shift_r_resets_and_z_undoes_and_shift_z_redoes(session: Session, drive) -> None:
     theta0 = session.theta.copy()
 
     async def check(app: StepperApp, pilot: Pilot[Any], said: list[tuple[str, str]]) -> None:
@@ -388,7 +364,7 @@ def test_shift_r_resets_and_z_undoes_and_shift_z_redoes(session: Session) -> Non
     drive(session, check)
 
 
-def test_a_divergent_step_is_a_message_and_changes_nothing(session: Session) -> None:
+def test_a_divergent_step_is_a_message_and_changes_nothing(session: Session, drive) -> None:
     async def check(app: StepperApp, pilot: Pilot[Any], said: list[tuple[str, str]]) -> None:
         await pilot.press("r")
         await answer(app, pilot, "1e200")
@@ -409,7 +385,7 @@ def test_a_divergent_step_is_a_message_and_changes_nothing(session: Session) -> 
 # -- table -----------------------------------------------------------------------------------
 
 
-def test_cursor_keys_move_the_selection(session: Session) -> None:
+def test_cursor_keys_move_the_selection(session: Session, drive) -> None:
     n = session.net.n_params
 
     async def check(app: StepperApp, pilot: Pilot[Any], said: list[tuple[str, str]]) -> None:
@@ -431,7 +407,7 @@ def test_cursor_keys_move_the_selection(session: Session) -> None:
     drive(session, check)
 
 
-def test_o_orders_by_columns_and_shift_o_flips(session: Session) -> None:
+def test_o_orders_by_columns_and_shift_o_flips(session: Session, drive) -> None:
     async def check(app: StepperApp, pilot: Pilot[Any], said: list[tuple[str, str]]) -> None:
         table = app.table
         await press(app, pilot, "o")
@@ -452,7 +428,7 @@ def test_o_orders_by_columns_and_shift_o_flips(session: Session) -> None:
     drive(session, check)
 
 
-def test_brackets_filter_by_layer_and_slash_by_name(session: Session) -> None:
+def test_brackets_filter_by_layer_and_slash_by_name(session: Session, drive) -> None:
     layer = session.net.layout.layer_index
     n = session.net.n_params
 
@@ -479,7 +455,7 @@ def test_brackets_filter_by_layer_and_slash_by_name(session: Session) -> None:
     drive(session, check)
 
 
-def test_j_jumps_to_a_weight_by_name(session: Session) -> None:
+def test_j_jumps_to_a_weight_by_name(session: Session, drive) -> None:
     target = session.net.layout.index_of["L2.W[3,0]"]
 
     async def check(app: StepperApp, pilot: Pilot[Any], said: list[tuple[str, str]]) -> None:
@@ -496,7 +472,7 @@ def test_j_jumps_to_a_weight_by_name(session: Session) -> None:
     drive(session, check)
 
 
-def test_y_switches_the_plot_to_a_log_axis(session: Session) -> None:
+def test_y_switches_the_plot_to_a_log_axis(session: Session, drive) -> None:
     async def check(app: StepperApp, pilot: Pilot[Any], said: list[tuple[str, str]]) -> None:
         await press(app, pilot, "s", "s", "s")
         plot = app.plot
@@ -514,7 +490,7 @@ def test_y_switches_the_plot_to_a_log_axis(session: Session) -> None:
 # -- files -----------------------------------------------------------------------------------
 
 
-def test_w_saves_a_checkpoint_and_l_loads_it(session: Session, tmp_path: Path) -> None:
+def test_w_saves_a_checkpoint_and_l_loads_it(session: Session, tmp_path: Path, drive) -> None:
     target = tmp_path / "ck" / "saved.safetensors"
 
     async def check(app: StepperApp, pilot: Pilot[Any], said: list[tuple[str, str]]) -> None:
@@ -547,7 +523,7 @@ def test_w_saves_a_checkpoint_and_l_loads_it(session: Session, tmp_path: Path) -
     drive(session, check)
 
 
-def test_loading_a_checkpoint_of_another_model_is_a_message(session: Session, tmp_path: Path) -> None:
+def test_loading_a_checkpoint_of_another_model_is_a_message(session: Session, tmp_path: Path, drive) -> None:
     other = tmp_path / "other.safetensors"
     wrong = tmp_path / "wrong.safetensors"
     wrong.write_bytes(b"this is not a checkpoint")
@@ -567,7 +543,7 @@ def test_loading_a_checkpoint_of_another_model_is_a_message(session: Session, tm
 # -- app -------------------------------------------------------------------------------------
 
 
-def test_question_mark_lists_every_key(session: Session) -> None:
+def test_question_mark_lists_every_key(session: Session, drive) -> None:
     async def check(app: StepperApp, pilot: Pilot[Any], said: list[tuple[str, str]]) -> None:
         await press(app, pilot, "question_mark")
         assert isinstance(app.screen, HelpScreen)
@@ -581,7 +557,7 @@ def test_question_mark_lists_every_key(session: Session) -> None:
     drive(session, check)
 
 
-def test_main_keys_do_nothing_while_a_dialog_is_open(session: Session) -> None:
+def test_main_keys_do_nothing_while_a_dialog_is_open(session: Session, drive) -> None:
     async def check(app: StepperApp, pilot: Pilot[Any], said: list[tuple[str, str]]) -> None:
         await press(app, pilot, "question_mark", "s", "plus", "R")
         assert isinstance(app.screen, HelpScreen)
@@ -593,7 +569,7 @@ def test_main_keys_do_nothing_while_a_dialog_is_open(session: Session) -> None:
     drive(session, check)
 
 
-def test_q_quits_at_once_without_changes(session: Session) -> None:
+def test_q_quits_at_once_without_changes(session: Session, drive) -> None:
     async def check(app: StepperApp, pilot: Pilot[Any], said: list[tuple[str, str]]) -> None:
         await press(app, pilot, "q")
 
@@ -602,7 +578,7 @@ def test_q_quits_at_once_without_changes(session: Session) -> None:
     assert not app.is_running
 
 
-def test_q_with_unsaved_changes_asks_and_stays_on_other_keys(session: Session) -> None:
+def test_q_with_unsaved_changes_asks_and_stays_on_other_keys(session: Session, drive) -> None:
     async def check(app: StepperApp, pilot: Pilot[Any], said: list[tuple[str, str]]) -> None:
         await press(app, pilot, "s", "q")
         assert isinstance(app.screen, QuitScreen)
@@ -616,7 +592,7 @@ def test_q_with_unsaved_changes_asks_and_stays_on_other_keys(session: Session) -
     assert session.step_count == 1
 
 
-def test_q_then_w_saves_first_and_then_quits(session: Session, tmp_path: Path) -> None:
+def test_q_then_w_saves_first_and_then_quits(session: Session, tmp_path: Path, drive) -> None:
     target = tmp_path / "before-quit.safetensors"
 
     async def check(app: StepperApp, pilot: Pilot[Any], said: list[tuple[str, str]]) -> None:
@@ -641,7 +617,7 @@ def test_every_key_in_the_map_has_an_action() -> None:
 # -- screens ---------------------------------------------------------------------------------
 
 
-def test_layout_stacks_on_narrow_terminals_and_sits_side_by_side_on_wide_ones(session: Session) -> None:
+def test_layout_stacks_on_narrow_terminals_and_sits_side_by_side_on_wide_ones(session: Session, drive) -> None:
     async def narrow(app: StepperApp, pilot: Pilot[Any], said: list[tuple[str, str]]) -> None:
         await pilot.pause()
         table, plot = app.table.region, app.plot.region
@@ -659,7 +635,7 @@ def test_layout_stacks_on_narrow_terminals_and_sits_side_by_side_on_wide_ones(se
     drive(Session(load_setup(default_model())), wide, size=(160, 40))
 
 
-def test_no_color_keeps_verdicts_readable(session: Session, monkeypatch: pytest.MonkeyPatch) -> None:
+def test_no_color_keeps_verdicts_readable(session: Session, monkeypatch: pytest.MonkeyPatch, drive) -> None:
     monkeypatch.setenv("NO_COLOR", "1")
 
     async def check(app: StepperApp, pilot: Pilot[Any], said: list[tuple[str, str]]) -> None:
@@ -671,7 +647,7 @@ def test_no_color_keeps_verdicts_readable(session: Session, monkeypatch: pytest.
     drive(session, check, size=(80, 24))
 
 
-def test_status_and_rows_fit_80_columns(session: Session) -> None:
+def test_status_and_rows_fit_80_columns(session: Session, drive) -> None:
     async def check(app: StepperApp, pilot: Pilot[Any], said: list[tuple[str, str]]) -> None:
         await press(app, pilot, "c", "s")
         for line in status(app).splitlines()[:2]:
