@@ -37,6 +37,7 @@ from stepper.ui.slicepanel import SlicePanel, SlicePlot
 SCENARIOS = Path(__file__).resolve().parents[1] / "scenarios"
 SIZES = [(80, 24), (100, 30)]
 
+
 async def press(app: StepperApp, pilot: Pilot[Any], *keys: str) -> None:
     for key in keys:
         await pilot.press(key)
