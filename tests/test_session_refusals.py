@@ -8,7 +8,7 @@ change nothing: weights, history, undo stack and journal.
 from __future__ import annotations
 
 from pathlib import Path
-from typing import Iterator
+from typing import Callable, Iterator
 
 import numpy as np
 import pytest
@@ -22,57 +22,33 @@ LAYER = '''
 import numpy as np
 
 
-class PositiveScale:
-    """out = X * s, elementwise, for a scale s that must stay positive."""
+class ScaledUnits:
+    """out = (X @ W) * s, for a per-unit scale s that must stay positive."""
 
     def __init__(self, n_in, units, options):
-        self.n_out = n_in
+        self.n_in = n_in
+        self.n_out = units
 
     def init(self, rng):
-        return {"s": np.ones(self.n_out)}
+        return {"W": rng.normal(0.0, 0.5, (self.n_in, self.n_out)), "s": np.ones(self.n_out)}
 
     def forward(self, params, X):
         if np.any(params["s"] <= 0.0):
             raise ValueError("scale must stay positive")
-        return X * params["s"], X
+        H = X @ params["W"]
+        return H * params["s"], (X, H)
 
     def backward(self, params, cache, dOut):
-        X = cache
-        return {"s": (dOut * X).sum(axis=0)}, dOut * params["s"]
+        X, H = cache
+        dH = dOut * params["s"]
+        return {"W": X.T @ dH, "s": (dOut * H).sum(axis=0)}, dH @ params["W"].T
 '''
-
-MODEL = '''
-loss = "mean_squared_error"
-
-[data]
-file = "data.csv"
-inputs = ["a", "b"]
-targets = ["y"]
-
-[init]
-scheme = "glorot_uniform"
-seed = 2
-
-[[layers]]
-type = "custom"
-file = "scale.py"
-class = "PositiveScale"
-
-[[layers]]
-units = 1
-activation = "identity"
-'''
-
-# Invented demo rows.
-DATA = "a,b,y\n0.5,1.0,0.3\n-0.2,0.4,0.1\n0.9,-0.3,0.5\n"
 
 
 @pytest.fixture
-def session(tmp_path: Path) -> Iterator[Session]:
-    (tmp_path / "scale.py").write_text(LAYER)
-    (tmp_path / "data.csv").write_text(DATA)
-    (tmp_path / "model.toml").write_text(MODEL)
-    opened = Session(load_setup(tmp_path / "model.toml"), journal=tmp_path / "journal.jsonl")
+def session(custom_model: Callable[..., Path], tmp_path: Path) -> Iterator[Session]:
+    model = custom_model(LAYER, "scaled.py", "ScaledUnits")
+    opened = Session(load_setup(model), journal=tmp_path / "journal.jsonl")
     yield opened
     opened.close()
 
@@ -85,7 +61,7 @@ def test_set_value_refused_by_the_layer_changes_nothing(session: Session, tmp_pa
     session.step()
     before = _state(session)
     journal_before = read_journal(tmp_path / "journal.jsonl")[1]
-    index = session.net.layout.lookup("L1.s[0]")
+    index = session.net.layout.lookup("L2.s[0]")
     with pytest.raises(CustomLayerError, match="scale must stay positive"):
         session.set_value(index, -1.0)
     assert session.theta.tobytes() == before[0]
@@ -98,7 +74,7 @@ def test_set_value_refused_by_the_layer_changes_nothing(session: Session, tmp_pa
 
 def test_perturb_refused_by_the_layer_changes_nothing(session: Session) -> None:
     # Perturbing the scale far below zero makes the layer raise.
-    index = session.net.layout.lookup("L1.s[1]")
+    index = session.net.layout.lookup("L2.s[1]")
     before = _state(session)
     with pytest.raises(CustomLayerError):
         session.perturb(100.0, [index], seed=4)  # seed 4 draws -65.2: the scale turns negative
