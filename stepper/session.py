@@ -501,10 +501,27 @@ class Session:
         return np.where(self.frozen, 0.0, slopes)
 
     def _one_step(self) -> None:
-        """One update in place, or DivergenceError with nothing changed."""
+        """One update in place, or an error (DivergenceError, a custom layer's) with nothing changed."""
         # The draw of a refused step is taken back too, so the next step (and a
         # replay of the journal, which holds only the steps made) draws the same batch.
         rng_state = self.batch_rng.bit_generator.state
+        try:
+            theta, state, cost = self._next_update()
+        except BaseException:
+            self.batch_rng.bit_generator.state = rng_state
+            raise
+        self.theta[...] = theta
+        self.rule_state = state
+        self.step_count += 1
+        self._version += 1
+        self._cache["train"] = (self._version, float(cost))
+        self.history.append(self._entry())
+
+    def _next_update(self) -> tuple[Array, RuleState, float]:
+        """The parameters, rule state and training cost after one update; nothing is changed.
+
+        Raises DivergenceError when the update would make a weight or the cost non-finite.
+        """
         X, Y = self._batch()
         data = self.setup.data
         with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
@@ -515,7 +532,6 @@ class Session:
             bad = ~np.isfinite(theta)
             cost = self.net.cost(theta, data.X, data.Y) if not bad.any() else math.nan
         if bad.any() or not math.isfinite(cost):
-            self.batch_rng.bit_generator.state = rng_state
             if bad.any():
                 culprits = tuple(self.names[i] for i in np.flatnonzero(bad)[:5])
                 what = f"{int(bad.sum())} weight(s) would become non-finite ({', '.join(culprits)})"
@@ -528,12 +544,7 @@ class Session:
                 f"Try a smaller rate, e.g. {self.rate / 10:g}.",
                 culprits,
             )
-        self.theta[...] = theta
-        self.rule_state = state
-        self.step_count += 1
-        self._version += 1
-        self._cache["train"] = (self._version, float(cost))
-        self.history.append(self._entry())
+        return theta, state, float(cost)
 
     def iter_steps(self, n: int) -> Progress[StepReport]:
         """Make ``n`` updates as one undoable operation, yielding ``(done, n)`` after each.

@@ -82,3 +82,22 @@ def test_perturb_refused_by_the_layer_changes_nothing(session: Session) -> None:
     assert session.history == before[1]
     assert not session.can_undo
     assert np.all(np.isfinite(session.theta))
+
+
+def test_step_refused_by_the_layer_changes_nothing_and_keeps_the_batch_draw(session: Session) -> None:
+    session.set_batch_size(10)
+    session.set_rule("gd")
+    slopes = session.analytic_slopes()
+    scales = [session.net.layout.lookup(f"L2.s[{j}]") for j in range(3)]
+    # A rate that sends the scale with the largest positive slope below zero in one step.
+    pushed = max(scales, key=lambda i: slopes[i])
+    assert slopes[pushed] > 0
+    rng_before = session.batch_rng.bit_generator.state
+    session.set_rate(10.0 * session.theta[pushed] / slopes[pushed])
+    before = _state(session)
+    with pytest.raises(CustomLayerError, match="scale must stay positive"):
+        session.step()
+    assert session.theta.tobytes() == before[0]
+    assert session.history == before[1]
+    assert session.step_count == 0
+    assert session.batch_rng.bit_generator.state == rng_before
