@@ -644,6 +644,7 @@ class Session:
             "frozen": [self.names[i] for i in np.flatnonzero(self.frozen)],
             "history": [[h.step, h.train_cost, h.val_cost, h.rate, h.rule] for h in self.history],
             "batch_rng": self.batch_rng.bit_generator.state,
+            "noise_rng": self.noise_rng.bit_generator.state,
         }
         save_checkpoint(target, self.net.layout, CheckpointData(self.theta, self.rule_state.arrays, meta))
         self.dirty = False
@@ -694,22 +695,21 @@ class Session:
                 "slope_source": str(meta["slope_source"]),
                 "batch_size": None if meta["batch_size"] is None else int(meta["batch_size"]),
             }
-            rng_state = meta.get("batch_rng")
+            rng_states = {name: meta[name] for name in ("batch_rng", "noise_rng") if meta.get(name) is not None}
         except (KeyError, TypeError, ValueError, UsageError) as exc:
             raise CheckpointError(f"{path}: the checkpoint's metadata is incomplete or wrong ({exc})") from None
         if values["slope_source"] not in SLOPE_SOURCES:
             raise CheckpointError(f"{path}: unknown slope source {values['slope_source']!r}")
-        if rng_state is not None:
+        for name, rng_state in rng_states.items():
             # Tried on a spare generator first: nothing may change before every check has passed.
             try:
                 type(self.batch_rng.bit_generator)().state = rng_state
             except (TypeError, ValueError, KeyError, OverflowError):
-                raise CheckpointError(f"{path}: the checkpoint's batch generator state is not valid") from None
-        fields = list(values) + ["batch_rng"]
+                what = "batch" if name == "batch_rng" else "noise"
+                raise CheckpointError(f"{path}: the checkpoint's {what} generator state is not valid") from None
+        fields = list(values) + ["batch_rng", "noise_rng"]
         before = {**self._snapshot(fields), "history": (0, list(self.history))}
-        self._restore(values)
-        if rng_state is not None:
-            self.batch_rng.bit_generator.state = rng_state
+        self._restore({**values, **rng_states})
         self.history[:] = history
         after = {**self._snapshot(fields), "history": (0, list(history))}
         self._commit(_Change(f"load {path.name}", before, after), {"op": "load", "path": str(path.resolve()), "sha256": data.sha256})

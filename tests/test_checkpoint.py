@@ -48,6 +48,7 @@ def busy_session(setup: Any) -> Session:
     s.freeze_matching("L2.W[0,*]")
     s.step(4)
     s.set_slope_source("numeric")
+    s.perturb(0.001)  # draws its seed from the session's noise generator
     return s
 
 
@@ -70,11 +71,14 @@ def test_round_trip_is_bit_exact(bakery, tmp_path: Path) -> None:  # type: ignor
     assert (fresh.step_count, fresh.rate, fresh.rule, fresh.slope_source, fresh.batch_size) == \
         (s.step_count, s.rate, s.rule, s.slope_source, s.batch_size)
     assert fresh.batch_rng.bit_generator.state == s.batch_rng.bit_generator.state
-    # Both go on identically.
+    assert fresh.noise_rng.bit_generator.state == s.noise_rng.bit_generator.state
+    # Both go on identically, unseeded perturbations included.
     s.set_slope_source("analytic")
     fresh.set_slope_source("analytic")
     s.step(3)
     fresh.step(3)
+    s.perturb(0.01)
+    fresh.perturb(0.01)
     assert fresh.theta.tobytes() == s.theta.tobytes()
 
 
