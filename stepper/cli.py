@@ -56,9 +56,18 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
+def _use_cores() -> None:
+    """Numeric slopes on up to two threads, when BLAS runs one thread (as set above)."""
+    if os.environ.get("OPENBLAS_NUM_THREADS") == "1":
+        from stepper.core.numeric import set_workers
+
+        set_workers(min(2, os.cpu_count() or 1))
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     """Run the command line; returns the exit code."""
     args_list = list(sys.argv[1:] if argv is None else argv)
+    _use_cores()
     try:
         parser = build_parser()
         if not args_list:

@@ -29,9 +29,12 @@ over a 10-64-64-1 network).
 
 from __future__ import annotations
 
+import contextvars
 import math
+from collections import deque
+from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass, field
-from typing import Any, Callable, Generator, Iterable, TypeVar
+from typing import Any, Callable, Generator, Iterable, Iterator, TypeVar
 
 import numpy as np
 from numpy.typing import NDArray
@@ -194,6 +197,7 @@ def iter_numeric_slopes(
     inputs = [X] + [out for out, _ in trace[:-1]]
     params = net.views(theta)
     work = _Workspace()
+    spaces = [work] + [_Workspace(reach=work.reach) for _ in range(_WORKERS - 1)]
 
     for block in net.layout.blocks:
         in_block = wanted[(wanted >= block.start) & (wanted < block.stop)]
@@ -206,14 +210,19 @@ def iter_numeric_slopes(
             chunk = _chunk_size(net, block.layer, X.shape[0])
             pieces = [in_block[lo : lo + chunk] for lo in range(0, in_block.size, chunk)]
 
-            def one_piece(idx: NDArray[np.int64]) -> tuple[NDArray[np.int64], Array, NDArray[np.bool_]]:
-                plus, kink_p = _dense_costs(net, params, trace, block, idx, +step, Y, work)
+            def one_piece(
+                idx: NDArray[np.int64], space: _Workspace, block: Any = block
+            ) -> tuple[NDArray[np.int64], Array, NDArray[np.bool_]]:
+                plus, kink_p = _dense_costs(net, params, trace, block, idx, +step, Y, space)
                 if method == "central":
-                    minus, kink_m = _dense_costs(net, params, trace, block, idx, -step, Y, work)
+                    minus, kink_m = _dense_costs(net, params, trace, block, idx, -step, Y, space)
                     return idx, (plus - minus) / (2.0 * step), kink_p | kink_m
                 return idx, (plus - base_cost) / step, kink_p
 
-            for idx, values, kinks in map(one_piece, pieces):
+            # Several threads only where no custom layer follows: a user's
+            # layer is never run from two threads at once.
+            parallel = all(isinstance(later, Dense) for later in net.layers[block.layer :])
+            for idx, values, kinks in _pieces(one_piece, pieces, spaces if parallel else spaces[:1]):
                 slopes[idx] = values
                 kink[idx] = kinks
                 done += idx.size
@@ -231,6 +240,67 @@ def iter_numeric_slopes(
                     yield done, total
     del params
     return NumericSlopes(slopes, kink, method, step, computed)
+
+
+#: Threads that evaluate chunks of perturbations side by side (see :func:`set_workers`).
+_WORKERS = 1
+_POOL: ThreadPoolExecutor | None = None
+
+
+def set_workers(n: int) -> None:
+    """Evaluate up to ``n`` chunks of perturbations at once, on threads (default 1).
+
+    numpy releases the GIL inside its array loops, so this uses several cores.
+    It pays only when the BLAS library itself runs one thread per call: with
+    OpenBLAS's default of one thread per core the two kinds of threads compete
+    and a 2-core machine got slower (tests/benchmarks/bench_numeric.py). The
+    ``stepper`` command sets both.
+    """
+    global _WORKERS, _POOL
+    n = max(1, int(n))
+    if n != _WORKERS:
+        if _POOL is not None:
+            _POOL.shutdown(wait=True)
+        _POOL = ThreadPoolExecutor(max_workers=n, thread_name_prefix="stepper-slopes") if n > 1 else None
+        _WORKERS = n
+
+
+def _pieces(
+    fn: Callable[[NDArray[np.int64], "_Workspace"], T],
+    pieces: list[NDArray[np.int64]],
+    spaces: list["_Workspace"],
+) -> Iterator[T]:
+    """``fn(piece, space)`` for each piece, results in order.
+
+    With several workspaces, as many pieces as workspaces run at once on the
+    pool; piece ``i`` uses workspace ``i % len(spaces)``, and it is submitted only
+    after piece ``i - len(spaces)`` (the same workspace's last user) has
+    finished, so no two threads share buffers. Stopping the iteration (a cancel)
+    leaves at most that many pieces to finish.
+    """
+    pool = _POOL
+    width = len(spaces) if pool is not None else 1
+    if width == 1:
+        for piece in pieces:
+            yield fn(piece, spaces[0])
+        return
+    assert pool is not None
+    pending: deque[Future[T]] = deque()
+    try:
+        for i, piece in enumerate(pieces):
+            if len(pending) == width:
+                yield pending.popleft().result()
+            # In the caller's context, so its numpy error state (np.errstate) holds there too.
+            context = contextvars.copy_context()
+            pending.append(pool.submit(context.run, fn, piece, spaces[i % width]))
+        while pending:
+            yield pending.popleft().result()
+    finally:
+        for future in pending:
+            future.cancel()
+        for future in pending:
+            if not future.cancelled():
+                future.exception()  # wait: the workspace must be free before anyone reuses it
 
 
 def _prepare_reach(

@@ -9,12 +9,23 @@ like-for-like figure. Goal: at least 10x faster than the reference.
 Each figure is the best of several runs (``time.perf_counter``); runs of ours
 and of the reference alternate, so both see the same load on a shared machine.
 
+Threads: by default this script runs as the ``stepper`` command does (one
+OpenBLAS thread, and two threads for Stepper's chunks of perturbations; see
+``stepper.core.numeric.set_workers``). The reference gets the same BLAS. Run it
+with ``OPENBLAS_NUM_THREADS=2`` to time both with OpenBLAS's own threads instead
+(Stepper then stays on one thread, since the two kinds compete).
+
 Run: ``/tmp/v/bin/python tests/benchmarks/bench_numeric.py``
 """
 
 from __future__ import annotations
 
-import time
+import os
+
+# As the stepper command does (stepper/cli.py): one BLAS thread unless the caller chose.
+os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
+
+import time  # noqa: E402
 from typing import Any, Callable
 
 import numpy as np
@@ -24,7 +35,7 @@ from stepper.core.activations import ACTIVATIONS
 from stepper.core.init import initial_params
 from stepper.core.layers import Dense
 from stepper.core.network import Network
-from stepper.core.numeric import default_step, numeric_slopes
+from stepper.core.numeric import default_step, numeric_slopes, set_workers
 
 N_SAMPLES = 256
 ROUNDS = 3  # alternating rounds; ours runs OURS_PER_ROUND times per round
@@ -53,6 +64,10 @@ def timed(job: Callable[[], Any]) -> tuple[float, Any]:
 
 
 def main() -> None:
+    one_blas_thread = os.environ["OPENBLAS_NUM_THREADS"] == "1"
+    workers = min(2, os.cpu_count() or 1) if one_blas_thread else 1
+    set_workers(workers)
+    print(f"OPENBLAS_NUM_THREADS={os.environ['OPENBLAS_NUM_THREADS']}, Stepper's workers: {workers}")
     for hidden in ("tanh", "relu"):
         net, theta, X, Y = build(hidden)
         _, analytic = net.cost_and_slopes(theta, X, Y)
