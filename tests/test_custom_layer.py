@@ -171,6 +171,19 @@ def test_only_a_wrong_input_slope_still_fails(model_with, capsys) -> None:
     assert "result      FAIL: the input slopes (dX) of custom layer L1 disagree" in out
 
 
+def test_a_non_finite_input_slope_fails_the_input_check(model_with, capsys) -> None:
+    # A NaN in dX must not read as "not computed": the input check fails on it
+    # (only the first layer's dX is thrown away by the network, as above).
+    model = model_with('dX = dOut @ params["M"].T', 'dX = dOut @ params["M"].T * np.nan')
+    text = model.read_text().replace('[[layers]]\nunits = 2\nactivation = "tanh"\n\n', "", 1)
+    model.write_text(text)
+    code = cli.main(["check", str(model), "--json"])
+    report = json.loads(capsys.readouterr().out)
+    assert code == 1
+    assert report["input_slopes"][0]["passed"] is False
+    assert report["input_slopes"][0]["counts"]["disagree"] == 8 * 2
+
+
 # -- messages, through the command line -------------------------------------------------------
 
 

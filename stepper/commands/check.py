@@ -230,7 +230,7 @@ def input_slopes_document(c: InputSlopeCheck) -> dict[str, Any]:
         "samples": c.samples.tolist(),
         "counts": c.counts,
         "passed": c.passed,
-        "worst": {"sample": sample, "input": entry, "relative_error": c.worst_error},
+        "worst": {"sample": sample, "input": entry, "relative_error": _finite_or_none(c.worst_error)},
         "analytic": c.analytic.tolist(),
         "numeric": c.numeric.tolist(),
     }

@@ -91,6 +91,31 @@ def verdicts(
     return out
 
 
+def judge(
+    analytic: Array,
+    numeric: Array,
+    kink: NDArray[np.bool_],
+    noise: float | Array,
+    limits: Thresholds = Thresholds(),
+    computed: NDArray[np.bool_] | None = None,
+) -> tuple[Array, NDArray[np.str_]]:
+    """Relative errors and verdicts of analytic against numeric slopes (arrays of one shape).
+
+    ``noise`` is the rounding noise of the numeric slopes (a number, or one per
+    entry, see :func:`noise_level`): two slopes closer than that agree. Where a
+    slope was computed (``computed``; all when None) but either side is not
+    finite, the verdict is ``disagree``: an overflow must never pass.
+    """
+    with np.errstate(invalid="ignore", over="ignore"):
+        rel = relative_error(analytic, numeric, limits.floor)
+        quiet = np.abs(analytic - numeric) <= noise
+    verdict = verdicts(rel, kink, limits, quiet)
+    if computed is None:
+        computed = np.ones(analytic.shape, dtype=bool)
+    verdict[computed & ~(np.isfinite(analytic) & np.isfinite(numeric))] = "disagree"
+    return rel, verdict
+
+
 def verdict_counts(v: NDArray[np.str_]) -> dict[str, int]:
     """How many parameters got each verdict."""
     return {name: int(np.count_nonzero(v == name)) for name in VERDICTS}

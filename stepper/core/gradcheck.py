@@ -7,7 +7,7 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import NDArray
 
-from stepper.core.compare import Thresholds, noise_level, relative_error, verdict_counts, verdicts
+from stepper.core.compare import Thresholds, judge, noise_level, verdict_counts
 from stepper.core.network import Network
 from stepper.core.numeric import NumericSlopes, Progress, iter_numeric_slopes
 
@@ -51,12 +51,8 @@ class CheckResult:
 
 def compare(cost: float, analytic: Array, numeric: NumericSlopes, limits: Thresholds = Thresholds()) -> CheckResult:
     """Combine analytic and numeric slopes into a :class:`CheckResult`."""
-    with np.errstate(invalid="ignore", over="ignore"):
-        rel = relative_error(analytic, numeric.slopes, limits.floor)
-        quiet = np.abs(analytic - numeric.slopes) <= noise_level(cost, numeric.h)
-    verdict = verdicts(rel, numeric.kink, limits, quiet)
-    computed = np.ones(analytic.shape, dtype=bool) if numeric.computed is None else numeric.computed
-    verdict[computed & ~(np.isfinite(analytic) & np.isfinite(numeric.slopes))] = "disagree"
+    rel, verdict = judge(analytic, numeric.slopes, numeric.kink, noise_level(cost, numeric.h), limits,
+                         numeric.computed)
     return CheckResult(cost, analytic, numeric.slopes, rel, verdict, numeric.method, numeric.h)
 
 

@@ -17,13 +17,14 @@ Layers that couple samples are still handled correctly, only less precisely.
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
 
-from stepper.core.compare import Thresholds, noise_level, relative_error, verdict_counts, verdicts
+from stepper.core.compare import Thresholds, judge, noise_level, verdict_counts
 from stepper.core.layers import Dense, DenseCache
 from stepper.core.network import Network
 from stepper.core.numeric import METHODS, default_step
@@ -75,7 +76,11 @@ class InputSlopeCheck:
 
     @property
     def worst_error(self) -> float:
-        return float(np.nanmax(self.rel_error)) if self.rel_error.size else 0.0
+        """The largest relative error; NaN when none could be computed (non-finite slopes)."""
+        known = self.rel_error[~np.isnan(self.rel_error)]
+        if known.size:
+            return float(known.max())
+        return math.nan if self.rel_error.size else 0.0
 
 
 def spread_samples(n_samples: int, count: int) -> NDArray[np.int64]:
@@ -151,13 +156,11 @@ def check_input_slopes(
                 kink[k, i] = kink_p
             work[s, i] = saved
     analytic = np.asarray(dX, dtype=np.float64)[rows]
-    rel = relative_error(analytic, numeric, limits.floor)
     # Only sample s's cost moves, so the rounding noise is that of its own cost,
     # divided by the n of the average (see compare.noise_level).
     noise = np.array([noise_level(float(base[s]), step) for s in rows])[:, None] / n
-    quiet = np.abs(analytic - numeric) <= noise
-    return InputSlopeCheck(layer, lay.label, rows, analytic, numeric, rel,
-                           verdicts(rel, kink, limits, within_noise=quiet), method, step)
+    rel, verdict = judge(analytic, numeric, kink, noise, limits)
+    return InputSlopeCheck(layer, lay.label, rows, analytic, numeric, rel, verdict, method, step)
 
 
 def _moved(
