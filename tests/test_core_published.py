@@ -18,7 +18,6 @@ prints: our value rounded to that many decimals must equal the printed text.
 from __future__ import annotations
 
 from pathlib import Path
-from typing import Callable
 
 import numpy as np
 import pytest
@@ -26,53 +25,11 @@ import pytest
 from stepper.core.numeric import numeric_slopes
 from stepper.formats.model_file import Setup, load_setup
 
-MODEL = """\
-name = "published worked example"
-loss = "half_squared_error"
-
-[data]
-file = "data.csv"
-inputs = ["i1", "i2"]
-targets = ["t1", "t2"]
-
-[[layers]]
-units = 2
-activation = "sigmoid"
-weights = [[0.15, 0.25], [0.20, 0.30]]
-biases = [0.35, 0.35]
-
-[[layers]]
-units = 2
-activation = "sigmoid"
-weights = [[0.40, 0.50], [0.45, 0.55]]
-biases = [0.60, 0.60]
-"""
-
-DATA = "i1,i2,t1,t2\n0.05,0.10,0.01,0.99\n"
-
-# Mazur (2015): the weight names of the post and where they sit in our layout.
-POST_NAMES = {
-    "w1": "L1.W[0,0]", "w2": "L1.W[1,0]", "w3": "L1.W[0,1]", "w4": "L1.W[1,1]",
-    "w5": "L2.W[0,0]", "w6": "L2.W[1,0]", "w7": "L2.W[0,1]", "w8": "L2.W[1,1]",
-}
-
-# Mazur (2015), "The Backwards Pass": the updated weights after one step at
-# learning rate 0.5 (biases are not updated in the post).
-PUBLISHED_UPDATED = {
-    "w5": "0.35891648", "w6": "0.408666186", "w7": "0.511301270", "w8": "0.561370121",
-    "w1": "0.149780716", "w2": "0.19956143", "w3": "0.24975114", "w4": "0.29950229",
-}
-
-
-def same_as_published(value: float, published: str) -> bool:
-    """True when ``value`` rounded to the published number of decimals prints as ``published``."""
-    decimals = len(published.split(".")[1])
-    return f"{value:.{decimals}f}" == published
-
+from published_example import POST_NAMES, PUBLISHED_AFTER_ONE_STEP, same_as_published, write_example
 
 @pytest.fixture
-def setup(write_model: Callable[..., Path]) -> Setup:
-    return load_setup(write_model(MODEL, DATA))
+def setup(tmp_path: Path) -> Setup:
+    return load_setup(write_example(tmp_path))
 
 
 def test_file_maps_the_post_weights(setup: Setup) -> None:
@@ -123,7 +80,7 @@ def test_one_step_matches_published_weights(setup: Setup) -> None:
     # Mazur (2015): one step of gradient descent at rate 0.5 on the weights only,
     # every slope taken at the original weights.
     updated = setup.theta0 - 0.5 * np.where(layout.is_bias, 0.0, slopes)
-    for post, published in PUBLISHED_UPDATED.items():
+    for post, published in PUBLISHED_AFTER_ONE_STEP.items():
         assert same_as_published(updated[layout.lookup(POST_NAMES[post])], published), post
     assert np.array_equal(updated[layout.is_bias], setup.theta0[layout.is_bias])
 

@@ -26,54 +26,11 @@ import pytest
 from stepper.formats.model_file import load_setup
 from stepper.session import Session
 
-INPUTS = (0.05, 0.10)
-TARGETS = (0.01, 0.99)
-W = {"w1": 0.15, "w2": 0.20, "w3": 0.25, "w4": 0.30, "w5": 0.40, "w6": 0.45, "w7": 0.50, "w8": 0.55}
-B1, B2 = 0.35, 0.60
+from published_example import (
+    B1, B2, INPUTS, POST_NAMES, PUBLISHED_AFTER_ONE_STEP, TARGETS, W, same_as_published, write_example,
+)
+
 RATE = 0.5
-
-#: Where each of the post's weights sits in our parameter vector.
-NAME_OF = {
-    "w1": "L1.W[0,0]", "w2": "L1.W[1,0]", "w3": "L1.W[0,1]", "w4": "L1.W[1,1]",
-    "w5": "L2.W[0,0]", "w6": "L2.W[1,0]", "w7": "L2.W[0,1]", "w8": "L2.W[1,1]",
-}
-
-#: The updated weights after one step, as printed in the post (Mazur 2015).
-PUBLISHED_AFTER_ONE_STEP = {
-    "w5": "0.35891648", "w6": "0.408666186", "w7": "0.511301270", "w8": "0.561370121",
-    "w1": "0.149780716", "w2": "0.19956143", "w3": "0.24975114", "w4": "0.29950229",
-}
-
-
-def write_example(folder: Path) -> Path:
-    """The example as a model file with inline weights and a one-row CSV."""
-    (folder / "one.csv").write_text(f"i1,i2,t1,t2\n{INPUTS[0]},{INPUTS[1]},{TARGETS[0]},{TARGETS[1]}\n",
-                                    encoding="utf-8")
-    w = W
-    (folder / "model.toml").write_text(
-        f"""
-loss = "half_squared_error"
-
-[data]
-file = "one.csv"
-inputs = ["i1", "i2"]
-targets = ["t1", "t2"]
-
-[[layers]]
-units = 2
-activation = "sigmoid"
-weights = [[{w['w1']}, {w['w3']}], [{w['w2']}, {w['w4']}]]
-biases = [{B1}, {B1}]
-
-[[layers]]
-units = 2
-activation = "sigmoid"
-weights = [[{w['w5']}, {w['w7']}], [{w['w6']}, {w['w8']}]]
-biases = [{B2}, {B2}]
-""",
-        encoding="utf-8",
-    )
-    return folder / "model.toml"
 
 
 @pytest.fixture
@@ -84,13 +41,7 @@ def session(tmp_path: Path) -> Session:
 
 
 def weight(session: Session, post_name: str) -> float:
-    return float(session.theta[session.net.layout.index_of[NAME_OF[post_name]]])
-
-
-def agrees_to_printed_digits(value: float, printed: str) -> bool:
-    """True when ``value`` rounds to ``printed`` at the number of decimals printed."""
-    decimals = len(printed.split(".")[1])
-    return abs(value - float(printed)) <= 0.5 * 10.0**-decimals
+    return float(session.theta[session.net.layout.index_of[POST_NAMES[post_name]]])
 
 
 def numpy_reference(n_steps: int, learn_biases: bool) -> tuple[float, list[float]]:
@@ -128,11 +79,11 @@ def test_forward_pass_matches_the_post(session: Session) -> None:
     # Mazur 2015: out_h1 = 0.593269992, out_h2 = 0.596884378 (forward pass section).
     X = session.setup.data.X
     hidden = session.net.forward(session.theta, X)[0][0]
-    assert agrees_to_printed_digits(float(hidden[0, 0]), "0.593269992")
-    assert agrees_to_printed_digits(float(hidden[0, 1]), "0.596884378")
+    assert same_as_published(float(hidden[0, 0]), "0.593269992")
+    assert same_as_published(float(hidden[0, 1]), "0.596884378")
     # Mazur 2015: E_total = 0.298371109 (recalled from memory of the post, and
     # equal to the independent numpy reimplementation below).
-    assert agrees_to_printed_digits(session.train_cost(), "0.298371109")
+    assert same_as_published(session.train_cost(), "0.298371109")
     assert session.train_cost() == pytest.approx(numpy_reference(0, False)[0], rel=1e-14)
 
 
@@ -141,7 +92,7 @@ def test_one_step_reproduces_every_published_digit(session: Session) -> None:
     for post_name, printed in PUBLISHED_AFTER_ONE_STEP.items():
         # Mazur 2015, "The Backwards Pass": the updated value of each of w1..w8.
         value = weight(session, post_name)
-        assert agrees_to_printed_digits(value, printed), f"{post_name}: {value!r} vs published {printed}"
+        assert same_as_published(value, printed), f"{post_name}: {value!r} vs published {printed}"
     # The biases were frozen, as in the post, and did not move.
     biases = session.net.layout.is_bias
     assert np.array_equal(session.theta[biases], session.setup.theta0[biases])
@@ -158,8 +109,8 @@ def test_error_after_first_round_recomputed(session: Session) -> None:
     # published figure to six significant digits (0.291027...) and not beyond.
     published = 0.291027924
     assert ours == pytest.approx(published, abs=5e-7)
-    assert not agrees_to_printed_digits(ours, "0.291027924")
-    assert agrees_to_printed_digits(ours, "0.2910278")
+    assert not same_as_published(ours, "0.291027924")
+    assert same_as_published(ours, "0.2910278")
 
 
 def test_error_after_first_round_with_biases_learning(tmp_path: Path) -> None:
