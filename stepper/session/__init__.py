@@ -1,0 +1,111 @@
+"""The session: the one owner of a model's changing state.
+
+Everything that changes a model goes through a named method of
+:class:`Session`: a step, a change of rate or rule, freezing, perturbing,
+setting a value, resetting, loading a checkpoint. Each such operation
+
+- records what it changed (only the fields it touched; a few indices and values
+  where that is all that moved), so :meth:`Session.undo` and
+  :meth:`Session.redo` can go back and forth many levels deep;
+- is appended to the journal, when there is one, so ``stepper replay`` can
+  rebuild the same state from the model file after a crash.
+
+Long operations (many steps, numeric slopes of a large model) are generators
+that yield ``(done, total)``; the caller (a Textual worker, the CLI's progress
+bar) decides how to show and cancel them. The session knows nothing of threads.
+
+The class is put together from small modules: :mod:`.core` (state, derived
+values, undo and journal machinery), :mod:`.edits` (settings, freezing,
+values), :mod:`.stepping` (updates and the rate preview), :mod:`.files`
+(checkpoints) and :mod:`.folders` (default paths); replay of a journal entry
+is here, since it calls on all of them.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Any
+
+from stepper.errors import CheckpointError
+from stepper.session.core import MIN_UNDO, SLOPE_SOURCES, UNDO_BYTES, HistoryEntry, StepReport
+from stepper.session.edits import Edits
+from stepper.session.files import Files
+from stepper.session.folders import default_journal_for, session_folder_for
+from stepper.session.stepping import Stepping
+
+__all__ = [
+    "MIN_UNDO",
+    "SLOPE_SOURCES",
+    "UNDO_BYTES",
+    "HistoryEntry",
+    "Session",
+    "StepReport",
+    "default_journal_for",
+    "session_folder_for",
+]
+
+
+class Session(Stepping, Edits, Files):
+    """State of one debugging session over one model.
+
+    Attributes (read them, never assign or mutate them from outside):
+        setup: the loaded model file (network, initial values, data).
+        theta: current parameters, ``(n_params,)``.
+        frozen: True for parameters that never move, ``(n_params,)``.
+        rule_state: the update rule and its memory.
+        step_count: updates made so far.
+        rate: learning rate.
+        slope_source: ``"analytic"`` (backpropagation) or ``"numeric"``.
+        batch_size: samples per update, or None for the full training set.
+        history: cost after every step, entry 0 at the start.
+        check: the last numeric comparison, or None.
+        dirty: True when there are changes since the last save or load.
+        last_action: a sentence describing the last operation and its effect.
+    """
+
+    # -- journal replay ------------------------------------------------------------------------
+
+    def apply(self, entry: dict[str, Any], force: bool = False) -> None:
+        """Carry out one journal entry (as written by the operations above).
+
+        A checkpoint loaded by the entry must still hold the bytes it held then
+        (its SHA-256 is in the entry), unless ``force``.
+        """
+        op = entry.get("op")
+        index = self.net.layout.index_of
+        try:
+            if op == "step":
+                self.step(int(entry["n"]))
+            elif op == "set_rate":
+                self.set_rate(float(entry["rate"]))
+            elif op == "set_rule":
+                self.set_rule(str(entry["rule"]))
+            elif op == "set_slope_source":
+                self.set_slope_source(str(entry["source"]))
+            elif op == "set_batch_size":
+                self.set_batch_size(None if entry["size"] is None else int(entry["size"]))
+            elif op == "freeze":
+                self.freeze(index[name] for name in entry["names"])
+            elif op == "unfreeze":
+                self.unfreeze(index[name] for name in entry["names"])
+            elif op == "set_value":
+                self.set_value(index[entry["name"]], float(entry["value"]))
+            elif op == "perturb":
+                names = entry["names"]
+                self.perturb(float(entry["scale"]), None if names is None else [index[n] for n in names],
+                             int(entry["seed"]))
+            elif op == "reset":
+                self.reset()
+            elif op == "undo":
+                self.undo()
+            elif op == "redo":
+                self.redo()
+            elif op == "load":
+                digest = entry.get("sha256")
+                self.load_checkpoint(Path(entry["path"]), None if force or digest is None else str(digest))
+            elif op == "save":
+                self.dirty = False
+            else:
+                raise CheckpointError(f"unknown journal operation {op!r}")
+        except (KeyError, TypeError, ValueError) as exc:
+            raise CheckpointError(f"journal entry {entry!r} is incomplete or wrong ({exc})") from None

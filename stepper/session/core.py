@@ -1,0 +1,311 @@
+"""The session's core: its state, derived values, and the undo and journal machinery.
+
+:class:`SessionCore` holds every field a session owns and the machinery that
+records a change (``_snapshot``, ``_restore``, ``_commit``); the operations that
+change the model live in sibling modules (:mod:`.edits`, :mod:`.stepping`,
+:mod:`.files`) as subclasses that :class:`stepper.session.Session` puts together.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any, Callable, Iterable
+
+import numpy as np
+from numpy.typing import NDArray
+
+from stepper.core.gradcheck import CheckResult, iter_check
+from stepper.core.numeric import Progress, run_to_end
+from stepper.core.optimizers import RULES, RuleState, fresh_state
+from stepper.errors import UsageError
+from stepper.formats.journal import JournalWriter
+from stepper.formats.model_file import Setup
+from stepper.session.folders import default_journal_for, session_folder_for
+
+Array = NDArray[np.float64]
+
+SLOPE_SOURCES = ("analytic", "numeric")
+
+#: Undo history is trimmed (oldest first) beyond this many bytes of saved arrays,
+#: always keeping at least MIN_UNDO levels.
+UNDO_BYTES = 256 * 1024 * 1024
+MIN_UNDO = 20
+
+
+@dataclass(frozen=True)
+class HistoryEntry:
+    """The cost after one step (entry 0: before any step)."""
+
+    step: int
+    train_cost: float
+    val_cost: float | None
+    rate: float
+    rule: str
+
+
+@dataclass(frozen=True)
+class StepReport:
+    """What a run of steps did: cost before and after, and how many steps."""
+
+    before: float
+    after: float
+    steps: int
+
+
+@dataclass
+class _Change:
+    """One undoable operation: the touched fields before and after it."""
+
+    name: str
+    before: dict[str, Any]
+    after: dict[str, Any]
+
+    def nbytes(self) -> int:
+        total = 0
+        for side in (self.before, self.after):
+            for value in side.values():
+                total += _nbytes(value)
+        return total
+
+
+def _nbytes(value: Any) -> int:
+    if isinstance(value, np.ndarray):
+        return int(value.nbytes)
+    if isinstance(value, RuleState):
+        return sum(int(a.nbytes) for a in value.arrays.values())
+    if isinstance(value, tuple):
+        return sum(_nbytes(v) for v in value)
+    return 64
+
+
+class SessionCore:
+    """Every field of a session, its derived values, and the machinery that records changes.
+
+    Operations live in the subclasses; :class:`stepper.session.Session` lists the attributes.
+    """
+
+    def __init__(
+        self,
+        setup: Setup,
+        journal: Path | None = None,
+        rate: float = 0.1,
+        rule: str = "gd",
+        seed: int = 0,
+    ) -> None:
+        self.setup = setup
+        self.net = setup.network
+        n = self.net.n_params
+        self.theta: Array = setup.theta0.copy()
+        self.frozen: NDArray[np.bool_] = np.zeros(n, dtype=bool)
+        if rule not in RULES:
+            raise UsageError(f"unknown update rule {rule!r} (expected one of: {', '.join(RULES)})")
+        self.rule_state = fresh_state(rule, n)
+        self.step_count = 0
+        self.rate = _check_rate(rate)
+        self.slope_source = "analytic"
+        self.batch_size: int | None = None
+        self.seed = seed
+        self.batch_rng = np.random.default_rng(seed)
+        self.noise_rng = np.random.default_rng(seed + 1)
+        self.check: CheckResult | None = None
+        self.refresh_numeric_after_step = False
+        self.dirty = False
+        self.last_action: str | None = None
+        self.last_checkpoint: Path | None = None
+        self._undo: list[_Change] = []
+        self._redo: list[_Change] = []
+        self._version = 0
+        self._check_version = -1
+        self._cache: dict[str, tuple[int, Any]] = {}
+        self.history: list[HistoryEntry] = [self._entry()]
+        self.journal: JournalWriter | None = None
+        if journal is not None:
+            self.journal = JournalWriter(journal, setup.path, setup.digest,
+                                         {"rate": self.rate, "rule": self.rule, "seed": self.seed})
+
+    # -- read-only views -------------------------------------------------------------------
+
+    @property
+    def rule(self) -> str:
+        return self.rule_state.rule
+
+    @property
+    def names(self) -> tuple[str, ...]:
+        return self.net.layout.names
+
+    @property
+    def version(self) -> int:
+        """Counter that changes whenever the parameters change."""
+        return self._version
+
+    @property
+    def can_undo(self) -> bool:
+        return bool(self._undo)
+
+    @property
+    def can_redo(self) -> bool:
+        return bool(self._redo)
+
+    @property
+    def check_is_stale(self) -> bool:
+        return self.check is None or self._check_version != self._version
+
+    def _cached(self, key: str, compute: Callable[[], Any]) -> Any:
+        hit = self._cache.get(key)
+        if hit is not None and hit[0] == self._version:
+            return hit[1]
+        value = compute()
+        self._cache[key] = (self._version, value)
+        return value
+
+    def train_cost(self) -> float:
+        """Cost on the whole training set at the current parameters."""
+        data = self.setup.data
+        return float(self._cached("train", lambda: self.net.cost(self.theta, data.X, data.Y)))
+
+    def val_cost(self) -> float | None:
+        """Cost on the validation set, or None when there is none."""
+        data = self.setup.data
+        if data.n_val == 0:
+            return None
+        return float(self._cached("val", lambda: self.net.cost(self.theta, data.X_val, data.Y_val)))
+
+    def analytic_slopes(self) -> Array:
+        """Slopes by backpropagation on the whole training set, ``(n_params,)``."""
+        data = self.setup.data
+
+        def compute() -> Array:
+            return self.net.cost_and_slopes(self.theta, data.X, data.Y)[1]
+
+        result: Array = self._cached("slopes", compute)
+        return result
+
+    def iter_refresh_check(self) -> Progress[CheckResult]:
+        """Numeric slopes of every parameter and their comparison; stored in :attr:`check`."""
+        data = self.setup.data
+        version = self._version
+        theta = self.theta.copy()
+        result = yield from iter_check(self.net, theta, data.X, data.Y)
+        if version == self._version:
+            self.check = result
+            self._check_version = version
+        return result
+
+    def refresh_check(self) -> CheckResult:
+        result = run_to_end(self.iter_refresh_check())
+        assert result is not None
+        return result
+
+    def default_checkpoint_path(self) -> Path:
+        """A checkpoint path next to the model file (or in the current folder if that is read-only)."""
+        return self.session_folder() / f"step-{self.step_count:06d}.safetensors"
+
+    def session_folder(self) -> Path:
+        return session_folder_for(self.setup.path)
+
+    def default_journal_path(self) -> Path:
+        return default_journal_for(self.setup.path)
+
+    # -- undo machinery --------------------------------------------------------------------
+
+    def _snapshot(self, fields: Iterable[str]) -> dict[str, Any]:
+        out: dict[str, Any] = {}
+        for name in fields:
+            if name == "theta":
+                out[name] = self.theta.copy()
+            elif name == "frozen":
+                out[name] = self.frozen.copy()
+            elif name == "rule_state":
+                out[name] = self.rule_state.copy()
+            elif name == "batch_rng":
+                out[name] = self.batch_rng.bit_generator.state
+            elif name == "noise_rng":
+                out[name] = self.noise_rng.bit_generator.state
+            else:
+                out[name] = getattr(self, name)
+        return out
+
+    def _restore(self, fields: dict[str, Any]) -> None:
+        for name, value in fields.items():
+            if name == "theta":
+                self.theta[...] = value
+                self._version += 1
+            elif name == "theta_at":
+                idx, values = value
+                self.theta[idx] = values
+                self._version += 1
+            elif name == "frozen":
+                self.frozen[...] = value
+            elif name == "rule_state":
+                self.rule_state = value.copy()
+            elif name == "batch_rng":
+                self.batch_rng.bit_generator.state = value
+            elif name == "noise_rng":
+                self.noise_rng.bit_generator.state = value
+            elif name == "history":
+                start, entries = value
+                del self.history[start:]
+                self.history.extend(entries)
+            else:
+                setattr(self, name, value)
+
+    def _commit(self, change: _Change, journal: dict[str, Any] | None) -> None:
+        self._undo.append(change)
+        self._redo.clear()
+        total = sum(c.nbytes() for c in self._undo)
+        while len(self._undo) > MIN_UNDO and total > UNDO_BYTES:
+            total -= self._undo.pop(0).nbytes()
+        self.dirty = True
+        self._log(journal)
+
+    def _log(self, entry: dict[str, Any] | None) -> None:
+        if self.journal is not None and entry is not None:
+            self.journal.append(entry)
+
+    def undo(self) -> str | None:
+        """Take back the last operation; returns its name, or None if there is nothing to undo."""
+        if not self._undo:
+            self.last_action = "nothing to undo"
+            return None
+        change = self._undo.pop()
+        self._restore(change.before)
+        self._redo.append(change)
+        self.dirty = True
+        self.last_action = f"undid {change.name}"
+        self._log({"op": "undo"})
+        return change.name
+
+    def redo(self) -> str | None:
+        """Do again the last operation taken back; returns its name, or None."""
+        if not self._redo:
+            self.last_action = "nothing to redo"
+            return None
+        change = self._redo.pop()
+        self._restore(change.after)
+        self._undo.append(change)
+        self.dirty = True
+        self.last_action = f"redid {change.name}"
+        self._log({"op": "redo"})
+        return change.name
+
+    def _setting(self, name: str, field: str, value: Any, journal: dict[str, Any]) -> None:
+        before = self._snapshot([field])
+        setattr(self, field, value)
+        self._commit(_Change(name, before, {field: value}), journal)
+        self.last_action = name
+
+    def _entry(self) -> HistoryEntry:
+        return HistoryEntry(self.step_count, self.train_cost(), self.val_cost(), self.rate, self.rule)
+    def close(self) -> None:
+        if self.journal is not None:
+            self.journal.close()
+            self.journal = None
+
+
+
+def _check_rate(rate: float) -> float:
+    if not (isinstance(rate, (int, float)) and math.isfinite(rate) and rate > 0):
+        raise UsageError(f"learning rate {rate!r} must be a positive number")
+    return float(rate)

@@ -1,0 +1,176 @@
+"""Operations that change settings, the frozen mask and weight values (each undoable and journaled)."""
+
+from __future__ import annotations
+
+import fnmatch
+import math
+from typing import Any, Iterable
+
+import numpy as np
+from numpy.typing import NDArray
+
+from stepper.core.optimizers import RULES, fresh_state
+from stepper.errors import UsageError
+from stepper.session.core import SLOPE_SOURCES, Array, SessionCore, _Change, _check_rate
+
+
+class Edits(SessionCore):
+    """Settings (rate, rule, slope source, batch size), freezing, setting and perturbing values, reset."""
+
+    # -- settings --------------------------------------------------------------------------
+
+    def set_rate(self, rate: float) -> None:
+        rate = _check_rate(rate)
+        self._setting(f"rate {self.rate:g} -> {rate:g}", "rate", rate, {"op": "set_rate", "rate": rate})
+
+    def set_rule(self, rule: str) -> None:
+        """Switch the update rule; the new rule starts with fresh memory."""
+        if rule not in RULES:
+            raise UsageError(f"unknown update rule {rule!r} (expected one of: {', '.join(RULES)})")
+        before = self._snapshot(["rule_state"])
+        self.rule_state = fresh_state(rule, self.net.n_params)
+        after = self._snapshot(["rule_state"])
+        self._commit(_Change(f"rule {before['rule_state'].rule} -> {rule}", before, after),
+                     {"op": "set_rule", "rule": rule})
+        self.last_action = f"update rule {rule}"
+
+    def set_slope_source(self, source: str) -> None:
+        if source not in SLOPE_SOURCES:
+            raise UsageError(f"unknown slope source {source!r} (expected one of: {', '.join(SLOPE_SOURCES)})")
+        self._setting(f"slopes from {source}", "slope_source", source, {"op": "set_slope_source", "source": source})
+
+    def set_batch_size(self, size: int | None) -> None:
+        n = self.setup.data.n_train
+        if size is not None and not 1 <= size <= n:
+            raise UsageError(f"batch size {size} must be between 1 and the {n} training samples")
+        if size == n:
+            size = None
+        label = "full batch" if size is None else f"mini-batches of {size}"
+        self._setting(label, "batch_size", size, {"op": "set_batch_size", "size": size})
+
+    # -- freezing --------------------------------------------------------------------------
+
+    def _indices(self, indices: Iterable[int]) -> NDArray[np.int64]:
+        idx = np.unique(np.fromiter((int(i) for i in indices), dtype=np.int64))
+        if idx.size and (idx[0] < 0 or idx[-1] >= self.net.n_params):
+            raise UsageError(f"no parameter number {int(idx[-1] if idx[-1] >= 0 else idx[0])}")
+        return idx
+
+    def _set_frozen(self, idx: NDArray[np.int64], value: NDArray[np.bool_] | bool, name: str,
+                    journal: dict[str, Any]) -> None:
+        before = self._snapshot(["frozen"])
+        self.frozen[idx] = value
+        self._commit(_Change(name, before, self._snapshot(["frozen"])), journal)
+        self.last_action = name
+
+    def _describe(self, idx: NDArray[np.int64]) -> str:
+        if idx.size == 1:
+            return self.names[int(idx[0])]
+        return f"{idx.size} parameters"
+
+    def freeze(self, indices: Iterable[int]) -> None:
+        idx = self._indices(indices)
+        self._set_frozen(idx, True, f"froze {self._describe(idx)}",
+                         {"op": "freeze", "names": [self.names[i] for i in idx]})
+
+    def unfreeze(self, indices: Iterable[int]) -> None:
+        idx = self._indices(indices)
+        self._set_frozen(idx, False, f"unfroze {self._describe(idx)}",
+                         {"op": "unfreeze", "names": [self.names[i] for i in idx]})
+
+    def toggle_freeze(self, indices: Iterable[int]) -> None:
+        """Freeze the given parameters, or unfreeze them if they are all frozen already."""
+        idx = self._indices(indices)
+        if idx.size and bool(np.all(self.frozen[idx])):
+            self.unfreeze(idx)
+        else:
+            self.freeze(idx)
+
+    def layer_indices(self, layer: int) -> NDArray[np.int64]:
+        """Flat indices of every parameter of layer ``layer`` (0-based)."""
+        if not 0 <= layer < len(self.net.layers):
+            raise UsageError(f"no layer {layer + 1} (the model has {len(self.net.layers)})")
+        return np.flatnonzero(self.net.layout.layer_index == layer)
+
+    def freeze_layer(self, layer: int) -> None:
+        self.freeze(self.layer_indices(layer))
+
+    def matching(self, pattern: str) -> NDArray[np.int64]:
+        """Indices of parameters whose names match a shell-style pattern (``L1.*``, ``*.b[*]``).
+
+        Brackets in names are matched literally, so ``L1.W[0,*]`` works as expected.
+        """
+        # fnmatch treats [...] as a character class; escape brackets so names match literally.
+        escaped = "".join("[[]" if c == "[" else "[]]" if c == "]" else c for c in pattern)
+        hits = [i for i, name in enumerate(self.names) if fnmatch.fnmatchcase(name, escaped)]
+        if not hits:
+            raise UsageError(f"no parameter name matches {pattern!r} (names look like {self.names[0]})")
+        return np.array(hits, dtype=np.int64)
+
+    def freeze_matching(self, pattern: str) -> None:
+        self.freeze(self.matching(pattern))
+
+    # -- changing values ---------------------------------------------------------------------
+
+    def _set_values(self, idx: NDArray[np.int64], values: Array, name: str, journal: dict[str, Any]) -> None:
+        before = {"theta_at": (idx, self.theta[idx].copy())}
+        after = {"theta_at": (idx, values.copy())}
+        self._manual_change(name, before, after, journal)
+
+    def _manual_change(self, name: str, before: dict[str, Any], after: dict[str, Any],
+                       journal: dict[str, Any]) -> None:
+        """Apply ``after``, add the new cost to the history as a point of its own, and commit.
+
+        If the new cost cannot be computed (a custom layer raising on the new
+        values), ``before`` is put back and the error passes on: nothing changed.
+        """
+        start = len(self.history)
+        self._restore(after)
+        try:
+            entry = self._entry()
+        except BaseException:
+            self._restore(before)
+            raise
+        self.history.append(entry)
+        self._commit(_Change(name, {**before, "history": (start, [])}, {**after, "history": (start, [entry])}),
+                     journal)
+
+    def set_value(self, index: int, value: float) -> None:
+        """Set one parameter to a typed value."""
+        if not math.isfinite(value):
+            raise UsageError(f"{value!r} is not a finite number")
+        idx = self._indices([index])
+        before = self.train_cost()
+        self._set_values(idx, np.array([float(value)]), f"set {self.names[index]} = {value:g}",
+                         {"op": "set_value", "name": self.names[index], "value": float(value)})
+        self.last_action = f"set {self.names[index]} = {value:g}: cost {before:.6g} -> {self.train_cost():.6g}"
+
+    def perturb(self, scale: float, indices: Iterable[int] | None = None, seed: int | None = None) -> None:
+        """Add Gaussian noise ``N(0, scale^2)`` to the given parameters (all when None).
+
+        Frozen parameters are left alone. The noise comes from ``seed`` when given,
+        otherwise from the session's own seeded generator (recorded in the journal).
+        """
+        if not (math.isfinite(scale) and scale > 0):
+            raise UsageError(f"noise scale {scale!r} must be a positive number")
+        idx = np.arange(self.net.n_params) if indices is None else self._indices(indices)
+        idx = idx[~self.frozen[idx]]
+        if idx.size == 0:
+            raise UsageError("every chosen parameter is frozen: nothing to perturb")
+        if seed is None:
+            seed = int(self.noise_rng.integers(0, 2**31 - 1))
+        noise = np.random.default_rng(seed).normal(0.0, scale, idx.size)
+        before = self.train_cost()
+        what = self._describe(idx) if indices is not None else "all parameters"
+        self._set_values(idx, self.theta[idx] + noise, f"perturbed {what} by {scale:g}",
+                         {"op": "perturb", "scale": scale, "seed": seed,
+                          "names": None if indices is None else [self.names[i] for i in idx]})
+        self.last_action = f"perturbed {what} (noise {scale:g}): cost {before:.6g} -> {self.train_cost():.6g}"
+
+    def reset(self) -> None:
+        """All parameters back to their initial values; the rule's memory starts afresh."""
+        before_cost = self.train_cost()
+        before = self._snapshot(["theta", "rule_state"])
+        after = {"theta": self.setup.theta0.copy(), "rule_state": fresh_state(self.rule, self.net.n_params)}
+        self._manual_change("reset", before, after, {"op": "reset"})
+        self.last_action = f"reset to initial values: cost {before_cost:.6g} -> {self.train_cost():.6g}"
