@@ -3,7 +3,14 @@
 Each subcommand lives in its own module under :mod:`stepper.commands` and
 exposes ``add_parser(subparsers)`` and ``run(args) -> int``. This module wires
 them up and is the boundary where user-facing errors become one line on
-stderr. Exit codes: 0 ok, 1 check failed (or a step was refused), 2 bad input.
+stderr. Exit codes: 0 ok, 1 check failed (or a step was refused, or a runaway
+cost stopped a run), 2 bad input.
+
+One vocabulary holds in every subcommand (see ``commands/common.py``):
+``--resume CK`` starts from a checkpoint, ``--samples N`` limits the rows,
+``--delta H`` is the finite-difference step. Options are never abbreviated
+(``--sample`` is not ``--samples``); an unknown command or option is answered
+with the nearest known ones. ``stepper MODEL ...`` is ``stepper open MODEL ...``.
 """
 
 from __future__ import annotations
@@ -17,31 +24,132 @@ import os
 os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
 
 import argparse  # noqa: E402
+import difflib
+import re
 import sys
 from importlib import import_module
-from typing import Sequence
+from pathlib import Path
+from typing import Any, Iterable, NoReturn, Sequence
 
 from stepper import __version__
-from stepper.errors import StepperError
+from stepper.errors import StepperError, UsageError
 
 #: Subcommand modules, in the order ``--help`` lists them.
 COMMANDS = ("open", "check", "run", "replay", "slice", "explain")
 
+#: The subcommand that runs when the first argument is a model or an option of its own.
+DEFAULT_COMMAND = "open"
+
+_TOP_OPTIONS = ("-h", "--help", "--version")
+
+
+#: Options renamed when the vocabulary was made one (old name -> new name), so
+#: that a script written for the old name is told the new one.
+RENAMED = {"--step": "--delta", "--checkpoint": "--resume", "--sample": "--sample-index"}
+
+
+def closest(word: str, known: Iterable[str], cutoff: float = 0.6) -> list[str]:
+    """The known words closest to ``word``, closest first (at most three).
+
+    A word counts as close at a similarity of ``cutoff`` or more (difflib's
+    ratio); only those within 0.1 of the closest are kept.
+    """
+    scored = sorted(((difflib.SequenceMatcher(None, word, k).ratio(), k) for k in set(known)),
+                    key=lambda rk: (-rk[0], rk[1]))
+    scored = [(r, k) for r, k in scored if r >= cutoff]
+    return [k for r, k in scored if r >= scored[0][0] - 0.1][:3] if scored else []
+
+
+def either(words: Sequence[str]) -> str:
+    """``X``, ``X or Y``, ``X, Y or Z``."""
+    if len(words) < 2:
+        return "".join(words)
+    return f"{', '.join(words[:-1])} or {words[-1]}"
+
+
+def did_you_mean(word: str, known: Iterable[str]) -> str:
+    """`` (did you mean X?)`` with the nearest known words, or ``""`` when none is close."""
+    close = closest(word, known)
+    return f" (did you mean {either(close)}?)" if close else ""
+
+
+def option_hint(word: str, known: Iterable[str]) -> str:
+    """`` (did you mean X?)`` for an unknown option: its new name if it was renamed, else the nearest.
+
+    Beside a new name, only options that differ by a letter or two are named.
+    """
+    known = list(known)
+    renamed = RENAMED.get(word)
+    if renamed not in known:
+        return did_you_mean(word, known)
+    others = closest(word, [k for k in known if k != renamed], cutoff=0.85)
+    return f" (did you mean {either([renamed, *others])}?)"
+
+
+_CHOICE = re.compile(r"invalid choice: '(?P<word>[^']*)' \(choose from (?P<known>.*)\)$")
+
 
 class _Parser(argparse.ArgumentParser):
-    """argparse that reports a usage problem as one line and exit code 2."""
+    """argparse that never abbreviates and reports a usage problem as one line, exit code 2."""
 
-    def error(self, message: str) -> None:  # type: ignore[override]
+    def __init__(self, *args: Any, **kwargs: Any) -> None:
+        # "--sample 1%" must never be taken for "--samples".
+        kwargs["allow_abbrev"] = False
+        super().__init__(*args, **kwargs)
+
+    @property
+    def where(self) -> str:
+        """The subcommand's name, or "" for the top-level parser."""
+        return self.prog.removeprefix("stepper").strip()
+
+    def fail(self, message: str) -> NoReturn:
         # The boundary prints "stepper: " itself; keep only the subcommand's name.
-        where = self.prog.removeprefix("stepper").strip()
-        raise StepperError(f"{where}: {message}" if where else message)
+        raise UsageError(f"{self.where}: {message}" if self.where else message)
+
+    def error(self, message: str) -> NoReturn:
+        match = _CHOICE.search(message)
+        if match:
+            close = closest(match["word"], (k.strip().strip("'") for k in match["known"].split(",")))
+            if close:
+                message = f"{message[:-1]}; did you mean {either(close)}?)"
+        self.fail(message)
+
+    def option_names(self) -> list[str]:
+        return [name for action in self._actions for name in action.option_strings]
+
+    def unrecognized(self, extras: list[str]) -> NoReturn:
+        """One line for arguments nobody took: the first unknown option and the nearest known ones."""
+        options = [e for e in extras if e.startswith("-") and e != "-"]
+        if options:
+            word = options[0].split("=", 1)[0]
+            self.fail(f"unknown option {word}{option_hint(word, self.option_names())}")
+        self.fail(f"unexpected argument {extras[0]!r}")
+
+
+class _TopParser(_Parser):
+    """The ``stepper`` parser: routes unknown arguments to the subcommand that got them."""
+
+    def parse_args(self, args: Sequence[str] | None = None,  # type: ignore[override]
+                   namespace: argparse.Namespace | None = None) -> argparse.Namespace:
+        parsed, extras = self.parse_known_args(args, namespace)
+        if extras:
+            sub = self.subparsers.get(getattr(parsed, "command", None) or "")
+            (sub or self).unrecognized(extras)
+        return parsed
+
+    @property
+    def subparsers(self) -> dict[str, _Parser]:
+        for action in self._actions:
+            if isinstance(action, argparse._SubParsersAction):
+                return dict(action.choices)
+        return {}
 
 
 def build_parser() -> argparse.ArgumentParser:
-    parser = _Parser(
+    parser = _TopParser(
         prog="stepper",
         description="See every weight's slope, check it against finite differences, "
-        "and step gradient descent by hand.",
+        "and step gradient descent by hand. 'stepper MODEL' opens MODEL in the app.",
     )
     parser.add_argument("--version", action="version", version=f"stepper {__version__}")
     subs = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
@@ -54,6 +162,48 @@ def build_parser() -> argparse.ArgumentParser:
             raise
         module.add_parser(subs)
     return parser
+
+
+def route(parser: argparse.ArgumentParser, argv: list[str]) -> list[str]:
+    """``argv`` with the default subcommand put in front where the user left it out.
+
+    ``stepper`` alone, ``stepper MODEL ...`` and ``stepper --rate 2 ...`` mean
+    ``stepper open ...``. A first word that is neither a command nor a model is
+    refused with the nearest commands and bundled scenarios.
+    """
+    if not argv:
+        return [DEFAULT_COMMAND]
+    first = argv[0]
+    if first in COMMANDS or first in _TOP_OPTIONS or first == "--":
+        return argv
+    if first.startswith("-"):
+        word = first.split("=", 1)[0]
+        opened = parser.subparsers[DEFAULT_COMMAND] if isinstance(parser, _TopParser) else None
+        if opened is not None and word not in opened.option_names():
+            raise UsageError(f"unknown option {word}{option_hint(word, [*_TOP_OPTIONS, *opened.option_names()])}")
+        return [DEFAULT_COMMAND, *argv]
+    if _looks_like_model(first):
+        return [DEFAULT_COMMAND, *argv]
+    from stepper.scenarios import scenario_names
+
+    scenarios = scenario_names()
+    hint = closest(first, [*COMMANDS, *scenarios])
+    if hint:
+        raise UsageError(f"{first!r} is neither a command nor a model: did you mean {either(hint)}?")
+    raise UsageError(f"{first!r} is neither a command ({', '.join(COMMANDS)}) nor a model file, a scenario "
+                     f"folder or a bundled scenario ({', '.join(scenarios)})")
+
+
+def _looks_like_model(word: str) -> bool:
+    """A path that exists, a name meant as a path, or a bundled scenario's name."""
+    from stepper.scenarios import scenario_names
+
+    if "/" in word or os.sep in word or word.endswith(".toml") or word in scenario_names():
+        return True
+    try:
+        return Path(word).exists()
+    except (OSError, ValueError):
+        return False
 
 
 def _use_cores() -> None:
@@ -70,9 +220,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     _use_cores()
     try:
         parser = build_parser()
-        if not args_list:
-            args_list = ["open"]
-        args = parser.parse_args(args_list)
+        args = parser.parse_args(route(parser, args_list))
         if args.command is None:
             parser.print_help()
             return 2

@@ -77,7 +77,7 @@ def test_worst_lists_only_n_weights(capsys: pytest.CaptureFixture[str], write_mo
 
 def test_json_document(capsys: pytest.CaptureFixture[str], write_model: WriteModel) -> None:
     path = write_model(MODEL, DATA)
-    code, doc = run_json(capsys, str(path), "--method", "forward", "--step", "1e-7")
+    code, doc = run_json(capsys, str(path), "--method", "forward", "--delta", "1e-7")
     assert code == 0
     model = doc["model"]
     assert model["name"] == "cli net" and model["loss"] == "mean_squared_error"
@@ -265,11 +265,11 @@ def test_data_mistake(capsys: pytest.CaptureFixture[str], tmp_path: Path, write_
                                          ("-1e-6", "must be a positive number"),
                                          ("nan", "must be a positive number"),
                                          ("inf", "must be a positive number")])
-def test_bad_step(capsys: pytest.CaptureFixture[str], tmp_path: Path, write_model: WriteModel, step: str,
+def test_bad_delta(capsys: pytest.CaptureFixture[str], tmp_path: Path, write_model: WriteModel, step: str,
                   reason: str) -> None:
     path = write_model(MODEL, DATA)
-    assert bad(capsys, tmp_path, str(path), f"--step={step}") == (
-        f"stepper: check: argument --step: {step!r} {reason}")
+    assert bad(capsys, tmp_path, str(path), f"--delta={step}") == (
+        f"stepper: check: argument --delta: {step!r} {reason}")
 
 
 def test_bad_method(capsys: pytest.CaptureFixture[str], tmp_path: Path, write_model: WriteModel) -> None:

@@ -183,7 +183,7 @@ def test_custom_layer_parameters_are_refused() -> None:
 
 
 def test_explain_command_shows_factors_and_their_sum(capsys) -> None:
-    code = cli.main(["explain", str(SCENARIOS / "bakery-demand"), "L1.W[3,2]", "--sample", "5"])
+    code = cli.main(["explain", str(SCENARIOS / "bakery-demand"), "L1.W[3,2]", "--sample-index", "5"])
     out = capsys.readouterr().out
     assert code == 0
     assert "weight from input 3 (footfall) to unit 2 of layer 1 (dense 4->6 tanh)" in out
@@ -204,5 +204,5 @@ def test_explain_command_json_and_its_errors(capsys) -> None:
         "stepper: L2.W[0,0] belongs to a custom layer (custom 5->3 gate.py:GatedUnits), "
         "which has no units to break its slope down by\n"
     )
-    assert cli.main(["explain", str(model), "L1.W[0,0]", "--sample", "999"]) == 2
-    assert capsys.readouterr().err == "stepper: --sample 999: the training set has samples 0 to 175\n"
+    assert cli.main(["explain", str(model), "L1.W[0,0]", "--sample-index", "999"]) == 2
+    assert capsys.readouterr().err == "stepper: --sample-index 999: the training set has samples 0 to 175\n"

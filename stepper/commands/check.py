@@ -5,18 +5,21 @@ from __future__ import annotations
 import argparse
 import json
 import sys
+from pathlib import Path
 from typing import Any
 
 import numpy as np
 
 from stepper.commands.common import (
     add_model_argument,
+    add_resume_option,
     add_slope_options,
     fmt,
     positive_float,
     load,
     positive_int,
     progress_printer,
+    resumed_weights,
     sample_limit,
 )
 from stepper.core.compare import VERDICTS
@@ -27,6 +30,9 @@ from stepper.core.layers import Dense
 from stepper.core.network import Network
 from stepper.core.numeric import run_to_end
 from stepper.formats.model_file import Setup
+
+#: Rate for the layer health when neither --rate nor a checkpoint gives one (common practice).
+HEALTH_RATE = 0.1
 
 
 def add_parser(subs: Any) -> None:
@@ -39,9 +45,10 @@ def add_parser(subs: Any) -> None:
     )
     add_model_argument(p)
     add_slope_options(p)
-    p.add_argument("--rate", type=positive_float, default=0.1, metavar="R",
-                   help="rate for the layer health's update-to-weight ratios (default 0.1, "
-                   "common practice)")
+    add_resume_option(p, help="check the slopes at a checkpoint's weights instead of the model's start")
+    p.add_argument("--rate", type=positive_float, default=None, metavar="R",
+                   help=f"rate for the layer health's update-to-weight ratios (default {HEALTH_RATE}, "
+                   "common practice, or the checkpoint's with --resume)")
     p.add_argument("--input-samples", type=positive_int, default=DEFAULT_SAMPLES, metavar="N",
                    help=f"samples on which custom layers' input slopes are checked (default {DEFAULT_SAMPLES})")
     p.add_argument("--json", action="store_true", help="print one JSON document instead of a table")
@@ -54,22 +61,24 @@ def handle(args: argparse.Namespace) -> int:
     setup = load(args)
     X, Y = sample_limit(setup, args.samples)
     net = setup.network
+    theta, rate = resumed_weights(setup, args.resume, args.rate, HEALTH_RATE)
     # Overflow and NaN show up in the report (a non-finite slope disagrees);
     # numpy's warnings about them would only add lines of noise on stderr.
     with np.errstate(over="ignore", invalid="ignore", divide="ignore", under="ignore"):
         result = run_to_end(
-            iter_check(setup.network, setup.theta0, X, Y, args.method, args.step),
+            iter_check(setup.network, theta, X, Y, args.method, args.delta),
             progress_printer("numeric slopes"),
         )
         assert result is not None
-        health = layer_health(net, setup.theta0, X, Y, args.rate)
+        health = layer_health(net, theta, X, Y, rate)
         inputs = [
-            check_input_slopes(net, setup.theta0, X, Y, i, args.input_samples, args.method, args.step)
+            check_input_slopes(net, theta, X, Y, i, args.input_samples, args.method, args.delta)
             for i, layer in enumerate(net.layers) if not isinstance(layer, Dense)
         ]
     passed = result.passed and all(c.passed for c in inputs)
     if args.json:
-        doc = check_document(setup, result, X.shape[0])
+        doc = check_document(setup, result, X.shape[0], theta)
+        doc["checkpoint"] = None if args.resume is None else str(args.resume)
         doc["passed"] = passed
         doc["input_slopes"] = [input_slopes_document(c) for c in inputs]
         doc["health"] = health_document(health)
@@ -77,7 +86,7 @@ def handle(args: argparse.Namespace) -> int:
         json.dump(_json_safe(doc), sys.stdout, indent=1, allow_nan=False)
         sys.stdout.write("\n")
     else:
-        print_report(setup, result, X.shape[0], args.worst, inputs)
+        print_report(setup, result, X.shape[0], args.worst, inputs, theta, args.resume)
         print_health(health)
     return 0 if passed else 1
 
@@ -97,8 +106,11 @@ def layer_summary(net: Network) -> list[dict[str, Any]]:
     return out
 
 
-def check_document(setup: Setup, result: CheckResult, n_samples: int) -> dict[str, Any]:
-    """The JSON form of a check."""
+def check_document(setup: Setup, result: CheckResult, n_samples: int,
+                   theta: np.ndarray[Any, Any] | None = None) -> dict[str, Any]:
+    """The JSON form of a check at ``theta`` (``(n_params,)``; the model's initial values when None)."""
+    if theta is None:
+        theta = setup.theta0
     net = setup.network
     layout = net.layout
     weights = []
@@ -109,7 +121,7 @@ def check_document(setup: Setup, result: CheckResult, n_samples: int) -> dict[st
             "layer": block.layer + 1,
             "kind": block.kind,
             "indices": list(layout.indices(i)),
-            "value": float(setup.theta0[i]),
+            "value": float(theta[i]),
             "analytic": float(result.analytic[i]),
             "numeric": _finite_or_none(result.numeric[i]),
             "relative_error": _finite_or_none(result.rel_error[i]),
@@ -150,7 +162,11 @@ def _json_safe(value: Any) -> Any:
 
 
 def print_report(setup: Setup, result: CheckResult, n_samples: int, worst: int | None,
-                 inputs: list[InputSlopeCheck] | None = None) -> None:
+                 inputs: list[InputSlopeCheck] | None = None, theta: np.ndarray[Any, Any] | None = None,
+                 checkpoint: Path | None = None) -> None:
+    """The table, then a summary; ``theta`` ``(n_params,)`` is where the slopes were taken."""
+    if theta is None:
+        theta = setup.theta0
     net = setup.network
     names = net.layout.names
     order = np.arange(net.n_params)
@@ -160,7 +176,10 @@ def print_report(setup: Setup, result: CheckResult, n_samples: int, worst: int |
     width = max(12, max(len(names[i]) for i in order))
     out = sys.stdout
     out.write(f"{setup.name}: {net.n_params} parameters, {n_samples} samples, loss {net.loss}, "
-              f"{result.method} differences, h = {result.h:.3g}\n\n")
+              f"{result.method} differences, h = {result.h:.3g}\n")
+    if checkpoint is not None:
+        out.write(f"weights from {checkpoint}\n")
+    out.write("\n")
     header = (f"{'weight'.ljust(width)}  {'value':>12}  {'analytic':>12}  {'numeric':>12}  "
               f"{'rel. error':>10}  verdict")
     out.write(header + "\n")
@@ -169,7 +188,7 @@ def print_report(setup: Setup, result: CheckResult, n_samples: int, worst: int |
         rel = result.rel_error[i]
         rel_text = "-" if rel != rel else f"{rel:.2e}"
         out.write(
-            f"{names[i].ljust(width)}  {fmt(setup.theta0[i])}  {fmt(result.analytic[i])}  "
+            f"{names[i].ljust(width)}  {fmt(theta[i])}  {fmt(result.analytic[i])}  "
             f"{fmt(result.numeric[i])}  {rel_text:>10}  {_mark(str(result.verdict[i]))}\n"
         )
     counts = result.counts

@@ -1,10 +1,17 @@
-"""Options and helpers shared by several subcommands."""
+"""Options and helpers shared by several subcommands.
+
+The command-line vocabulary is fixed here, so that every subcommand speaks it
+the same way: ``--resume CK`` starts from a checkpoint's weights,
+``--samples N`` uses the first N training samples, ``--delta H`` is the
+finite-difference step, ``--method`` central or forward differences.
+"""
 
 from __future__ import annotations
 
 import argparse
 import math
 import sys
+from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -27,11 +34,19 @@ def add_model_argument(parser: argparse.ArgumentParser) -> None:
 def add_slope_options(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--method", choices=METHODS, default="central",
                         help="finite differences: central (default) or forward")
-    parser.add_argument("--step", type=positive_float, default=None, metavar="H",
-                        help="finite-difference step h (default: cube root of machine "
+    parser.add_argument("--delta", type=positive_float, default=None, metavar="H",
+                        help="finite-difference step h, absolute (default: cube root of machine "
                         "epsilon for central, square root for forward)")
-    parser.add_argument("--samples", type=positive_int, default=None, metavar="N",
-                        help="use only the first N training samples")
+    add_samples_option(parser)
+
+
+def add_samples_option(parser: argparse.ArgumentParser, help: str = "use only the first N training samples") -> None:
+    parser.add_argument("--samples", type=positive_int, default=None, metavar="N", help=help)
+
+
+def add_resume_option(parser: argparse.ArgumentParser, help: str = "start from a checkpoint's weights "
+                      "instead of the model's initial values") -> None:
+    parser.add_argument("--resume", type=Path, default=None, metavar="CHECKPOINT", help=help)
 
 
 def positive_float(text: str) -> float:
@@ -56,6 +71,28 @@ def positive_int(text: str) -> int:
 
 def load(args: argparse.Namespace) -> Setup:
     return load_setup(resolve_model(args.model))
+
+
+def resumed_weights(setup: Setup, checkpoint: Path | None, rate: float | None,
+                    default_rate: float) -> tuple[np.ndarray[Any, Any], float]:
+    """The weights to start from and the rate: the model's or ``--resume``'s.
+
+    Returns ``(theta, rate)``: ``theta`` of shape ``(n_params,)`` is the model's
+    initial values, or the checkpoint's (checked against the model's layout);
+    the rate is ``rate`` when given, else the checkpoint's, else ``default_rate``.
+    """
+    theta = setup.theta0
+    saved_rate: float | None = None
+    if checkpoint is not None:
+        from stepper.formats.checkpoint import load_checkpoint
+
+        data = load_checkpoint(checkpoint, setup.network.layout)
+        theta = data.theta
+        value = data.meta.get("rate")
+        if isinstance(value, (int, float)) and math.isfinite(value) and value > 0:
+            saved_rate = float(value)
+    chosen = rate if rate is not None else saved_rate if saved_rate is not None else default_rate
+    return theta, chosen
 
 
 def sample_limit(setup: Setup, limit: int | None) -> tuple[np.ndarray[Any, Any], np.ndarray[Any, Any]]:

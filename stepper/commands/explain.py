@@ -5,13 +5,19 @@ from __future__ import annotations
 import argparse
 import json
 import sys
-from pathlib import Path
 from typing import Any
 
 import numpy as np
 
-from stepper.commands.common import add_model_argument, load, positive_int, sample_limit
-from stepper.commands.slice import weight_index, weights_and_rate
+from stepper.commands.common import (
+    add_model_argument,
+    add_resume_option,
+    add_samples_option,
+    load,
+    resumed_weights,
+    sample_limit,
+)
+from stepper.commands.slice import DEFAULT_RATE, weight_index
 from stepper.core.breakdown import Breakdown, slope_breakdown
 from stepper.errors import UsageError
 from stepper.formats.model_file import Setup
@@ -28,26 +34,24 @@ def add_parser(subs: Any) -> None:
     )
     add_model_argument(p)
     p.add_argument("weight", help="the weight's name, e.g. L1.W[0,2] or L2.b[0]")
-    p.add_argument("--sample", type=int, default=None, metavar="K",
+    p.add_argument("--sample-index", type=int, default=None, metavar="K",
                    help="show training sample K (0-based) on its own (default: the one that "
                    "contributes most)")
-    p.add_argument("--samples", type=positive_int, default=None, metavar="N",
-                   help="use only the first N training samples")
-    p.add_argument("--checkpoint", type=Path, default=None, metavar="PATH",
-                   help="take the weights from a checkpoint instead of the model's start")
+    add_samples_option(p)
+    add_resume_option(p, help="take the weights from a checkpoint instead of the model's start")
     p.add_argument("--json", action="store_true", help="print one JSON document instead of text")
     p.set_defaults(handler=handle)
 
 
 def handle(args: argparse.Namespace) -> int:
     setup = load(args)
-    theta, _ = weights_and_rate(setup, args.checkpoint, None)
+    theta, _ = resumed_weights(setup, args.resume, None, DEFAULT_RATE)
     index = weight_index(setup, args.weight)
     X, Y = sample_limit(setup, args.samples)
-    if args.sample is not None and not 0 <= args.sample < X.shape[0]:
-        raise UsageError(f"--sample {args.sample}: the training set has samples 0 to {X.shape[0] - 1}")
+    if args.sample_index is not None and not 0 <= args.sample_index < X.shape[0]:
+        raise UsageError(f"--sample-index {args.sample_index}: the training set has samples 0 to {X.shape[0] - 1}")
     try:
-        result = slope_breakdown(setup.network, theta, X, Y, index, args.sample)
+        result = slope_breakdown(setup.network, theta, X, Y, index, args.sample_index)
     except ValueError as exc:
         raise UsageError(str(exc)) from None
     name = setup.network.layout.names[index]

@@ -11,7 +11,16 @@ from typing import Any
 
 import numpy as np
 
-from stepper.commands.common import add_model_argument, load, positive_float, positive_int, sample_limit
+from stepper.commands.common import (
+    add_model_argument,
+    add_resume_option,
+    add_samples_option,
+    load,
+    positive_float,
+    positive_int,
+    resumed_weights,
+    sample_limit,
+)
 from stepper.core.slice import DEFAULT_POINTS, CostSlice, cost_slice
 from stepper.errors import UsageError
 from stepper.formats.model_file import Setup
@@ -51,10 +60,8 @@ def add_parser(subs: Any) -> None:
                    help="sweep the weight over value +- S (default: max(1, |value|, 1.5 |rate x slope|))")
     p.add_argument("--points", type=_at_least_two, default=DEFAULT_POINTS, metavar="N",
                    help=f"number of sweep points (default {DEFAULT_POINTS})")
-    p.add_argument("--samples", type=positive_int, default=None, metavar="N",
-                   help="use only the first N training samples")
-    p.add_argument("--checkpoint", type=Path, default=None, metavar="PATH",
-                   help="take the weights (and rate) from a checkpoint instead of the model's start")
+    add_samples_option(p)
+    add_resume_option(p, help="take the weights (and rate) from a checkpoint instead of the model's start")
     p.add_argument("--plot", default=None, metavar="FILE",
                    help="write the plot as plain text to FILE ('-' for standard output)")
     p.add_argument("--size", type=_size, default=PLOT_SIZE, metavar="WxH",
@@ -65,7 +72,7 @@ def add_parser(subs: Any) -> None:
 
 def handle(args: argparse.Namespace) -> int:
     setup = load(args)
-    theta, rate = weights_and_rate(setup, args.checkpoint, args.rate)
+    theta, rate = resumed_weights(setup, args.resume, args.rate, DEFAULT_RATE)
     index = weight_index(setup, args.weight)
     X, Y = sample_limit(setup, args.samples)
     result = cost_slice(setup.network, theta, X, Y, index, rate, args.span, args.points)
@@ -101,22 +108,6 @@ def weight_index(setup: Setup, text: str) -> int:
         arrays = ", ".join(f"{b.prefix} {'x'.join(str(s) for s in b.shape)}" for b in layout.blocks)
         raise UsageError(f"no weight named {text!r} in {setup.path} (its arrays: {arrays}; "
                          "a name looks like L1.W[0,2] or L1.b[0])") from None
-
-
-def weights_and_rate(setup: Setup, checkpoint: Path | None, rate: float | None) -> tuple[np.ndarray[Any, Any], float]:
-    """The model's starting weights, or a checkpoint's; the rate given, the checkpoint's, or the default."""
-    theta = setup.theta0
-    saved_rate: float | None = None
-    if checkpoint is not None:
-        from stepper.formats.checkpoint import load_checkpoint
-
-        data = load_checkpoint(checkpoint, setup.network.layout)
-        theta = data.theta
-        value = data.meta.get("rate")
-        if isinstance(value, (int, float)) and math.isfinite(value) and value > 0:
-            saved_rate = float(value)
-    chosen = rate if rate is not None else saved_rate if saved_rate is not None else DEFAULT_RATE
-    return theta, chosen
 
 
 # -- output ------------------------------------------------------------------------------------
