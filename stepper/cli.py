@@ -52,9 +52,11 @@ def closest(word: str, known: Iterable[str], cutoff: float = 0.6) -> list[str]:
     """The known words closest to ``word``, closest first (at most three).
 
     A word counts as close at a similarity of ``cutoff`` or more (difflib's
-    ratio); only those within 0.1 of the closest are kept.
+    ratio, leading dashes left out); only those within 0.1 of the closest are kept.
     """
-    scored = sorted(((difflib.SequenceMatcher(None, word, k).ratio(), k) for k in set(known)),
+    # Options are compared without their dashes, which every one of them shares.
+    scored = sorted(((difflib.SequenceMatcher(None, word.lstrip("-"), k.lstrip("-")).ratio(), k)
+                     for k in set(known)),
                     key=lambda rk: (-rk[0], rk[1]))
     scored = [(r, k) for r, k in scored if r >= cutoff]
     return [k for r, k in scored if r >= scored[0][0] - 0.1][:3] if scored else []

@@ -12,7 +12,7 @@ import argparse
 import math
 import sys
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
@@ -20,6 +20,9 @@ from stepper.core.numeric import METHODS
 from stepper.errors import UsageError
 from stepper.formats.model_file import Setup, load_setup
 from stepper.scenarios import resolve_model
+
+if TYPE_CHECKING:
+    from stepper.session import Session
 
 
 def add_model_argument(parser: argparse.ArgumentParser) -> None:
@@ -47,6 +50,40 @@ def add_samples_option(parser: argparse.ArgumentParser, help: str = "use only th
 def add_resume_option(parser: argparse.ArgumentParser, help: str = "start from a checkpoint's weights "
                       "instead of the model's initial values") -> None:
     parser.add_argument("--resume", type=Path, default=None, metavar="CHECKPOINT", help=help)
+
+
+def add_step_options(parser: argparse.ArgumentParser, purpose: str) -> None:
+    """How steps are made, the same in ``open`` and ``run``: rate, rule, slopes, batch and its seed."""
+    from stepper.core.optimizers import RULES
+    from stepper.session import SLOPE_SOURCES
+
+    parser.add_argument("--rate", type=positive_float, default=None, metavar="R",
+                        help=f"learning rate {purpose} (default 0.1, or the checkpoint's with --resume)")
+    parser.add_argument("--rule", choices=RULES, default=None,
+                        help=f"update rule {purpose} (default gd, or the checkpoint's)")
+    parser.add_argument("--slopes", choices=SLOPE_SOURCES, default=None,
+                        help="slopes from backpropagation (analytic, default) or finite differences (numeric)")
+    parser.add_argument("--batch", type=positive_int, default=None, metavar="N",
+                        help="mini-batches of N samples, drawn with a seeded shuffle (default: full batch)")
+    parser.add_argument("--seed", type=int, default=0, help="seed for mini-batch draws (default 0)")
+
+
+def apply_step_options(session: Session, args: argparse.Namespace) -> None:
+    """``--rate``, ``--rule``, ``--slopes`` and ``--batch`` where they differ from the session's (each undoable).
+
+    A batch larger than the training set is the full batch.
+    """
+    if args.rate is not None and args.rate != session.rate:
+        session.set_rate(args.rate)
+    if args.rule is not None and args.rule != session.rule:
+        session.set_rule(args.rule)
+    if args.slopes is not None and args.slopes != session.slope_source:
+        session.set_slope_source(args.slopes)
+    if args.batch is not None:
+        n = session.setup.data.n_train
+        batch = None if args.batch >= n else args.batch
+        if batch != session.batch_size:
+            session.set_batch_size(batch)
 
 
 def positive_float(text: str) -> float:

@@ -9,8 +9,16 @@ import sys
 from pathlib import Path
 from typing import Any
 
-from stepper.commands.common import add_model_argument, load, positive_float, positive_int, sample_limit
-from stepper.core.optimizers import RULES
+from stepper.commands.common import (
+    add_model_argument,
+    add_resume_option,
+    add_samples_option,
+    add_step_options,
+    apply_step_options,
+    load,
+    positive_float,
+    sample_limit,
+)
 from stepper.errors import UsageError
 from stepper.formats.model_file import Setup
 
@@ -30,12 +38,9 @@ def add_parser(subs: Any) -> None:
         "and save. Press ? in the app for the list of keys.",
     )
     add_model_argument(p)
-    p.add_argument("--resume", type=Path, default=None, metavar="CHECKPOINT", help="start from a checkpoint")
-    p.add_argument("--rate", type=positive_float, default=None, metavar="R",
-                   help="learning rate to start with (default 0.1, or the checkpoint's with --resume)")
-    p.add_argument("--rule", choices=RULES, default=None, help="update rule to start with (default gd)")
-    p.add_argument("--samples", type=positive_int, default=None, metavar="N",
-                   help="train on the first N training samples only (not with --journal)")
+    add_resume_option(p, help="start from a checkpoint (its weights, settings and cost history)")
+    add_step_options(p, "to start with")
+    add_samples_option(p, help="train on the first N training samples only (not with --journal)")
     p.add_argument("--journal", type=Path, default=None, metavar="PATH",
                    help="append every operation to this journal file, for stepper replay (default: "
                    "a new journal-<time>.jsonl beside the checkpoints)")
@@ -75,20 +80,19 @@ def handle(args: argparse.Namespace) -> int:
     elif args.journal is None:
         args.journal = default_journal_for(setup.path)
 
+    batch = None if args.batch is None else min(args.batch, setup.data.n_train)
     if args.resume is None:
         # Starting settings go to the constructor (and the journal's header), so
-        # a fresh session with --rate or --rule has no unsaved changes yet.
-        session = Session(setup, journal=args.journal,
-                          rate=args.rate if args.rate is not None else 0.1, rule=args.rule or "gd")
+        # a fresh session with --rate, --rule, --slopes or --batch has no unsaved changes yet.
+        session = Session(setup, journal=args.journal, rate=args.rate if args.rate is not None else 0.1,
+                          rule=args.rule or "gd", seed=args.seed, slope_source=args.slopes or "analytic",
+                          batch_size=batch)
     else:
-        session = Session(setup, journal=args.journal)
+        session = Session(setup, journal=args.journal, seed=args.seed)
     try:
         if args.resume is not None:
             session.load_checkpoint(args.resume)
-            if args.rate is not None:
-                session.set_rate(args.rate)
-            if args.rule is not None and args.rule != session.rule:
-                session.set_rule(args.rule)
+            apply_step_options(session, args)
         session.set_refresh_after_step(bool(args.check_every_step))
         return run_app(session, args.log or default_log_file(), noise=args.noise)
     finally:

@@ -40,8 +40,11 @@ def replay(journal: Path, model: Path | None = None, force: bool = False) -> Ses
         )
     start = header.get("start") or {}
     try:
+        batch = start.get("batch_size")
         session = Session(setup, rate=float(start.get("rate", 0.1)), rule=str(start.get("rule", "gd")),
-                          seed=int(start.get("seed", 0)))
+                          seed=int(start.get("seed", 0)),
+                          slope_source=str(start.get("slope_source", "analytic")),
+                          batch_size=None if batch is None else int(batch))
     except (AttributeError, TypeError, ValueError, StepperError) as exc:
         raise CheckpointError(f"{journal}: line 1: the starting settings are not valid ({exc})") from None
     for number, entry in entries:

@@ -11,11 +11,17 @@ from typing import Any
 
 import numpy as np
 
-from stepper.commands.common import add_model_argument, load, positive_float, positive_int
+from stepper.commands.common import (
+    add_model_argument,
+    add_resume_option,
+    add_step_options,
+    apply_step_options,
+    load,
+    positive_int,
+)
 from stepper.core.numeric import run_to_end
-from stepper.core.optimizers import RULES
 from stepper.errors import DivergenceError
-from stepper.session import SLOPE_SOURCES, Session
+from stepper.session import Session
 
 
 def add_parser(subs: Any) -> None:
@@ -28,17 +34,10 @@ def add_parser(subs: Any) -> None:
     )
     add_model_argument(p)
     p.add_argument("--steps", type=positive_int, default=100, metavar="N", help="number of updates (default 100)")
-    p.add_argument("--rate", type=positive_float, default=None, metavar="R",
-                   help="learning rate (default 0.1, or the checkpoint's with --resume)")
-    p.add_argument("--rule", choices=RULES, default=None, help="update rule (default gd)")
-    p.add_argument("--slopes", choices=SLOPE_SOURCES, default=None,
-                   help="slopes from backpropagation (analytic, default) or finite differences (numeric)")
-    p.add_argument("--batch", type=positive_int, default=None, metavar="N",
-                   help="mini-batches of N samples, drawn with a seeded shuffle (default: full batch)")
+    add_step_options(p, "for the run")
     p.add_argument("--freeze", action="append", default=[], metavar="PATTERN",
                    help="freeze parameters whose names match, e.g. 'L1.b[*]' (repeatable)")
-    p.add_argument("--seed", type=int, default=0, help="seed for mini-batch draws (default 0)")
-    p.add_argument("--resume", type=Path, default=None, metavar="CHECKPOINT", help="start from a checkpoint")
+    add_resume_option(p, help="start from a checkpoint (its weights, settings and cost history)")
     p.add_argument("--save", type=Path, default=None, metavar="PATH", help="write a checkpoint at the end")
     p.add_argument("--journal", type=Path, default=None, metavar="PATH",
                    help="append every operation to this journal file (for stepper replay)")
@@ -71,14 +70,7 @@ def handle(args: argparse.Namespace) -> int:
 def _run(session: Session, args: argparse.Namespace) -> int:
     if args.resume is not None:
         session.load_checkpoint(args.resume)
-    if args.rate is not None:
-        session.set_rate(args.rate)
-    if args.rule is not None and args.rule != session.rule:
-        session.set_rule(args.rule)
-    if args.slopes is not None:
-        session.set_slope_source(args.slopes)
-    if args.batch is not None:
-        session.set_batch_size(min(args.batch, session.setup.data.n_train))
+    apply_step_options(session, args)
     for pattern in args.freeze:
         session.freeze_matching(pattern)
     start_theta = session.theta.copy()

@@ -3,10 +3,11 @@
 The first line is a header::
 
     {"journal": "stepper", "version": 1, "model": "/abs/path/model.toml", "digest": "<sha256>",
-     "start": {"rate": 0.1, "rule": "gd", "seed": 0}}
+     "start": {"rate": 0.1, "rule": "gd", "seed": 0, "slope_source": "analytic", "batch_size": null}}
 
 ``start`` holds the settings the session began with (its seed decides the
-mini-batch draws), so a replay begins where the session began.
+mini-batch draws), so a replay begins where the session began; a key that an
+older journal lacks takes its default.
 
 Each further line is one operation with its arguments, e.g.
 ``{"op": "step", "n": 10}`` or ``{"op": "perturb", "scale": 0.01, "seed": 42,

@@ -93,6 +93,8 @@ class SessionCore:
         rate: float = 0.1,
         rule: str = "gd",
         seed: int = 0,
+        slope_source: str = "analytic",
+        batch_size: int | None = None,
     ) -> None:
         self.setup = setup
         self.net = setup.network
@@ -104,8 +106,8 @@ class SessionCore:
         self.rule_state = fresh_state(rule, n)
         self.step_count = 0
         self.rate = _check_rate(rate)
-        self.slope_source = "analytic"
-        self.batch_size: int | None = None
+        self.slope_source = _check_slope_source(slope_source)
+        self.batch_size: int | None = _check_batch_size(batch_size, setup.data.n_train)
         self.seed = seed
         self.batch_rng = np.random.default_rng(seed)
         self.noise_rng = np.random.default_rng(seed + 1)
@@ -123,7 +125,8 @@ class SessionCore:
         self.journal: JournalWriter | None = None
         if journal is not None:
             self.journal = JournalWriter(journal, setup.path, setup.digest,
-                                         {"rate": self.rate, "rule": self.rule, "seed": self.seed})
+                                         {"rate": self.rate, "rule": self.rule, "seed": self.seed,
+                                          "slope_source": self.slope_source, "batch_size": self.batch_size})
 
     # -- read-only views -------------------------------------------------------------------
 
@@ -309,3 +312,16 @@ def _check_rate(rate: float) -> float:
     if not (isinstance(rate, (int, float)) and math.isfinite(rate) and rate > 0):
         raise UsageError(f"learning rate {rate!r} must be a positive number")
     return float(rate)
+
+
+def _check_slope_source(source: str) -> str:
+    if source not in SLOPE_SOURCES:
+        raise UsageError(f"unknown slope source {source!r} (expected one of: {', '.join(SLOPE_SOURCES)})")
+    return source
+
+
+def _check_batch_size(size: int | None, n_train: int) -> int | None:
+    """``size`` checked against the training set; None (the full batch) for ``n_train`` itself."""
+    if size is not None and not 1 <= size <= n_train:
+        raise UsageError(f"batch size {size} must be between 1 and the {n_train} training samples")
+    return None if size == n_train else size

@@ -11,7 +11,7 @@ from numpy.typing import NDArray
 
 from stepper.core.optimizers import RULES, fresh_state
 from stepper.errors import UsageError
-from stepper.session.core import SLOPE_SOURCES, Array, SessionCore, _Change, _check_rate
+from stepper.session.core import Array, SessionCore, _Change, _check_batch_size, _check_rate, _check_slope_source
 
 
 class Edits(SessionCore):
@@ -35,16 +35,11 @@ class Edits(SessionCore):
         self.last_action = f"update rule {rule}"
 
     def set_slope_source(self, source: str) -> None:
-        if source not in SLOPE_SOURCES:
-            raise UsageError(f"unknown slope source {source!r} (expected one of: {', '.join(SLOPE_SOURCES)})")
+        source = _check_slope_source(source)
         self._setting(f"slopes from {source}", "slope_source", source, {"op": "set_slope_source", "source": source})
 
     def set_batch_size(self, size: int | None) -> None:
-        n = self.setup.data.n_train
-        if size is not None and not 1 <= size <= n:
-            raise UsageError(f"batch size {size} must be between 1 and the {n} training samples")
-        if size == n:
-            size = None
+        size = _check_batch_size(size, self.setup.data.n_train)
         label = "full batch" if size is None else f"mini-batches of {size}"
         self._setting(label, "batch_size", size, {"op": "set_batch_size", "size": size})
 
