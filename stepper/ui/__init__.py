@@ -11,7 +11,11 @@ Modules, one job each:
 - :mod:`stepper.ui.insight`: the figures of the "why" panels, computed by the core from a snapshot.
 - :mod:`stepper.ui.slicepanel`, :mod:`stepper.ui.factorpanel`, :mod:`stepper.ui.healthpanel`:
   the "why" panels: the cost along a weight, its slope's factors, layer health.
-- :mod:`stepper.ui.app`: the app, which owns the session and routes keys to it.
+- :mod:`stepper.ui.app`: the app, which lays out the widgets and wires the keys to the handlers.
+- :mod:`stepper.ui.base`: the app's shared state and helpers (apply an operation, redraw, ask).
+- Key handlers, one concern each: :mod:`stepper.ui.descent`, :mod:`stepper.ui.slopes`,
+  :mod:`stepper.ui.edits`, :mod:`stepper.ui.why`, :mod:`stepper.ui.files`, and
+  :mod:`stepper.ui.jobs` (long work in thread workers).
 
 Widgets render and post messages; only the app calls the session, and only
 the session holds model state.
