@@ -15,9 +15,11 @@ from __future__ import annotations
 
 import logging
 import math
-from typing import TYPE_CHECKING, Any, Callable
+import os
+from typing import TYPE_CHECKING, Any, Callable, Sequence
 
 from textual.app import App
+from textual.filter import LineFilter
 from textual.screen import ModalScreen
 from textual.worker import Worker
 
@@ -28,6 +30,7 @@ from stepper.ui.insight import Figures, InputChecks, SliceFigures
 from stepper.ui.keys import KEYS
 from stepper.ui.panels import RatePanel, StatusLine
 from stepper.ui.snapshot import HistoryArrays, Snapshot, take
+from stepper.ui.theme import THEME, AsciiOnly, NoColour, drawing_mode
 from stepper.ui.weights import WeightTable
 
 if TYPE_CHECKING:
@@ -69,6 +72,17 @@ class AppBase(App[None]):
 
     def __init__(self, session: Session, *, noise: float = DEFAULT_NOISE, default_steps: int = 100) -> None:
         super().__init__()
+        self.register_theme(THEME)
+        self.theme = THEME.name
+        #: How the screen is drawn: "colour", "mono" (NO_COLOR) or "plain" (TERM=dumb); see stepper.ui.theme.
+        self.drawing = drawing_mode(os.environ)
+        if self.drawing != "colour":
+            self.no_color = True  # Textual's :nocolor styles apply (reversed selection, ...)
+        self._filters_added: list[LineFilter] = []
+        if self.drawing != "colour":
+            self._filters_added.append(NoColour())
+        if self.drawing == "plain":
+            self._filters_added.append(AsciiOnly())
         self.session = session
         self.noise = noise
         self.default_steps = default_steps
@@ -91,6 +105,10 @@ class AppBase(App[None]):
         self._last_error: str | None = None
         self._snapshot_problem: str | None = None
         self._worker_waiting = False
+
+    def get_line_filters(self) -> Sequence[LineFilter]:
+        """Textual's filters, then Stepper's: no colour at all (mono, plain), ASCII only (plain)."""
+        return [*super().get_line_filters(), *self._filters_added]
 
     @property
     def table(self) -> WeightTable:

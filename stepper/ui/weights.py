@@ -150,7 +150,9 @@ class WeightTable(ScrollView, can_focus=True):
     WeightTable > .weights--frozen { color: $text-muted; text-style: italic; }
     WeightTable > .weights--disagree { color: $error; text-style: bold; }
     WeightTable > .weights--doubtful { color: $warning; }
-    WeightTable > .weights--stale { color: $text-muted; }
+    WeightTable > .weights--stale { color: $text-muted; text-style: dim; }
+    WeightTable:nocolor > .weights--cursor { text-style: reverse bold; }
+    WeightTable:nocolor > .weights--sorted { text-style: bold underline; }
     """
 
     class Selected(Message):
