@@ -5,6 +5,7 @@ from __future__ import annotations
 import argparse
 import json
 import sys
+import textwrap
 from pathlib import Path
 from typing import Any
 
@@ -23,6 +24,7 @@ from stepper.commands.common import (
     sample_limit,
 )
 from stepper.core.compare import VERDICTS
+from stepper.core.diagnosis import Hint, diagnose
 from stepper.core.gradcheck import CheckResult, iter_check
 from stepper.core.health import RATIO_TYPICAL, HealthReport, layer_health
 from stepper.core.input_slopes import DEFAULT_SAMPLES, InputSlopeCheck, check_input_slopes
@@ -76,17 +78,19 @@ def handle(args: argparse.Namespace) -> int:
             for i, layer in enumerate(net.layers) if not isinstance(layer, Dense)
         ]
     passed = result.passed and all(c.passed for c in inputs)
+    hints = diagnose(net, result, X.shape[0], inputs)
     if args.json:
         doc = check_document(setup, result, X.shape[0], theta)
         doc["checkpoint"] = None if args.resume is None else str(args.resume)
         doc["passed"] = passed
         doc["input_slopes"] = [input_slopes_document(c) for c in inputs]
+        doc["hints"] = [hint_document(h) for h in hints]
         doc["health"] = health_document(health)
         # JSON (RFC 8259) has no NaN or Infinity: non-finite numbers become null.
         json.dump(_json_safe(doc), sys.stdout, indent=1, allow_nan=False)
         sys.stdout.write("\n")
     else:
-        print_report(setup, result, X.shape[0], args.worst, inputs, theta, args.resume)
+        print_report(setup, result, X.shape[0], args.worst, inputs, theta, args.resume, hints)
         print_health(health)
     return 0 if passed else 1
 
@@ -146,6 +150,17 @@ def check_document(setup: Setup, result: CheckResult, n_samples: int,
     }
 
 
+def hint_document(hint: Hint) -> dict[str, Any]:
+    """The JSON form of one likely cause; layers count from 1."""
+    return {
+        "code": hint.code,
+        "text": hint.text,
+        "layer": None if hint.layer is None else hint.layer + 1,
+        "arrays": list(hint.arrays),
+        "ratio": hint.ratio,
+    }
+
+
 def _finite_or_none(value: float) -> float | None:
     return float(value) if np.isfinite(value) else None
 
@@ -163,8 +178,11 @@ def _json_safe(value: Any) -> Any:
 
 def print_report(setup: Setup, result: CheckResult, n_samples: int, worst: int | None,
                  inputs: list[InputSlopeCheck] | None = None, theta: np.ndarray[Any, Any] | None = None,
-                 checkpoint: Path | None = None) -> None:
-    """The table, then a summary; ``theta`` ``(n_params,)`` is where the slopes were taken."""
+                 checkpoint: Path | None = None, hints: list[Hint] | None = None) -> None:
+    """The table, then a summary; ``theta`` ``(n_params,)`` is where the slopes were taken.
+
+    Where slopes disagree the summary gives the likely causes (``hints``) instead of the worst weight.
+    """
     if theta is None:
         theta = setup.theta0
     net = setup.network
@@ -201,7 +219,12 @@ def print_report(setup: Setup, result: CheckResult, n_samples: int, worst: int |
               + ("" if np.isfinite(result.cost) else "  (not a finite number: no slope can be checked here)")
               + "\n")
     out.write("verdicts    " + ", ".join(f"{counts[v]} {v}" for v in VERDICTS) + "\n")
-    out.write(f"worst       {names[w]} (relative error {result.rel_error[w]:.2e}, {result.verdict[w]})\n")
+    if hints:
+        for hint in hints:
+            out.write(textwrap.fill(hint.text, 79, initial_indent="why         ", subsequent_indent=" " * 12,
+                                    break_long_words=False, break_on_hyphens=False) + "\n")
+    else:
+        out.write(f"worst       {names[w]} (relative error {result.rel_error[w]:.2e}, {result.verdict[w]})\n")
     bad_inputs = [f"L{c.layer + 1}" for c in inputs if not c.passed]
     if not result.passed:
         verdict = "FAIL: some slopes disagree"
