@@ -13,6 +13,7 @@ Any other exception is a bug and keeps its traceback.
     ├── CustomLayerError         a user's layer code raised or returned bad shapes
     ├── UsageError               a command-line value or typed value is wrong
     └── DivergenceError          exit 1: a step was refused as non-finite
+        └── RunawayError         exit 1: a run of steps stopped because the cost ran away
 """
 
 from __future__ import annotations
@@ -52,10 +53,19 @@ class UsageError(StepperError):
 
 
 class DivergenceError(StepperError):
-    """A step was refused because the cost or a weight would become non-finite."""
+    """A step was refused because the cost or a weight would become non-finite.
+
+    ``what`` is the message's first part, what happened, without the advice that
+    follows it, for a caller that gives advice of its own (the command line).
+    """
 
     exit_code = 1
 
-    def __init__(self, message: str, names: tuple[str, ...] = ()) -> None:
+    def __init__(self, message: str, names: tuple[str, ...] = (), what: str = "") -> None:
         super().__init__(message)
         self.names = names
+        self.what = what or message
+
+
+class RunawayError(DivergenceError):
+    """A run of steps stopped, its steps kept, because the cost grew past the session's runaway rule."""

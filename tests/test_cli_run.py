@@ -31,7 +31,7 @@ BAKERY = ROOT / "bakery-demand" / "model.toml"
 KILN = ROOT / "kiln-tiny" / "model.toml"
 
 JSON_FIELDS = {
-    "model", "steps_requested", "steps_done", "stopped_early", "refused", "rate", "rule", "slope_source",
+    "model", "steps_requested", "steps_done", "stopped_early", "refused", "runaway", "rate", "rule", "slope_source",
     "batch_size", "cost_before", "cost_after", "validation_before", "validation_after", "moved_most", "checkpoint",
 }
 

@@ -20,6 +20,7 @@ from stepper.core.numeric import METHODS
 from stepper.errors import UsageError
 from stepper.formats.model_file import Setup, load_setup
 from stepper.scenarios import resolve_model
+from stepper.session.runaway import GROWTH, RISES, RUN_ON, RunawayRule
 
 if TYPE_CHECKING:
     from stepper.session import Session
@@ -66,13 +67,30 @@ def add_step_options(parser: argparse.ArgumentParser, purpose: str) -> None:
     parser.add_argument("--batch", type=positive_int, default=None, metavar="N",
                         help="mini-batches of N samples, drawn with a seeded shuffle (default: full batch)")
     parser.add_argument("--seed", type=int, default=0, help="seed for mini-batch draws (default 0)")
+    parser.add_argument("--runaway-growth", type=_growth, default=GROWTH, metavar="F",
+                        help=f"stop a run of steps once the cost exceeds F x its value at the run's start "
+                        f"(default {GROWTH:g})")
+    parser.add_argument("--runaway-rises", type=_rises, default=RISES, metavar="K",
+                        help=f"stop a run of steps once the cost rose K steps in a row and is above its "
+                        f"start (default {RISES}; 0: never)")
+    parser.add_argument("--run-on", action="store_true",
+                        help="no runaway rule: only a step that would be non-finite stops a run")
+
+
+def runaway_rule(args: argparse.Namespace) -> RunawayRule:
+    """The runaway rule the step options ask for."""
+    if args.run_on:
+        return RUN_ON
+    return RunawayRule(args.runaway_growth, args.runaway_rises or None)
 
 
 def apply_step_options(session: Session, args: argparse.Namespace) -> None:
     """``--rate``, ``--rule``, ``--slopes`` and ``--batch`` where they differ from the session's (each undoable).
 
-    A batch larger than the training set is the full batch.
+    A batch larger than the training set is the full batch. The runaway rule
+    is a preference, set without a trace in undo or the journal.
     """
+    session.set_runaway(runaway_rule(args))
     if args.rate is not None and args.rate != session.rate:
         session.set_rate(args.rate)
     if args.rule is not None and args.rule != session.rule:
@@ -84,6 +102,23 @@ def apply_step_options(session: Session, args: argparse.Namespace) -> None:
         batch = None if args.batch >= n else args.batch
         if batch != session.batch_size:
             session.set_batch_size(batch)
+
+
+def _growth(text: str) -> float:
+    value = positive_float(text)
+    if value <= 1.0:
+        raise argparse.ArgumentTypeError(f"{text!r} must be above 1")
+    return value
+
+
+def _rises(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a whole number") from None
+    if value < 0:
+        raise argparse.ArgumentTypeError(f"{text!r} must be 0 (never) or more")
+    return value
 
 
 def positive_float(text: str) -> float:

@@ -17,6 +17,7 @@ from stepper.commands.common import (
     apply_step_options,
     load,
     positive_float,
+    runaway_rule,
     sample_limit,
 )
 from stepper.errors import UsageError
@@ -93,6 +94,7 @@ def handle(args: argparse.Namespace) -> int:
         if args.resume is not None:
             session.load_checkpoint(args.resume)
             apply_step_options(session, args)
+        session.set_runaway(runaway_rule(args))
         session.set_refresh_after_step(bool(args.check_every_step))
         return run_app(session, args.log or default_log_file(), noise=args.noise)
     finally:

@@ -20,7 +20,7 @@ from stepper.commands.common import (
     positive_int,
 )
 from stepper.core.numeric import run_to_end
-from stepper.errors import DivergenceError
+from stepper.errors import DivergenceError, RunawayError
 from stepper.session import Session
 
 
@@ -29,8 +29,9 @@ def add_parser(subs: Any) -> None:
         "run",
         help="make gradient-descent steps without the app, optionally saving a checkpoint",
         description="Step gradient descent headless. Ctrl-C stops after the current step "
-        "(and still saves with --save). Exit code: 0 ok, 1 a step was refused as "
-        "divergent, 2 bad input.",
+        "(and still saves with --save). A cost that runs away stops the run, keeping its steps "
+        "(--runaway-growth, --runaway-rises, --run-on). Exit code: 0 ok, 1 a step was refused "
+        "as divergent or the cost ran away, 2 bad input.",
     )
     add_model_argument(p)
     p.add_argument("--steps", type=positive_int, default=100, metavar="N", help="number of updates (default 100)")
@@ -81,8 +82,11 @@ def _run(session: Session, args: argparse.Namespace) -> int:
     stop = _StopFlag()
     previous = signal.signal(signal.SIGINT, stop)
     refused: DivergenceError | None = None
+    runaway: RunawayError | None = None
     try:
         run_to_end(session.iter_steps(args.steps), _progress(args.steps), lambda: stop.requested)
+    except RunawayError as exc:
+        runaway = exc
     except DivergenceError as exc:
         refused = exc
     finally:
@@ -98,7 +102,8 @@ def _run(session: Session, args: argparse.Namespace) -> int:
             "steps_requested": args.steps,
             "steps_done": steps_done,
             "stopped_early": stop.requested,
-            "refused": None if refused is None else refused.message,
+            "refused": None if refused is None else refused.what,
+            "runaway": None if runaway is None else runaway.what,
             "rate": session.rate,
             "rule": session.rule,
             "slope_source": session.slope_source,
@@ -115,7 +120,8 @@ def _run(session: Session, args: argparse.Namespace) -> int:
         sys.stdout.write("\n")
     else:
         out = sys.stdout
-        note = " (stopped early)" if stop.requested else ""
+        note = (" (the cost ran away)" if runaway is not None else " (a step was refused)" if refused is not None
+                else " (stopped early)" if stop.requested else "")
         out.write(f"{steps_done} of {args.steps} steps{note}: {session.rule}, rate {session.rate:g}, "
                   f"{session.slope_source} slopes, "
                   f"{'full batch' if session.batch_size is None else f'batches of {session.batch_size}'}\n")
@@ -128,8 +134,13 @@ def _run(session: Session, args: argparse.Namespace) -> int:
             out.write(f"  {session.names[i]:<16} {start_theta[i]: .6g} -> {session.theta[i]: .6g}\n")
         if saved is not None:
             out.write(f"saved {saved}\n")
+    if runaway is not None:
+        print(f"stepper: {runaway.what}; try a smaller --rate (the app's rate preview compares rates), "
+              "or --run-on to let it run on", file=sys.stderr)
+        return 1
     if refused is not None:
-        print(f"stepper: {refused.message}", file=sys.stderr)
+        print(f"stepper: {refused.what}; try a smaller --rate (the app's rate preview compares rates)",
+              file=sys.stderr)
         return 1
     return 0
 

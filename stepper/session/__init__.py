@@ -16,7 +16,8 @@ bar) decides how to show and cancel them. The session knows nothing of threads.
 
 The class is put together from small modules: :mod:`.core` (state, derived
 values, undo and journal machinery), :mod:`.edits` (settings, freezing,
-values), :mod:`.stepping` (updates and the rate preview), :mod:`.files`
+values), :mod:`.stepping` (updates and the rate preview; how a job ends and
+what it says), :mod:`.runaway` (when a job stops a running-away cost), :mod:`.files`
 (checkpoints) and :mod:`.folders` (default paths); replay of a journal entry
 is here, since it calls on all of them.
 """
@@ -31,13 +32,16 @@ from stepper.session.core import MIN_UNDO, SLOPE_SOURCES, UNDO_BYTES, HistoryEnt
 from stepper.session.edits import Edits
 from stepper.session.files import Files
 from stepper.session.folders import default_journal_for, session_folder_for
+from stepper.session.runaway import RUN_ON, RunawayRule
 from stepper.session.stepping import Stepping
 
 __all__ = [
     "MIN_UNDO",
+    "RUN_ON",
     "SLOPE_SOURCES",
     "UNDO_BYTES",
     "HistoryEntry",
+    "RunawayRule",
     "Session",
     "StepReport",
     "default_journal_for",
@@ -59,6 +63,7 @@ class Session(Stepping, Edits, Files):
         batch_size: samples per update, or None for the full training set.
         history: cost after every step, entry 0 at the start.
         check: the last numeric comparison, or None.
+        runaway: the rule that stops a job of steps whose cost runs away (see :mod:`.runaway`).
         dirty: True when there are changes since the last save or load.
         last_action: a sentence describing the last operation and its effect.
     """
@@ -75,7 +80,8 @@ class Session(Stepping, Edits, Files):
         index = self.net.layout.index_of
         try:
             if op == "step":
-                self.step(int(entry["n"]))
+                # The journal holds exactly the steps made: no runaway rule stops a replay.
+                self.step(int(entry["n"]), watch=False)
             elif op == "set_rate":
                 self.set_rate(float(entry["rate"]))
             elif op == "set_rule":

@@ -23,6 +23,7 @@ from stepper.errors import UsageError
 from stepper.formats.journal import JournalWriter
 from stepper.formats.model_file import Setup
 from stepper.session.folders import default_journal_for, session_folder_for
+from stepper.session.runaway import RunawayRule
 
 Array = NDArray[np.float64]
 
@@ -113,6 +114,7 @@ class SessionCore:
         self.noise_rng = np.random.default_rng(seed + 1)
         self.check: CheckResult | None = None
         self.refresh_numeric_after_step = False
+        self.runaway = RunawayRule()
         self.dirty = False
         self.last_action: str | None = None
         self.last_checkpoint: Path | None = None

@@ -1,4 +1,22 @@
-"""Taking steps of the update rule, and previewing the cost after one step at other rates."""
+"""Taking steps of the update rule, and previewing the cost after one step at other rates.
+
+How a job of steps ends, and what it says (the app shows ``error.message`` as a
+notice and ``last_action`` on its ``last:`` line; ``stepper run`` prints
+``error.what`` with advice of its own and exits 1):
+
+- all ``n`` steps made: a :class:`StepReport`; ``last_action`` gives the cost change;
+- cancelled (the generator closed early): the steps made are kept as one undo unit;
+- a step would make a weight or the cost non-finite: :class:`DivergenceError`;
+  that step is not made, the steps before it are kept as one undo unit;
+- the cost ran away while finite (:mod:`.runaway`, the session's ``runaway``
+  rule): :class:`RunawayError` after the step that crossed the rule; every step
+  made is kept as one undo unit, so one undo takes the whole job back and
+  nothing the screen showed is lost.
+
+Both errors say what happened and what to do: undo, and the rate preview
+(the cost after one step at smaller rates). A replay of a journal steps
+without the runaway rule, since the journal holds exactly the steps made.
+"""
 
 from __future__ import annotations
 
@@ -9,8 +27,9 @@ import numpy as np
 
 from stepper.core.numeric import Progress, numeric_slopes, run_to_end
 from stepper.core.optimizers import RuleState, compute_update
-from stepper.errors import DivergenceError, UsageError
+from stepper.errors import DivergenceError, RunawayError, UsageError
 from stepper.session.core import Array, SessionCore, StepReport, _Change
+from stepper.session.runaway import RunawayRule
 
 
 class Stepping(SessionCore):
@@ -74,18 +93,17 @@ class Stepping(SessionCore):
                 order = np.argsort(-np.abs(delta))[:3]
                 culprits = tuple(self.names[i] for i in order)
                 what = f"the cost would become non-finite (largest moves: {', '.join(culprits)})"
-            raise DivergenceError(
-                f"step refused at rate {self.rate:g}: {what}; that step was not made. "
-                f"Try a smaller rate, e.g. {self.rate / 10:g}.",
-                culprits,
-            )
+            raise DivergenceError(f"step refused at rate {self.rate:g}: {what}", culprits)
         return theta, state, float(cost)
 
-    def iter_steps(self, n: int) -> Progress[StepReport]:
+    def iter_steps(self, n: int, watch: bool = True) -> Progress[StepReport]:
         """Make ``n`` updates as one undoable operation, yielding ``(done, n)`` after each.
 
         Closing the generator early (cancel) keeps the steps already made. A step
         that would diverge raises DivergenceError; the steps before it are kept.
+        With ``watch`` the session's :attr:`runaway` rule is applied: a cost that
+        runs away raises RunawayError after the step that showed it, keeping
+        every step made. See the module docstring for the messages.
         """
         if n < 1:
             raise UsageError(f"number of steps {n} must be at least 1")
@@ -93,12 +111,22 @@ class Stepping(SessionCore):
         before = self._snapshot(fields)
         start = len(self.history)
         cost_before = self.train_cost()
+        watcher = self.runaway.watch(cost_before) if watch else None
         done = 0
+        stop: DivergenceError | None = None
         try:
             yield 0, n
             for _ in range(n):
-                self._one_step()
+                try:
+                    self._one_step()
+                except DivergenceError as exc:
+                    stop = self._refused(exc, done, n)
+                    break
                 done += 1
+                reason = None if watcher is None else watcher.after(self.train_cost())
+                if reason is not None:
+                    stop = self._ran_away(reason, done, n)
+                    break
                 yield done, n
         finally:
             if done:
@@ -110,11 +138,45 @@ class Stepping(SessionCore):
                     f"{done} step{'s' if done > 1 else ''} ({self.rule}, rate {self.rate:g}, "
                     f"{self.slope_source} slopes): cost {cost_before:.6g} -> {self.train_cost():.6g}"
                 )
+        if stop is not None:
+            self.last_action = stop.what
+            raise stop
         return StepReport(cost_before, self.train_cost(), done)
 
-    def step(self, n: int = 1) -> StepReport:
+    def _refused(self, exc: DivergenceError, done: int, n: int) -> DivergenceError:
+        """The refusal of step ``done + 1`` of ``n``, saying what is kept and what to do."""
+        if n == 1:
+            what = exc.message
+            kept = "nothing changed"
+        else:
+            what = f"step {done + 1} of {n} {exc.message.removeprefix('step ')}"
+            kept = ("nothing changed" if done == 0 else "the step before it is kept (undo takes it back)"
+                    if done == 1 else f"the {done} steps before it are kept (one undo takes them all back)")
+        return DivergenceError(f"{what}; {kept}. {_ADVICE}", exc.names, what)
+
+    def _ran_away(self, reason: str, done: int, n: int) -> RunawayError:
+        """The stop after step ``done`` of ``n``, saying what ran away, what is kept and what to do."""
+        if n == 1:
+            what = f"the step at rate {self.rate:g} ran away: {reason}"
+            kept = "it is kept (undo takes it back)"
+        else:
+            what = f"stopped after {done} of {n} steps at rate {self.rate:g}: {reason}"
+            kept = ("the step is kept (undo takes it back)" if done == 1 else
+                    f"the {done} steps are kept (one undo takes them all back)")
+        return RunawayError(f"{what}; {kept}. {_ADVICE}", what=what)
+
+    def set_runaway(self, rule: RunawayRule) -> None:
+        """The rule that stops a job of steps whose cost runs away (:data:`.runaway.RUN_ON`: none).
+
+        A preference for whoever drives the session, like
+        :meth:`set_refresh_after_step`: it changes no model state, so it is
+        neither undone nor journaled.
+        """
+        self.runaway = rule
+
+    def step(self, n: int = 1, watch: bool = True) -> StepReport:
         """Make ``n`` updates; see :meth:`iter_steps`."""
-        report = run_to_end(self.iter_steps(n))
+        report = run_to_end(self.iter_steps(n, watch))
         assert report is not None
         return report
 
@@ -161,3 +223,7 @@ class Stepping(SessionCore):
     def best_preview_rate(preview: list[tuple[float, float]]) -> float:
         """The rate with the lowest cost in a preview."""
         return min(preview, key=lambda pair: pair[1])[0]
+
+
+#: What to do after a refused or runaway step, in words that hold in the app and elsewhere.
+_ADVICE = "The rate preview shows the cost after one step at smaller rates."
