@@ -112,13 +112,7 @@ def _growth(text: str) -> float:
 
 
 def _rises(text: str) -> int:
-    try:
-        value = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"{text!r} is not a whole number") from None
-    if value < 0:
-        raise argparse.ArgumentTypeError(f"{text!r} must be 0 (never) or more")
-    return value
+    return _whole(text, 0, "must be 0 (never) or more")
 
 
 def positive_float(text: str) -> float:
@@ -132,12 +126,17 @@ def positive_float(text: str) -> float:
 
 
 def positive_int(text: str) -> int:
+    return _whole(text, 1, "must be at least 1")
+
+
+def _whole(text: str, least: int, too_small: str) -> int:
+    """``text`` as a whole number of at least ``least``; else an argparse error ending in ``too_small``."""
     try:
         value = int(text)
     except ValueError:
         raise argparse.ArgumentTypeError(f"{text!r} is not a whole number") from None
-    if value < 1:
-        raise argparse.ArgumentTypeError(f"{text!r} must be at least 1")
+    if value < least:
+        raise argparse.ArgumentTypeError(f"{text!r} {too_small}")
     return value
 
 
