@@ -35,6 +35,8 @@ class Activation:
         saturates: True for squashing functions whose slope can vanish (sigmoid, tanh).
         in_place: optional ``Z -> None`` that overwrites ``Z`` with ``fn(Z)``, bit for
             bit; the numeric slopes use it to avoid allocating large stacked arrays.
+        constants: the function's own constants by name (leaky ReLU's ``alpha``), for
+            writers of other formats (ONNX) that must spell them out.
     """
 
     name: str
@@ -43,6 +45,7 @@ class Activation:
     kink: bool = False
     saturates: bool = False
     in_place: Callable[[Array], object] | None = None
+    constants: tuple[tuple[str, float], ...] = ()
 
     @property
     def elementwise(self) -> bool:
@@ -80,8 +83,21 @@ def _sigmoid_in_place(Z: Array) -> None:
     np.multiply(Z, 0.5, out=Z)
 
 
-def _leaky_in_place(Z: Array) -> None:
-    np.multiply(Z, LEAKY_SLOPE, out=Z, where=~(Z > 0.0))
+def _leaky(alpha: float) -> Activation:
+    """Leaky ReLU with slope ``alpha`` for negative inputs."""
+
+    def in_place(Z: Array) -> None:
+        np.multiply(Z, alpha, out=Z, where=~(Z > 0.0))
+
+    name = "leaky_relu" if alpha == LEAKY_SLOPE else f"leaky_relu(alpha={alpha:.7g})"
+    return Activation(
+        name,
+        lambda Z: np.where(Z > 0.0, Z, alpha * Z),
+        lambda Z, A: np.where(Z > 0.0, 1.0, alpha),
+        kink=True,
+        in_place=in_place,
+        constants=(("alpha", alpha),),
+    )
 
 
 def _softplus(Z: Array) -> Array:
@@ -117,13 +133,7 @@ ACTIVATIONS: dict[str, Activation] = {
             kink=True,
             in_place=lambda Z: np.maximum(Z, 0.0, out=Z),
         ),
-        Activation(
-            "leaky_relu",
-            lambda Z: np.where(Z > 0.0, Z, LEAKY_SLOPE * Z),
-            lambda Z, A: np.where(Z > 0.0, 1.0, LEAKY_SLOPE),
-            kink=True,
-            in_place=_leaky_in_place,
-        ),
+        _leaky(LEAKY_SLOPE),
         Activation("softplus", _softplus, lambda Z, A: _sigmoid(Z)),
         Activation("softmax", softmax, None, saturates=True),
     )
@@ -133,3 +143,12 @@ ACTIVATIONS: dict[str, Activation] = {
 def get_activation(name: str) -> Activation:
     """The activation called ``name``; KeyError if there is none."""
     return ACTIVATIONS[name]
+
+
+def leaky_relu(alpha: float) -> Activation:
+    """Leaky ReLU with negative slope ``alpha`` (the registry's own entry for :data:`LEAKY_SLOPE`).
+
+    Model files name only the registry's entries; other slopes come from
+    formats that carry the constant, such as ONNX's ``LeakyRelu``.
+    """
+    return ACTIVATIONS["leaky_relu"] if alpha == LEAKY_SLOPE else _leaky(float(alpha))

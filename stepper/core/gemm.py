@@ -1,0 +1,72 @@
+"""A dense layer whose product and bias are scaled by constants: ``A = f(alpha X W + beta b)``.
+
+ONNX's Gemm operator computes ``alpha * A' B' + beta * C``. When ``alpha`` and
+``beta`` are both 1 that is a plain :class:`stepper.core.layers.Dense` layer;
+otherwise the weights stay exactly the values the file holds (so that they go
+back unchanged) and this layer applies the two constants. It runs through the
+network's general paths, like any layer that is not ``Dense``: the numeric
+slopes re-run the network from it, and the unit-by-unit insight views (which
+assume ``Z = X W + b``) leave it out.
+
+Shapes: ``X`` ``(n, n_in)``, ``W`` ``(n_in, n_out)``, ``b`` ``(n_out,)``, output ``(n, n_out)``.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from numpy.typing import NDArray
+
+from stepper.core.activations import Activation
+from stepper.core.layers import ParamSpec, Params
+
+Array = NDArray[np.float64]
+
+
+@dataclass(frozen=True)
+class ScaledDense:
+    """``A = activation(alpha * (X @ W) + beta * b)``; ``b`` only when ``bias``.
+
+    Attributes:
+        n_in, n_out: input width and number of units.
+        activation: applied to ``Z``.
+        alpha: factor of the product ``X @ W``.
+        beta: factor of the bias.
+        bias: whether the layer has ``b``.
+    """
+
+    n_in: int
+    n_out: int
+    activation: Activation
+    alpha: float
+    beta: float
+    bias: bool = True
+
+    @property
+    def label(self) -> str:
+        scale = f"alpha {self.alpha:g}" + (f", beta {self.beta:g}" if self.bias else "")
+        return f"dense {self.n_in}->{self.n_out} {self.activation.name} ({scale})"
+
+    def param_specs(self) -> tuple[ParamSpec, ...]:
+        specs = [ParamSpec("W", (self.n_in, self.n_out), "weight")]
+        if self.bias:
+            specs.append(ParamSpec("b", (self.n_out,), "bias"))
+        return tuple(specs)
+
+    def forward(self, params: Params, X: Array) -> tuple[Array, tuple[Array, Array, Array]]:
+        """``X`` ``(n, n_in)`` to ``A`` ``(n, n_out)``; the cache is ``(X, Z, A)``."""
+        Z = self.alpha * (X @ params["W"])
+        if self.bias:
+            Z = Z + self.beta * params["b"]
+        A = self.activation.fn(Z)
+        return A, (X, Z, A)
+
+    def backward(self, params: Params, cache: tuple[Array, Array, Array], dOut: Array) -> tuple[Params, Array]:
+        """Slopes from ``dOut`` ``(n, n_out)``: ``dW = alpha X^T dZ``, ``db = beta sum dZ``, ``dX = alpha dZ W^T``."""
+        X, Z, A = cache
+        dZ = self.activation.vjp(Z, A, dOut)
+        grads: Params = {"W": self.alpha * (X.T @ dZ)}
+        if self.bias:
+            grads["b"] = self.beta * dZ.sum(axis=0)
+        return grads, self.alpha * (dZ @ params["W"].T)
