@@ -153,7 +153,7 @@ def test_nesting_too_deep(write_model: WriteModel) -> None:
 # (replace this, with that, expected message after "model.toml: ")
 MISTAKES = [
     ('name = "test net"', 'name = "test net"\ncolour = "red"',
-     "colour: unknown key (allowed: data, init, layers, loss, name)"),
+     "colour: unknown key (allowed: data, init, layers, loss, name, network)"),
     ('name = "test net"', "name = 7", "name: expected a string, got an integer"),
     ('loss = "mean_squared_error"\n', "", "loss: missing"),
     ('"mean_squared_error"', '"hinge"',
@@ -181,7 +181,9 @@ MISTAKES = [
     ('activation = "tanh"', 'activation = "tanh"\ntype = "conv"',
      "layers[0].type: unknown 'conv' (expected one of: dense, custom)"),
     ("units = 1\n", "units = 2\n",
-     "layers[1].units: the last layer has 2 units but [data].targets names 1 column(s); they must match"),
+     "layers[1].units: the last layer has 2 units but [data].targets names 1 column(s); they must match; "
+     "if 'y' holds class numbers, end with a softmax layer of 2 units and Stepper builds the one-hot targets "
+     "from them"),
     ('[data]\nfile = "data.csv"', '[data]\nfile = 3', "data.file: expected a string, got an integer"),
     ('file = "data.csv"', 'file = ""', "data.file: '' is not a file name"),
     ('inputs = ["a", "b", "c"]', "inputs = []", "data.inputs: expected a non-empty list of column names"),
@@ -196,7 +198,8 @@ MISTAKES = [
      "data.seed: -2 is negative (a seed is a whole number, 0 or more)"),
     ('targets = ["y"]', 'targets = ["y"]\nstandardize = 1', "data.standardize: expected true or false, got an integer"),
     ("[data]\n", "[data]\nrows = 3\n",
-     "data.rows: unknown key (allowed: file, inputs, seed, standardize, targets, validation_fraction)"),
+     "data.rows: unknown key (allowed: file, inputs, seed, standardize, targets, validation_column, "
+     "validation_file, validation_fraction)"),
     ('[init]\nscheme = "glorot_uniform"\nseed = 4\n', "", "init: missing: give [init] scheme and seed, or "
      "inline weights for every layer"),
     ('scheme = "glorot_uniform"', 'scheme = "zeros"',

@@ -28,6 +28,7 @@ from stepper.core.diagnosis import Hint, diagnose
 from stepper.core.gradcheck import CheckResult, iter_check
 from stepper.core.health import RATIO_TYPICAL, HealthReport, layer_health
 from stepper.core.input_slopes import DEFAULT_SAMPLES, InputSlopeCheck, check_input_slopes
+from stepper.core.gemm import ScaledDense
 from stepper.core.layers import Dense
 from stepper.core.network import Network
 from stepper.core.numeric import run_to_end
@@ -75,7 +76,7 @@ def handle(args: argparse.Namespace) -> int:
         health = layer_health(net, theta, X, Y, rate)
         inputs = [
             check_input_slopes(net, theta, X, Y, i, args.input_samples, args.method, args.delta)
-            for i, layer in enumerate(net.layers) if not isinstance(layer, Dense)
+            for i, layer in enumerate(net.layers) if not isinstance(layer, (Dense, ScaledDense))
         ]
     passed = result.passed and all(c.passed for c in inputs)
     hints = diagnose(net, result, X.shape[0], inputs)
@@ -101,8 +102,10 @@ def layer_summary(net: Network) -> list[dict[str, Any]]:
     n_in = net.n_inputs
     for i, layer in enumerate(net.layers):
         entry: dict[str, Any] = {"index": i + 1, "inputs": n_in, "units": layer.n_out}
-        if isinstance(layer, Dense):
+        if isinstance(layer, (Dense, ScaledDense)):
             entry.update(type="dense", activation=layer.activation.name, bias=layer.bias)
+            if isinstance(layer, ScaledDense):
+                entry.update(alpha=layer.alpha, beta=layer.beta)
         else:
             entry.update(type="custom", label=layer.label, bias=False)
         out.append(entry)
@@ -117,11 +120,13 @@ def check_document(setup: Setup, result: CheckResult, n_samples: int,
         theta = setup.theta0
     net = setup.network
     layout = net.layout
+    sources = setup.origin.source_names(layout) if setup.origin is not None else (None,) * net.n_params
     weights = []
     for i, name in enumerate(layout.names):
         block = layout.block_of(i)
         weights.append({
             "name": name,
+            "source": sources[i],
             "layer": block.layer + 1,
             "kind": block.kind,
             "indices": list(layout.indices(i)),
@@ -135,6 +140,8 @@ def check_document(setup: Setup, result: CheckResult, n_samples: int,
         "model": {
             "name": setup.name,
             "file": str(setup.path),
+            "weights_from": None if setup.origin is None else {
+                "file": str(setup.origin.file), "kind": setup.origin.kind, "layout": setup.origin.layout},
             "inputs": net.n_inputs,
             "layers": layer_summary(net),
             "loss": net.loss,
@@ -200,14 +207,19 @@ def print_report(setup: Setup, result: CheckResult, n_samples: int, worst: int |
     out.write("\n")
     header = (f"{'weight'.ljust(width)}  {'value':>12}  {'analytic':>12}  {'numeric':>12}  "
               f"{'rel. error':>10}  verdict")
+    sources = setup.origin.source_names(net.layout) if setup.origin is not None else None
+    if sources is not None:
+        header += f"        in {setup.origin.file.name}" if setup.origin is not None else ""
     out.write(header + "\n")
     out.write("-" * len(header) + "\n")
     for i in order:
         rel = result.rel_error[i]
         rel_text = "-" if rel != rel else f"{rel:.2e}"
+        source = "" if sources is None or sources[i] is None else f"  {sources[i]}"
         out.write(
             f"{names[i].ljust(width)}  {fmt(theta[i])}  {fmt(result.analytic[i])}  "
-            f"{fmt(result.numeric[i])}  {rel_text:>10}  {_mark(str(result.verdict[i]))}\n"
+            f"{fmt(result.numeric[i])}  {rel_text:>10}  {_mark(str(result.verdict[i])):<13}{source}".rstrip()
+            + "\n"
         )
     counts = result.counts
     w = result.worst()

@@ -16,6 +16,7 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
+from stepper.commands.graph_data import add_graph_data_options, load_graph_setup, wants_graph
 from stepper.core.numeric import METHODS
 from stepper.errors import UsageError
 from stepper.formats.model_file import Setup, load_setup
@@ -30,9 +31,10 @@ def add_model_argument(parser: argparse.ArgumentParser) -> None:
     parser.add_argument(
         "model",
         nargs="?",
-        help="model file (TOML), a scenario folder, or a bundled scenario name; "
-        "default: the bundled default scenario",
+        help="model file (TOML), a scenario folder, a bundled scenario name, or an ONNX file "
+        "(with --data, --targets, --loss); default: the bundled default scenario",
     )
+    add_graph_data_options(parser)
 
 
 def add_slope_options(parser: argparse.ArgumentParser) -> None:
@@ -141,7 +143,10 @@ def _whole(text: str, least: int, too_small: str) -> int:
 
 
 def load(args: argparse.Namespace) -> Setup:
-    return load_setup(resolve_model(args.model))
+    model = resolve_model(args.model)
+    if wants_graph(args, model):
+        return load_graph_setup(args, model)
+    return load_setup(model)
 
 
 def resumed_weights(setup: Setup, checkpoint: Path | None, rate: float | None,

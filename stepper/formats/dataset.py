@@ -155,11 +155,13 @@ def build_dataset(
     validation_fraction: float,
     seed: int,
     source: str,
+    holdout: NDArray[np.bool_] | None = None,
 ) -> Dataset:
     """Split a table into inputs and targets, hold out a validation part, standardize.
 
-    The validation rows are a seeded random choice of ``round(fraction * n)``
-    rows; standardization statistics come from the training rows only.
+    The validation rows are the rows where ``holdout`` (``(n_rows,)``) is True,
+    or else a seeded random choice of ``round(fraction * n)`` rows;
+    standardization statistics come from the training rows only.
     """
     order = {name: i for i, name in enumerate(table.columns)}
     X_all = table.values[:, [order[c] for c in inputs]]
@@ -168,7 +170,9 @@ def build_dataset(
     n_val = int(round(validation_fraction * n))
     if validation_fraction > 0 and n - n_val < 1:
         raise DataFileError(f"{source}: {n} rows leave no training rows after the validation split")
-    if n_val > 0:
+    if holdout is not None:
+        val_rows, train_rows = np.flatnonzero(holdout), np.flatnonzero(~holdout)
+    elif n_val > 0:
         perm = np.random.default_rng(seed).permutation(n)
         val_rows, train_rows = np.sort(perm[:n_val]), np.sort(perm[n_val:])
     else:

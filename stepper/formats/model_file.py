@@ -5,9 +5,9 @@ Schema (every key is checked; unknown keys are refused so typos surface)::
     name = "pricing net"                  # optional label
     loss = "mean_squared_error"           # see stepper.core.losses.LOSSES
 
-    [data]
+    [data]                                # all keys: stepper.formats.data_options
     file = "houses.csv"                   # relative to the model file
-    inputs = ["area", "age"]              # column names
+    inputs = ["area", "age"]              # column names, or "*": all but the targets
     targets = ["price"]
     standardize = true                    # optional, default false
     validation_fraction = 0.2             # optional, default 0
@@ -33,6 +33,10 @@ Schema (every key is checked; unknown keys are refused so typos surface)::
     units = 3                             # optional when the class sets n_out
     options = { gate_shift = 1.0 }        # optional, passed to the class
 
+Instead of ``[[layers]]`` and ``[init]``, ``network = "net.onnx"`` (relative
+to the model file) takes the layers and their weights from an ONNX graph
+(:mod:`stepper.formats.onnx_import`).
+
 Inline ``weights``/``biases`` override the scheme for that layer. A layer
 with inline values needs no ``[init]`` at all. Custom layers draw their own
 starting values (seeded by ``[init].seed``, or 0 without ``[init]``).
@@ -46,7 +50,7 @@ import math
 import tomllib
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 from numpy.typing import NDArray
@@ -57,13 +61,17 @@ from stepper.core.layers import Dense, Layer
 from stepper.core.losses import LOSSES
 from stepper.core.network import Network
 from stepper.errors import ModelFileError
-from stepper.formats.dataset import Dataset, build_dataset, read_columns
+from stepper.formats.data_options import DATA_KEYS, fit_data, load_data
+from stepper.formats.dataset import Dataset
+from stepper.formats.weight_sources import WeightOrigin
+
+if TYPE_CHECKING:
+    from stepper.formats.weights_import import TorchLinear, TorchState
 
 Array = NDArray[np.float64]
 
-TOP_KEYS = {"name", "loss", "data", "init", "layers"}
-DATA_KEYS = {"file", "inputs", "targets", "standardize", "validation_fraction", "seed"}
-INIT_KEYS = {"scheme", "seed", "range", "file", "names"}
+TOP_KEYS = {"name", "loss", "data", "init", "layers", "network"}
+INIT_KEYS = {"scheme", "seed", "range", "file", "names", "layout"}
 LAYER_KEYS = {"units", "activation", "bias", "weights", "biases", "type", "file", "class", "options"}
 
 #: Most parameters a model file may describe. Stepper lists, checks and steps
@@ -82,7 +90,10 @@ class Setup:
         network: the network.
         theta0: initial parameters, ``(n_params,)``.
         data: training and validation data.
-        digest: SHA-256 of the model file's bytes (checkpoints record it).
+        digest: SHA-256 of the model file's bytes (checkpoints record it), and of
+            the ONNX file's after them when the model file names one.
+        origin: the file the weights came from and the tensor behind each array
+            (an ONNX graph, or a framework's weights file), or None.
     """
 
     path: Path
@@ -91,6 +102,7 @@ class Setup:
     theta0: Array
     data: Dataset
     digest: str
+    origin: WeightOrigin | None = None
 
 
 class _Keys:
@@ -186,6 +198,10 @@ def load_setup(path: str | Path) -> Setup:
     """Read and check a model file, its data and its initial weights."""
     path = Path(path)
     label = str(path)
+    if path.suffix.lower() == ".onnx":
+        raise ModelFileError(
+            f"{label}: an ONNX file holds the network but not its data: give --data, --targets and --loss "
+            f"with it, or name it in a model file (network = \"{path.name}\")")
     try:
         raw = path.read_bytes()
     except FileNotFoundError:
@@ -202,24 +218,58 @@ def load_setup(path: str | Path) -> Setup:
         raise ModelFileError(f"{label}: not valid TOML ({exc})") from None
     except RecursionError:
         raise ModelFileError(f"{label}: not valid TOML (arrays or tables nested too deeply)") from None
+    return setup_from_doc(doc, path, raw)
 
+
+def setup_from_doc(doc: Any, path: Path, raw: bytes, data: Dataset | None = None,
+                   label: str | None = None) -> Setup:
+    """A setup from a model file's document (the parsed TOML, or one built from options).
+
+    Args:
+        doc: the document; see the module docstring.
+        path: the model file; relative file names in ``doc`` are relative to its folder.
+        raw: the bytes the digest covers (the model file's, or the options that built ``doc``).
+        data: the data, when it comes from arrays instead of ``[data]`` (which must then be absent).
+        label: how messages name the document (default: ``path``).
+    """
+    label = label or str(path)
     top = _Keys(label, "", doc, TOP_KEYS)
     name = top.get("name", str, path.parent.name or path.stem)
     loss = top.choice("loss", LOSSES)
+    if data is None:
+        data = load_data(path, _Keys(label, "data", top.get("data", dict), DATA_KEYS))
+    elif top.has("data"):
+        top.fail("data", "not used when the data come as arrays")
+    origin = None
+    if top.has("network"):
+        for key in ("layers", "init"):
+            if top.has(key):
+                top.fail(key, "not used together with network: the graph gives the layers and their weights")
+        from stepper.formats.onnx_setup import graph_network
 
-    data_keys = _Keys(label, "data", top.get("data", dict), DATA_KEYS)
-    data = _load_data(path, data_keys)
+        network, theta0, origin = graph_network(top, path, loss)
+        digest = hashlib.sha256(raw + (origin.graph or b"")).hexdigest()
+    else:
+        network, theta0, origin = _described_network(label, top, path, data, loss)
+        digest = hashlib.sha256(raw).hexdigest()
+    data = fit_data(top, network, data)
+    return Setup(path, name, network, theta0, data, digest, origin)
 
+
+def _described_network(label: str, top: _Keys, path: Path, data: Dataset,
+                       loss: str) -> tuple[Network, Array, WeightOrigin | None]:
+    """The network that ``[[layers]]`` describe, and its starting values."""
     layer_list = top.get("layers", list)
     if not layer_list:
         top.fail("layers", "expected at least one [[layers]] table")
+    torch = _torch_state(label, top, len(layer_list))
     layers: list[Layer] = []
     inline: list[tuple[int, _Keys]] = []
     n_in = len(data.input_names)
     n_params = 0
     for i, entry in enumerate(layer_list):
         keys = _Keys(label, f"layers[{i}]", entry, LAYER_KEYS)
-        layer = _build_layer(keys, n_in, path)
+        layer = _build_layer(keys, n_in, path, None if torch is None else torch.linears[i])
         n_params += sum(math.prod(spec.shape) for spec in layer.param_specs())
         if n_params > MAX_PARAMETERS:
             keys.fail("units" if keys.has("units") else "",
@@ -229,54 +279,67 @@ def load_setup(path: str | Path) -> Setup:
         if keys.has("weights") or keys.has("biases"):
             inline.append((i, keys))
         n_in = layer.n_out
-    if layers[-1].n_out != len(data.target_names):
-        top.fail(
-            f"layers[{len(layers) - 1}].units",
-            f"the last layer has {layers[-1].n_out} units but [data].targets names "
-            f"{len(data.target_names)} column(s); they must match",
-        )
     network = Network(len(data.input_names), layers, loss)
-    theta0 = _initial_values(label, top, network, inline)
-    return Setup(path, name, network, theta0, data, hashlib.sha256(raw).hexdigest())
+    theta0, origin = _initial_values(label, top, network, inline, torch)
+    return network, theta0, origin
 
 
-def _load_data(model_path: Path, keys: _Keys) -> Dataset:
-    file = keys.get("file", str)
-    if not file.strip() or "\0" in file:
-        keys.fail("file", f"{file!r} is not a file name")
-    inputs = keys.names("inputs")
-    targets = keys.names("targets")
-    overlap = sorted(set(inputs) & set(targets))
-    if overlap:
-        keys.fail("targets", f"column(s) {', '.join(overlap)} are also inputs")
-    standardize = keys.get("standardize", bool, False)
-    fraction = keys.get("validation_fraction", float, 0.0)
-    if not 0.0 <= fraction < 1.0:
-        keys.fail("validation_fraction", f"{fraction} is outside [0, 1)")
-    seed = keys.seed("seed")
-    csv_path = (model_path.parent / file) if not Path(file).is_absolute() else Path(file)
-    table = read_columns(csv_path, inputs + targets, label=str(csv_path))
-    return build_dataset(table, inputs, targets, standardize, fraction, seed, str(csv_path))
+def _torch_state(label: str, top: _Keys, n_layers: int) -> TorchState | None:
+    """The state_dict's Linear layers when ``[init] layout = "torch"``, one per ``[[layers]]`` table."""
+    table = top.table.get("init")
+    if not (isinstance(table, dict) and table.get("layout") == "torch"):
+        return None
+    from stepper.formats.weights_import import read_torch_layout
+
+    init = _Keys(label, "init", table, INIT_KEYS)
+    torch = read_torch_layout(label, init)
+    if len(torch.linears) != n_layers:
+        names = ", ".join(linear.weight for linear in torch.linears)
+        top.fail("layers", f"{n_layers} [[layers]] tables, but {torch.path} holds {len(torch.linears)} Linear "
+                           f"layers ({names}); layout = \"torch\" maps them one to one, in order")
+    return torch
 
 
-def _build_layer(keys: _Keys, n_in: int, model_path: Path) -> Layer:
+def _build_layer(keys: _Keys, n_in: int, model_path: Path, linear: TorchLinear | None = None) -> Layer:
     kind = keys.choice("type", ("dense", "custom"), "dense")
     if kind == "custom":
+        if linear is not None:
+            keys.fail("type", "layout = \"torch\" maps Linear layers to dense layers only")
         from stepper.formats.custom_layer import build_custom_layer
 
         return build_custom_layer(keys, n_in, model_path)
     for key in ("file", "class", "options"):
         if keys.has(key):
             keys.fail(key, "only a layer with type = \"custom\" takes this key")
-    units = keys.get("units", int)
+    if linear is None:
+        units = keys.get("units", int)
+        bias = keys.get("bias", bool, True)
+    else:
+        units, bias = _torch_shape(keys, n_in, linear)
     if units < 1:
         keys.fail("units", f"{units} is not a positive number of units")
     activation = keys.choice("activation", ACTIVATIONS)
-    bias = keys.get("bias", bool, True)
     return Dense(n_in, units, ACTIVATIONS[activation], bias)
 
 
-def _initial_values(label: str, top: _Keys, network: Network, inline: list[tuple[int, _Keys]]) -> Array:
+def _torch_shape(keys: _Keys, n_in: int, linear: TorchLinear) -> tuple[int, bool]:
+    """Units and bias of a dense layer read from its Linear layer's tensors (checked against the keys)."""
+    shape = f"tensor '{linear.weight}' has shape {tuple(linear.W.shape)} (PyTorch's Linear stores (out, in))"
+    layer = f"L{int(keys.where[len('layers['):-1]) + 1}"  # keys.where is "layers[i]"
+    if linear.n_in != n_in:
+        keys.fail("", f"({layer}) {shape}: {linear.n_in} inputs, but the layer gets {n_in}")
+    units = keys.get("units", int, linear.n_out)
+    if units != linear.n_out:
+        keys.fail("units", f"{units}, but {shape}: {linear.n_out} units")
+    bias = keys.get("bias", bool, linear.b is not None)
+    if bias != (linear.b is not None):
+        keys.fail("bias", f"{str(bias).lower()}, but the state_dict "
+                          + ("has no" if linear.b is None else "has a") + f" bias for {linear.weight!r}")
+    return units, bias
+
+
+def _initial_values(label: str, top: _Keys, network: Network, inline: list[tuple[int, _Keys]],
+                    torch: TorchState | None = None) -> tuple[Array, WeightOrigin | None]:
     inline_layers = {i for i, _ in inline}
     # Custom layers draw their own starting values (stepper.formats.custom_layer).
     own_values = {i for i, layer in enumerate(network.layers) if not isinstance(layer, Dense)}
@@ -286,12 +349,15 @@ def _initial_values(label: str, top: _Keys, network: Network, inline: list[tuple
     theta = np.zeros(network.n_params)
     seed = 0
     imported = False
+    origin = None
     if top.has("init"):
         init = _Keys(label, "init", top.get("init", dict), INIT_KEYS)
+        if init.has("layout") and not init.has("file"):
+            init.fail("layout", "only with [init].file: it says how that file names its tensors")
         if init.has("file"):
             from stepper.formats.weights_import import import_weights
 
-            theta = import_weights(label, init, network)
+            theta, origin = import_weights(label, init, network, torch)
             imported = True
         else:
             scheme = init.choice("scheme", SCHEMES)
@@ -308,7 +374,7 @@ def _initial_values(label: str, top: _Keys, network: Network, inline: list[tuple
         fill_initial_values(network, theta, seed)
     for index, keys in inline:
         _apply_inline(keys, network, index, theta)
-    return theta
+    return theta, origin
 
 
 def _apply_inline(keys: _Keys, network: Network, index: int, theta: Array) -> None:

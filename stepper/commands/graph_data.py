@@ -1,0 +1,64 @@
+"""Options that give an ONNX file named on the command line its data: ``--data``, ``--targets``, ...
+
+``stepper check net.onnx --data data.csv --targets y --loss mean_squared_error``
+works like a model file holding ``network = "net.onnx"`` and a ``[data]``
+table: the options are turned into that document and checked the same way.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+from pathlib import Path
+
+from stepper.core.losses import LOSSES
+from stepper.errors import UsageError
+from stepper.formats.model_file import Setup, setup_from_doc
+
+OPTIONS = ("data", "targets", "inputs", "loss")
+
+
+def add_graph_data_options(parser: argparse.ArgumentParser) -> None:
+    group = parser.add_argument_group(
+        "an ONNX file named directly (instead of a model file)",
+        "give the data and the loss that a model file would give; see README.md, Bring your own model")
+    group.add_argument("--data", type=Path, default=None, metavar="CSV", help="the data: a CSV file with a header row")
+    group.add_argument("--targets", default=None, metavar="COLS",
+                       help="target columns, comma-separated (one column of class numbers for a softmax output)")
+    group.add_argument("--inputs", default=None, metavar="COLS",
+                       help="input columns, comma-separated (default: every column that is not a target)")
+    group.add_argument("--loss", choices=LOSSES, default=None, help="the loss")
+
+
+def wants_graph(args: argparse.Namespace, model: Path) -> bool:
+    """True when ``model`` is an ONNX file to be given its data by the options."""
+    given = [f"--{name}" for name in OPTIONS if getattr(args, name, None) is not None]
+    if model.suffix.lower() == ".onnx":
+        return True
+    if given:
+        raise UsageError(f"{', '.join(given)}: only with an ONNX file named directly; a model file names its "
+                         "data in its [data] table")
+    return False
+
+
+def load_graph_setup(args: argparse.Namespace, model: Path) -> Setup:
+    """The setup of an ONNX file and the data the options name."""
+    missing = [f"--{name}" for name in ("data", "targets", "loss") if getattr(args, name) is None]
+    if missing:
+        raise UsageError(f"{model}: an ONNX file holds the network but not its data: give "
+                         f"{', '.join(missing)} (or name it in a model file: network = \"{model.name}\")")
+    data: dict[str, object] = {
+        "file": str(Path(args.data).resolve()),
+        "targets": _columns("--targets", args.targets),
+        "inputs": "*" if args.inputs is None else _columns("--inputs", args.inputs),
+    }
+    doc = {"name": model.stem, "network": model.name, "loss": args.loss, "data": data}
+    options = json.dumps(doc, sort_keys=True).encode("utf-8")
+    return setup_from_doc(doc, model, options, label=f"{model} (with the data options)")
+
+
+def _columns(option: str, text: str) -> list[str]:
+    names = [name.strip() for name in text.split(",")]
+    if not all(names):
+        raise UsageError(f"{option} {text!r}: expected column names separated by commas")
+    return names

@@ -1,0 +1,309 @@
+"""Reading an ONNX file into a plain description of its graph, checked at the edges.
+
+ONNX (onnx.ai) is the open exchange format that frameworks export networks
+to: a protobuf ``ModelProto`` holding a graph of nodes, its input and output,
+and the weights as ``initializer`` tensors. This module only reads and checks;
+:mod:`stepper.formats.onnx_import` turns the graph into a Stepper network.
+
+Safety and limits:
+
+- only a regular file is read, at most :data:`MAX_BYTES` of it, and the
+  protobuf is parsed only by the ``onnx`` package (imported here, on first
+  use, so that starting Stepper never pays for it);
+- a tensor's dimensions are checked before its data is touched, and a tensor
+  larger than the network limit is refused;
+- external data (a tensor whose values live in another file) is read only from
+  a regular file inside the model's own folder, resolving links first: a
+  location that is absolute, climbs out with ``..`` or links elsewhere is
+  refused, as is an offset or length outside that file;
+- every value read is checked to be a finite number of a float type.
+
+Every message is one line that names the file, and the node or tensor.
+"""
+
+from __future__ import annotations
+
+import os
+import stat
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from numpy.typing import NDArray
+
+from stepper.errors import ModelFileError
+
+Array = NDArray[np.float64]
+
+#: Largest ONNX file read (the network limit, 10 million float64 weights, is 80 MB).
+MAX_BYTES = 256 * 1024 * 1024
+#: Most entries one tensor may have (the model file's limit on parameters).
+MAX_TENSOR_ENTRIES = 10_000_000
+#: Oldest operator set read: the semantics of Softmax and others settled in opset 13.
+MIN_OPSET = 13
+#: Float element types by ONNX's code (TensorProto.FLOAT = 1, DOUBLE = 11).
+FLOAT_TYPES = {1: "float32", 11: "float64"}
+
+
+@dataclass(frozen=True)
+class Node:
+    """One node of the graph.
+
+    Attributes:
+        index: position in the graph (from 0).
+        name: the node's name, possibly empty.
+        op: its operator (``"Gemm"``).
+        inputs, outputs: tensor names (an empty name is an omitted optional input).
+        attributes: attribute name -> value (ints, floats, strings, lists of them).
+    """
+
+    index: int
+    name: str
+    op: str
+    inputs: tuple[str, ...]
+    outputs: tuple[str, ...]
+    attributes: dict[str, Any]
+
+    @property
+    def label(self) -> str:
+        """``node 'fc1/Gemm' (Gemm)``, or ``node 3 (Gemm)`` when it has no name."""
+        return f"node {self.name!r} ({self.op})" if self.name else f"node {self.index} ({self.op})"
+
+
+@dataclass(frozen=True)
+class TensorInfo:
+    """The graph's input or output: name, element type, and dimensions (int, or None when symbolic)."""
+
+    name: str
+    dtype: str
+    dims: tuple[int | None, ...]
+
+
+@dataclass
+class OnnxGraph:
+    """An ONNX file, read and checked.
+
+    Attributes:
+        path: the file.
+        raw: its bytes.
+        opset: the version of the default operator set.
+        nodes: the nodes in the file's (topological) order.
+        input: the one graph input that is not an initializer.
+        output: the one graph output.
+        initializer_names: names of the initializers, in file order.
+    """
+
+    path: Path
+    raw: bytes = field(repr=False)
+    opset: int
+    nodes: list[Node]
+    input: TensorInfo
+    output: TensorInfo
+    initializer_names: tuple[str, ...]
+    _tensors: dict[str, Any] = field(repr=False, default_factory=dict)
+
+    def fail(self, message: str) -> ModelFileError:
+        """An error naming the file (raise it)."""
+        return ModelFileError(f"{self.path}: {message}")
+
+    def is_initializer(self, name: str) -> bool:
+        return name in self._tensors
+
+    def initializer(self, name: str, node: Node) -> tuple[Array, str]:
+        """The initializer ``name`` as float64, and the file's float type; errors name ``node``."""
+        tensor = self._tensors[name]
+        where = f"{node.label}: initializer {name!r}"
+        dtype = FLOAT_TYPES.get(int(tensor.data_type))
+        if dtype is None:
+            raise self.fail(f"{where} is of ONNX element type {_type_name(tensor.data_type)}; "
+                            "Stepper reads float32 and float64 weights")
+        dims = tuple(int(d) for d in tensor.dims)
+        _check_dims(self, where, dims)
+        if tensor.data_location == 1:  # TensorProto.EXTERNAL
+            values = _external(self, where, tensor, dtype, dims)
+        else:
+            from onnx import numpy_helper
+
+            try:
+                values = numpy_helper.to_array(tensor)
+            except Exception as exc:  # the library's own errors for inconsistent tensors
+                raise self.fail(f"{where}: its data does not match its shape {dims} ({exc})") from None
+            if values.shape != dims:
+                raise self.fail(f"{where}: its data does not match its shape {dims}")
+        array = np.array(values, dtype=np.float64)
+        if not np.all(np.isfinite(array)):
+            raise self.fail(f"{where} holds a value that is not a finite number")
+        return array, dtype
+
+
+def read_onnx(path: Path) -> OnnxGraph:
+    """Read and check the ONNX file at ``path``; ModelFileError with one line if it cannot be used."""
+    path = Path(path)
+    raw = _read_bytes(path)
+    import onnx
+
+    model = onnx.ModelProto()
+    try:
+        model.ParseFromString(raw)
+    except Exception as exc:  # protobuf's DecodeError, or a RecursionError for deep nesting
+        detail = " ".join(str(exc).split()) or type(exc).__name__
+        raise ModelFileError(f"{path}: not an ONNX model, or a truncated one (the protobuf does not parse: "
+                             f"{detail})") from None
+    if model.ir_version <= 0 or not model.HasField("graph"):
+        raise ModelFileError(f"{path}: not an ONNX model (no IR version or no graph in it)")
+    opsets = {entry.domain: int(entry.version) for entry in model.opset_import}
+    opset = opsets.get("", opsets.get("ai.onnx"))
+    if opset is None:
+        raise ModelFileError(f"{path}: not a complete ONNX model (it declares no operator set; "
+                             "is the file truncated?)")
+    if opset < MIN_OPSET:
+        raise ModelFileError(f"{path}: written with operator set {opset}; Stepper reads opset {MIN_OPSET} "
+                             f"and newer (export again with opset_version={MIN_OPSET} or later)")
+    graph = model.graph
+    if len(graph.sparse_initializer):
+        raise ModelFileError(f"{path}: holds sparse initializers, which Stepper does not read")
+    tensors = {t.name: t for t in graph.initializer}
+    if len(tensors) != len(graph.initializer):
+        raise ModelFileError(f"{path}: two initializers share a name")
+    both = [info.name for info in graph.input if info.name in tensors]
+    if both:
+        raise ModelFileError(
+            f"{path}: initializer {both[0]!r} is also a graph input, so whoever runs the graph may replace "
+            "it; Stepper reads weights only from initializers that are not inputs (export again with "
+            "keep_initializers_as_inputs=False)")
+    inputs = [_info(path, "input", info) for info in graph.input]
+    outputs = [_info(path, "output", info) for info in graph.output]
+    if len(inputs) != 1:
+        names = ", ".join(repr(i.name) for i in inputs) or "none"
+        raise ModelFileError(f"{path}: the graph has {len(inputs)} data inputs ({names}); Stepper runs a graph "
+                             "with exactly one input, the samples")
+    if len(outputs) != 1:
+        names = ", ".join(repr(o.name) for o in outputs) or "none"
+        raise ModelFileError(f"{path}: the graph has {len(outputs)} outputs ({names}); Stepper runs a graph "
+                             "with exactly one output")
+    nodes = [_node(path, i, proto) for i, proto in enumerate(graph.node)]
+    if not nodes:
+        raise ModelFileError(f"{path}: the graph has no nodes")
+    return OnnxGraph(path, raw, opset, nodes, inputs[0], outputs[0], tuple(tensors), tensors)
+
+
+def _read_bytes(path: Path) -> bytes:
+    try:
+        info = os.stat(path)
+    except FileNotFoundError:
+        raise ModelFileError(f"{path}: no such ONNX file") from None
+    except (OSError, ValueError) as exc:
+        raise ModelFileError(f"{path}: cannot be read ({getattr(exc, 'strerror', None) or exc})") from None
+    if stat.S_ISDIR(info.st_mode):
+        raise ModelFileError(f"{path}: is a folder, not an ONNX file")
+    if not stat.S_ISREG(info.st_mode):
+        raise ModelFileError(f"{path}: is not a regular file (Stepper reads ONNX only from regular files)")
+    try:
+        with open(path, "rb") as handle:
+            raw = handle.read(MAX_BYTES + 1)
+    except OSError as exc:
+        raise ModelFileError(f"{path}: cannot be read ({exc.strerror})") from None
+    if len(raw) > MAX_BYTES:
+        raise ModelFileError(f"{path}: larger than {MAX_BYTES // 2**20} MiB, the most Stepper reads "
+                             "(it is for small networks)")
+    if not raw:
+        raise ModelFileError(f"{path}: the file is empty")
+    return raw
+
+
+def _info(path: Path, what: str, info: Any) -> TensorInfo:
+    kind = info.type.WhichOneof("value")
+    if kind != "tensor_type":
+        raise ModelFileError(f"{path}: graph {what} {info.name!r} is not a tensor (it is a {kind or 'value of no type'})")
+    ttype = info.type.tensor_type
+    dtype = FLOAT_TYPES.get(int(ttype.elem_type))
+    if dtype is None:
+        raise ModelFileError(f"{path}: graph {what} {info.name!r} is of element type "
+                             f"{_type_name(ttype.elem_type)}; Stepper runs float32 and float64 graphs")
+    dims: list[int | None] = []
+    for dim in ttype.shape.dim:
+        if dim.HasField("dim_value"):
+            value = int(dim.dim_value)
+            if not 0 < value <= MAX_TENSOR_ENTRIES:
+                raise ModelFileError(f"{path}: graph {what} {info.name!r} has a dimension of {value}")
+            dims.append(value)
+        else:
+            dims.append(None)
+    return TensorInfo(info.name, dtype, tuple(dims))
+
+
+def _node(path: Path, index: int, proto: Any) -> Node:
+    from onnx import helper
+
+    label = f"node {proto.name!r} ({proto.op_type})" if proto.name else f"node {index} ({proto.op_type})"
+    if proto.domain not in ("", "ai.onnx"):
+        raise ModelFileError(f"{path}: {label} is from the operator domain {proto.domain!r}; Stepper runs "
+                             "only the standard ONNX operators")
+    attributes: dict[str, Any] = {}
+    for attribute in proto.attribute:
+        if attribute.ref_attr_name:
+            raise ModelFileError(f"{path}: {label}: attribute {attribute.name!r} refers to a function's "
+                                 "attribute, which Stepper does not resolve")
+        value = helper.get_attribute_value(attribute)
+        attributes[attribute.name] = value.decode("utf-8", "replace") if isinstance(value, bytes) else value
+    return Node(index, proto.name, proto.op_type, tuple(proto.input), tuple(proto.output), attributes)
+
+
+def _check_dims(graph: OnnxGraph, where: str, dims: tuple[int, ...]) -> None:
+    if any(d < 0 for d in dims):
+        raise graph.fail(f"{where} has a negative dimension {dims}")
+    total = 1
+    for d in dims:
+        total *= d
+    if total > MAX_TENSOR_ENTRIES:
+        raise graph.fail(f"{where} has {total:,} entries; Stepper reads at most {MAX_TENSOR_ENTRIES:,}")
+
+
+def _external(graph: OnnxGraph, where: str, tensor: Any, dtype: str, dims: tuple[int, ...]) -> Any:
+    """Values of a tensor stored in a file beside the model; never a file outside the model's folder."""
+    entries = {entry.key: entry.value for entry in tensor.external_data}
+    location = entries.get("location", "")
+    folder = Path(os.path.realpath(graph.path.parent))
+    if not location or Path(location).is_absolute() or "\0" in location:
+        raise graph.fail(f"{where}: external data location {location!r} is not a file name inside the "
+                         "model's folder; Stepper follows external data only within that folder")
+    target = Path(os.path.realpath(folder / location))
+    if not target.is_relative_to(folder):
+        raise graph.fail(f"{where}: external data location {location!r} leads outside the model's folder; "
+                         "Stepper follows external data only within that folder")
+    width = 4 if dtype == "float32" else 8
+    count = 1
+    for d in dims:
+        count *= d
+    try:
+        offset = int(entries.get("offset", "0"))
+        length = int(entries.get("length", str(count * width)))
+    except ValueError:
+        raise graph.fail(f"{where}: external data offset or length is not a whole number") from None
+    if offset < 0 or length != count * width:
+        raise graph.fail(f"{where}: external data of {length} bytes at offset {offset} does not fit its "
+                         f"shape {dims} ({count * width} bytes of {dtype})")
+    try:
+        info = os.stat(target)
+        if not stat.S_ISREG(info.st_mode):
+            raise graph.fail(f"{where}: external data {location!r} is not a regular file")
+        if offset + length > info.st_size:
+            raise graph.fail(f"{where}: external data {location!r} ends before offset {offset} + {length} bytes")
+        with open(target, "rb") as handle:
+            handle.seek(offset)
+            data = handle.read(length)
+    except FileNotFoundError:
+        raise graph.fail(f"{where}: external data file {location!r} is missing") from None
+    except OSError as exc:
+        raise graph.fail(f"{where}: external data {location!r} cannot be read ({exc.strerror})") from None
+    return np.frombuffer(data, dtype="<f4" if dtype == "float32" else "<f8").reshape(dims)
+
+
+def _type_name(code: int) -> str:
+    from onnx import TensorProto
+
+    try:
+        return str(TensorProto.DataType.Name(int(code)))
+    except ValueError:
+        return f"code {code}"
