@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import argparse
-import json
 import sys
 import textwrap
 from pathlib import Path
@@ -15,7 +14,6 @@ from stepper.commands.common import (
     add_model_argument,
     add_resume_option,
     add_slope_options,
-    fmt,
     positive_float,
     load,
     positive_int,
@@ -23,15 +21,20 @@ from stepper.commands.common import (
     resumed_weights,
     sample_limit,
 )
+from stepper.commands.check_rows import WeightRows, dump_document, mark, name_width, write_table_rows
 from stepper.core.compare import VERDICTS
 from stepper.core.diagnosis import Hint, diagnose
+from stepper.core.directional import DirectionalCheck, iter_directional_check
 from stepper.core.gradcheck import CheckResult, iter_check
 from stepper.core.health import RATIO_TYPICAL, HealthReport, layer_health
 from stepper.core.input_slopes import DEFAULT_SAMPLES, InputSlopeCheck, check_input_slopes
 from stepper.core.gemm import ScaledDense
 from stepper.core.layers import Dense
+from stepper.core.names import name_at
 from stepper.core.network import Network
 from stepper.core.numeric import run_to_end
+from stepper.core.selection import WeightChoice, choose, every_weight
+from stepper.errors import UsageError
 from stepper.formats.model_file import Setup
 
 #: Rate for the layer health when neither --rate nor a checkpoint gives one (common practice).
@@ -54,10 +57,33 @@ def add_parser(subs: Any) -> None:
                    "common practice, or the checkpoint's with --resume)")
     p.add_argument("--input-samples", type=positive_int, default=DEFAULT_SAMPLES, metavar="N",
                    help=f"samples on which custom layers' input slopes are checked (default {DEFAULT_SAMPLES})")
+    p.add_argument("--weights", default=None, metavar="SPEC",
+                   help="check only some weights: a share (1%%), a count (500), or a name pattern "
+                   "(L2.*, L1.b[*]); a share or count is a seeded random draw from every array "
+                   "(default: every weight, or none with --directions)")
+    p.add_argument("--directions", type=positive_int, default=None, metavar="K",
+                   help="check each parameter array along K random directions (2K cost evaluations "
+                   "per array): a quick check of the whole model")
+    p.add_argument("--seed", type=int, default=0,
+                   help="seed of the random weights of --weights and of the --directions (default 0)")
     p.add_argument("--json", action="store_true", help="print one JSON document instead of a table")
     p.add_argument("--worst", type=positive_int, default=None, metavar="N",
                    help="list only the N weights with the largest relative error")
+    p.add_argument("--problems-only", action="store_true",
+                   help="list only the weights whose verdict is not agree (table and JSON)")
     p.set_defaults(handler=handle)
+
+
+def weight_choice(args: argparse.Namespace, net: Network) -> WeightChoice | None:
+    """The weights to check one by one: ``--weights``, or all, or none when only ``--directions`` is asked."""
+    if args.seed < 0:
+        raise UsageError(f"--seed {args.seed}: a seed is a whole number, 0 or more")
+    if args.weights is None:
+        return None if args.directions is not None else every_weight(net.layout)
+    try:
+        return choose(net.layout, args.weights, args.seed)
+    except ValueError as exc:
+        raise UsageError(f"--weights {args.weights}: {exc}") from None
 
 
 def handle(args: argparse.Namespace) -> int:
@@ -65,35 +91,65 @@ def handle(args: argparse.Namespace) -> int:
     X, Y = sample_limit(setup, args.samples)
     net = setup.network
     theta, rate = resumed_weights(setup, args.resume, args.rate, HEALTH_RATE)
+    choice = weight_choice(args, net)
+    result: CheckResult | None = None
+    directions: DirectionalCheck | None = None
     # Overflow and NaN show up in the report (a non-finite slope disagrees);
     # numpy's warnings about them would only add lines of noise on stderr.
     with np.errstate(over="ignore", invalid="ignore", divide="ignore", under="ignore"):
-        result = run_to_end(
-            iter_check(setup.network, theta, X, Y, args.method, args.delta),
-            progress_printer("numeric slopes"),
-        )
-        assert result is not None
+        if choice is not None:
+            result = run_to_end(
+                iter_check(net, theta, X, Y, args.method, args.delta, which=choice.indices),
+                progress_printer("numeric slopes"),
+            )
+            assert result is not None
+        if args.directions is not None:
+            directions = run_to_end(
+                iter_directional_check(net, theta, X, Y, args.directions, args.seed, args.method,
+                                       args.delta, None if result is None else result.analytic),
+                progress_printer("directions"),
+            )
+            assert directions is not None
         health = layer_health(net, theta, X, Y, rate)
         inputs = [
             check_input_slopes(net, theta, X, Y, i, args.input_samples, args.method, args.delta)
             for i, layer in enumerate(net.layers) if not isinstance(layer, (Dense, ScaledDense))
         ]
-    passed = result.passed and all(c.passed for c in inputs)
-    hints = diagnose(net, result, X.shape[0], inputs)
+    passed = ((result is None or result.passed) and (directions is None or directions.passed)
+              and all(c.passed for c in inputs))
+    rows = listed_rows(result, choice, args.worst if not args.json else None, args.problems_only)
+    hints = diagnose(net, result, X.shape[0], inputs) if result is not None else []
     if args.json:
-        doc = check_document(setup, result, X.shape[0], theta)
+        doc = check_document(setup, result, X.shape[0], choice, rows, theta)
         doc["checkpoint"] = None if args.resume is None else str(args.resume)
         doc["passed"] = passed
+        doc["directions"] = None if directions is None else directions_document(directions)
         doc["input_slopes"] = [input_slopes_document(c) for c in inputs]
         doc["hints"] = [hint_document(h) for h in hints]
         doc["health"] = health_document(health)
         # JSON (RFC 8259) has no NaN or Infinity: non-finite numbers become null.
-        json.dump(_json_safe(doc), sys.stdout, indent=1, allow_nan=False)
-        sys.stdout.write("\n")
+        dump_document(_json_safe(doc), sys.stdout)
     else:
-        print_report(setup, result, X.shape[0], args.worst, inputs, theta, args.resume, hints)
+        print_report(setup, result, X.shape[0], rows, choice, inputs, directions, theta, args.resume, hints)
         print_health(health)
     return 0 if passed else 1
+
+
+def listed_rows(result: CheckResult | None, choice: WeightChoice | None, worst: int | None,
+                problems_only: bool) -> np.ndarray[Any, np.dtype[np.int64]]:
+    """Flat indices of the weights to list: the checked ones in flat order, or the ``worst`` first.
+
+    With ``problems_only`` only those whose verdict is not ``agree``.
+    """
+    if result is None or choice is None:
+        return np.empty(0, dtype=np.int64)
+    rows = choice.indices
+    if problems_only:
+        rows = rows[result.verdict[rows] != "agree"]
+    if worst is not None:
+        rel = np.where(np.isnan(result.rel_error[rows]), -1.0, result.rel_error[rows])
+        rows = rows[np.argsort(-rel, kind="stable")[:worst]]
+    return rows
 
 
 def layer_summary(net: Network) -> list[dict[str, Any]]:
@@ -113,29 +169,18 @@ def layer_summary(net: Network) -> list[dict[str, Any]]:
     return out
 
 
-def check_document(setup: Setup, result: CheckResult, n_samples: int,
-                   theta: np.ndarray[Any, Any] | None = None) -> dict[str, Any]:
-    """The JSON form of a check at ``theta`` (``(n_params,)``; the model's initial values when None)."""
+def check_document(setup: Setup, result: CheckResult | None, n_samples: int, choice: WeightChoice | None,
+                   rows: np.ndarray[Any, np.dtype[np.int64]], theta: np.ndarray[Any, Any] | None = None
+                   ) -> dict[str, Any]:
+    """The JSON form of a check at ``theta`` (``(n_params,)``; the model's initial values when None).
+
+    Its ``weights`` (the rows listed) are streamed when the document is written.
+    """
     if theta is None:
         theta = setup.theta0
     net = setup.network
     layout = net.layout
-    sources = setup.origin.source_names(layout) if setup.origin is not None else (None,) * net.n_params
-    weights = []
-    for i, name in enumerate(layout.names):
-        block = layout.block_of(i)
-        weights.append({
-            "name": name,
-            "source": sources[i],
-            "layer": block.layer + 1,
-            "kind": block.kind,
-            "indices": list(layout.indices(i)),
-            "value": float(theta[i]),
-            "analytic": float(result.analytic[i]),
-            "numeric": _finite_or_none(result.numeric[i]),
-            "relative_error": _finite_or_none(result.rel_error[i]),
-            "verdict": str(result.verdict[i]),
-        })
+    none = {"count": 0, "of": net.n_params, "chosen": "none", "spec": None, "seed": None}
     return {
         "model": {
             "name": setup.name,
@@ -147,13 +192,15 @@ def check_document(setup: Setup, result: CheckResult, n_samples: int,
             "loss": net.loss,
             "parameters": net.n_params,
         },
-        "cost": result.cost,
+        "cost": result.cost if result is not None else None,
         "samples": n_samples,
-        "settings": {"method": result.method, "h": result.h},
-        "counts": result.counts,
-        "passed": result.passed,
-        "worst": layout.names[result.worst()],
-        "weights": weights,
+        "settings": {"method": result.method if result is not None else None,
+                     "h": result.h if result is not None else None},
+        "checked": choice.as_dict() if choice is not None else none,
+        "counts": result.counts if result is not None else {v: 0 for v in VERDICTS},
+        "passed": result.passed if result is not None else True,
+        "worst": name_at(layout, result.worst()) if result is not None and choice is not None else None,
+        "weights": WeightRows(layout, theta, result, rows, setup.origin),
     }
 
 
@@ -183,75 +230,114 @@ def _json_safe(value: Any) -> Any:
     return value
 
 
-def print_report(setup: Setup, result: CheckResult, n_samples: int, worst: int | None,
-                 inputs: list[InputSlopeCheck] | None = None, theta: np.ndarray[Any, Any] | None = None,
-                 checkpoint: Path | None = None, hints: list[Hint] | None = None) -> None:
-    """The table, then a summary; ``theta`` ``(n_params,)`` is where the slopes were taken.
+def print_report(setup: Setup, result: CheckResult | None, n_samples: int,
+                 rows: np.ndarray[Any, np.dtype[np.int64]], choice: WeightChoice | None,
+                 inputs: list[InputSlopeCheck] | None = None, directions: DirectionalCheck | None = None,
+                 theta: np.ndarray[Any, Any] | None = None, checkpoint: Path | None = None,
+                 hints: list[Hint] | None = None) -> None:
+    """The tables, then a summary; ``theta`` ``(n_params,)`` is where the slopes were taken.
 
     Where slopes disagree the summary gives the likely causes (``hints``) instead of the worst weight.
     """
     if theta is None:
         theta = setup.theta0
     net = setup.network
-    names = net.layout.names
-    order = np.arange(net.n_params)
-    if worst is not None:
-        rel = np.where(np.isnan(result.rel_error), -1.0, result.rel_error)
-        order = np.argsort(-rel, kind="stable")[:worst]
-    width = max(12, max(len(names[i]) for i in order))
+    layout = net.layout
     out = sys.stdout
+    method, h = (result.method, result.h) if result is not None else (
+        (directions.method, directions.h) if directions is not None else ("central", float("nan")))
     out.write(f"{setup.name}: {net.n_params} parameters, {n_samples} samples, loss {net.loss}, "
-              f"{result.method} differences, h = {result.h:.3g}\n")
+              f"{method} differences, h = {h:.3g}\n")
     if checkpoint is not None:
         out.write(f"weights from {checkpoint}\n")
-    out.write("\n")
-    header = (f"{'weight'.ljust(width)}  {'value':>12}  {'analytic':>12}  {'numeric':>12}  "
-              f"{'rel. error':>10}  verdict")
-    sources = setup.origin.source_names(net.layout) if setup.origin is not None else None
-    if sources is not None:
-        header += f"        in {setup.origin.file.name}" if setup.origin is not None else ""
-    out.write(header + "\n")
-    out.write("-" * len(header) + "\n")
-    for i in order:
-        rel = result.rel_error[i]
-        rel_text = "-" if rel != rel else f"{rel:.2e}"
-        source = "" if sources is None or sources[i] is None else f"  {sources[i]}"
-        out.write(
-            f"{names[i].ljust(width)}  {fmt(theta[i])}  {fmt(result.analytic[i])}  "
-            f"{fmt(result.numeric[i])}  {rel_text:>10}  {_mark(str(result.verdict[i])):<13}{source}".rstrip()
-            + "\n"
-        )
-    counts = result.counts
-    w = result.worst()
+    if choice is not None and not choice.is_all:
+        out.write(f"checked {choice.describe()}\n")
+    if result is not None and choice is not None:
+        width = max(12, name_width(layout, rows))
+        header = (f"{'weight'.ljust(width)}  {'value':>12}  {'analytic':>12}  {'numeric':>12}  "
+                  f"{'rel. error':>10}  verdict")
+        if setup.origin is not None:
+            header += f"        in {setup.origin.file.name}"
+        out.write("\n" + header + "\n")
+        out.write("-" * len(header) + "\n")
+        write_table_rows(out, layout, theta, result, rows, width, setup.origin)
+    if directions is not None:
+        print_directions(directions)
     inputs = inputs or []
     if inputs:
         print_input_slopes(inputs)
     out.write("\n")
-    out.write(f"cost        {result.cost:.10g}"
-              + ("" if np.isfinite(result.cost) else "  (not a finite number: no slope can be checked here)")
+    cost = result.cost if result is not None else (directions.cost if directions is not None else float("nan"))
+    out.write(f"cost        {cost:.10g}"
+              + ("" if np.isfinite(cost) else "  (not a finite number: no slope can be checked here)")
               + "\n")
-    out.write("verdicts    " + ", ".join(f"{counts[v]} {v}" for v in VERDICTS) + "\n")
-    if hints:
-        for hint in hints:
+    failures = []
+    if result is not None and choice is not None:
+        counts = result.counts
+        w = result.worst()
+        out.write("verdicts    " + ", ".join(f"{counts[v]} {v}" for v in VERDICTS)
+                  + ("" if choice.is_all else f" (of the {choice.count:,} checked)") + "\n")
+        for hint in hints or []:
             out.write(textwrap.fill(hint.text, 79, initial_indent="why         ", subsequent_indent=" " * 12,
                                     break_long_words=False, break_on_hyphens=False) + "\n")
-    else:
-        out.write(f"worst       {names[w]} (relative error {result.rel_error[w]:.2e}, {result.verdict[w]})\n")
+        if not hints:
+            out.write(f"worst       {name_at(layout, w)} (relative error {result.rel_error[w]:.2e}, "
+                      f"{result.verdict[w]})\n")
+        if not result.passed:
+            failures.append("some slopes disagree")
+    if directions is not None:
+        counts = directions.counts
+        out.write(f"directions  {len(directions.arrays)} arrays: "
+                  + ", ".join(f"{counts[v]} {v}" for v in VERDICTS) + "\n")
+        if not directions.passed:
+            bad = [a.block.prefix for a in directions.arrays if a.verdict == "disagree"]
+            failures.append(f"the slopes of {', '.join(bad)} disagree along random directions")
     bad_inputs = [f"L{c.layer + 1}" for c in inputs if not c.passed]
-    if not result.passed:
-        verdict = "FAIL: some slopes disagree"
-    elif bad_inputs:
-        verdict = f"FAIL: the input slopes (dX) of custom layer {', '.join(bad_inputs)} disagree"
-    else:
-        verdict = "PASS: every slope agrees"
+    if bad_inputs:
+        failures.append(f"the input slopes (dX) of custom layer {', '.join(bad_inputs)} disagree")
+    verdict = "FAIL: " + "; ".join(failures) if failures else "PASS: every slope agrees"
+    if not failures and choice is not None and not choice.is_all:
+        verdict += f" (of the {choice.count:,} weights checked)"
     out.write(f"result      {verdict}\n")
 
 
-_MARKS = {"agree": "ok  agree", "doubtful": "?   doubtful", "disagree": "XX  disagree", "kink": "~   kink"}
+def print_directions(check: DirectionalCheck) -> None:
+    """One line per array: its directions' worst relative error and its verdict."""
+    out = sys.stdout
+    out.write(f"\ndirectional check: each array along {check.k} random unit directions (seed {check.seed}), "
+              f"{check.method} differences, h = {check.h:.3g}\n")
+    width = max(8, max(len(a.block.prefix) for a in check.arrays))
+    header = (f"{'array'.ljust(width)}  {'entries':>9}  {'|analytic| max':>14}  {'worst rel. error':>16}  "
+              f"verdict")
+    out.write(header + "\n" + "-" * len(header) + "\n")
+    for a in check.arrays:
+        largest = float(np.max(np.abs(a.analytic)))
+        out.write(f"{a.block.prefix.ljust(width)}  {a.block.size:>9}  {largest:>14.4e}  "
+                  f"{a.worst_error:>16.2e}  {mark(a.verdict)}\n")
 
 
-def _mark(verdict: str) -> str:
-    return _MARKS.get(verdict, verdict)
+def directions_document(check: DirectionalCheck) -> dict[str, Any]:
+    """The JSON form of a directional check."""
+    return {
+        "k": check.k,
+        "seed": check.seed,
+        "method": check.method,
+        "h": check.h,
+        "counts": check.counts,
+        "passed": check.passed,
+        "arrays": [{
+            "array": a.block.prefix,
+            "layer": a.block.layer + 1,
+            "kind": a.block.kind,
+            "entries": a.block.size,
+            "verdict": a.verdict,
+            "worst_relative_error": _finite_or_none(a.worst_error),
+            "analytic": a.analytic.tolist(),
+            "numeric": a.numeric.tolist(),
+            "relative_error": a.rel_error.tolist(),
+            "verdicts": [str(v) for v in a.verdicts],
+        } for a in check.arrays],
+    }
 
 
 # -- custom layers' input slopes and layer health ------------------------------------------------

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Iterable
 
 import numpy as np
 from numpy.typing import NDArray
@@ -64,8 +65,13 @@ def iter_check(
     method: str = "central",
     h: float | None = None,
     limits: Thresholds = Thresholds(),
+    which: Iterable[int] | None = None,
 ) -> Progress[CheckResult]:
-    """Run the whole check, yielding ``(done, total)`` progress from the numeric pass."""
+    """Run the check, yielding ``(done, total)`` progress from the numeric pass.
+
+    ``which`` limits the numeric slopes to those flat indices (all when None);
+    the others get no verdict (``""``).
+    """
     cost, analytic = net.cost_and_slopes(theta, X, Y)
-    numeric = yield from iter_numeric_slopes(net, theta, X, Y, method, h)
+    numeric = yield from iter_numeric_slopes(net, theta, X, Y, method, h, which)
     return compare(cost, analytic, numeric, limits)
