@@ -173,6 +173,20 @@ def build_custom_layer(keys: Any, n_in: int, model_path: Path) -> CustomLayer:
         user = cls(n_in=n_in, units=units, options=dict(options))
     except Exception as exc:
         raise CustomLayerError(f"{where}: {_raised('creating the layer', exc, path)}") from None
+    return wrap_user_layer(where, path, class_name, user, n_in, units)
+
+
+def wrap_user_layer(where: str, path: Path, class_name: str, user: Any, n_in: int,
+                    units: int | None) -> CustomLayer:
+    """Wrap an instance of a user's layer class, checking ``n_out``, ``bias_keys`` and ``init``.
+
+    ``where`` starts every message; ``path`` is the user's file (its lines are
+    quoted from tracebacks); ``units``, when given, must equal ``n_out``.
+    """
+    for method in REQUIRED:
+        if not callable(getattr(user, method, None)):
+            raise CustomLayerError(f"{where}: {class_name} has no {method} method "
+                                   "(a custom layer needs init, forward and backward; see README.md, Custom layers)")
     n_out = getattr(user, "n_out", None)
     if isinstance(n_out, bool) or not isinstance(n_out, (int, np.integer)) or n_out < 1:
         raise CustomLayerError(f"{where}: after __init__, n_out is {n_out!r}; "

@@ -62,7 +62,7 @@ def _patched(network: Network, theta: Array, origin: WeightOrigin, dtype: str) -
     floats = (onnx.TensorProto.FLOAT, onnx.TensorProto.DOUBLE)
     for index, tensor in enumerate(model.graph.initializer):
         if tensor.name in arrays:
-            values = arrays[tensor.name].astype(_np_dtype(dtype))
+            values: NDArray[Any] = arrays[tensor.name].astype(_np_dtype(dtype))
         elif tensor.data_type in floats and dtype != origin.dtype:
             values = numpy_helper.to_array(tensor).astype(_np_dtype(dtype))
         else:
