@@ -28,7 +28,7 @@ ROOT = Path(__file__).resolve().parents[1] / "scenarios"
 NAMES = sorted(p.name for p in ROOT.iterdir() if (p / "model.toml").is_file())
 
 #: Patterns pyproject.toml ships as package data for the scenarios.
-SHIPPED = ("*.toml", "*.csv", "*.md", "*.py", "*.safetensors")
+SHIPPED = ("*.toml", "*.csv", "*.md", "*.py", "*.safetensors", "*.onnx")
 
 #: The plain-descent rate each scenario's README suggests, and how far 50
 #: updates at that rate must bring the training cost down (a fraction of the
@@ -40,6 +40,7 @@ TRAINING_RATES = {
     "sensor-drift": (0.3, 0.6),
     "hive-gate-fixed": (0.3, 0.6),
     "hive-gate-buggy": (0.3, 0.6),
+    "glasshouse-vents": (2.0, 0.05),
 }
 
 #: Scenarios whose slopes are wrong on purpose, to show what the check finds;
@@ -102,6 +103,31 @@ def test_make_data_reproduces_the_csv(name: str, tmp_path: Path) -> None:
         timeout=60,
     )
     assert out.read_bytes() == (ROOT / name / "data.csv").read_bytes()
+
+
+@pytest.mark.parametrize("name", [n for n in NAMES if (ROOT / n / "make_network.py").is_file()])
+def test_make_network_reproduces_the_onnx_file(name: str, tmp_path: Path) -> None:
+    out = tmp_path / "net.onnx"
+    subprocess.run(
+        [sys.executable, str(ROOT / name / "make_network.py"), str(out)],
+        check=True,
+        capture_output=True,
+        timeout=60,
+    )
+    assert out.read_bytes() == (ROOT / name / "net.onnx").read_bytes()
+
+
+def test_the_onnx_scenario_runs_in_onnxruntime_as_stepper_computes() -> None:
+    # onnxruntime, the ONNX project's inference engine, runs the bundled graph
+    # (float32) on the scenario's inputs.
+    import onnxruntime
+
+    setup = setup_of("glasshouse-vents")
+    session = onnxruntime.InferenceSession(str(ROOT / "glasshouse-vents" / "net.onnx"),
+                                           providers=["CPUExecutionProvider"])
+    X = setup.data.X
+    reference = session.run(None, {"readings": X.astype(np.float32)})[0]
+    np.testing.assert_allclose(setup.network.predict(setup.theta0, X), reference, rtol=1e-5, atol=1e-6)
 
 
 @pytest.mark.parametrize("name", NAMES)
