@@ -75,6 +75,10 @@ class StepperApp(DescentKeys, SlopeKeys, EditKeys, ViewKeys, WhyKeys, FileKeys, 
 
     def on_mount(self) -> None:
         self.sub_title = self.session.setup.name
+        origin = self.session.setup.origin
+        if origin is not None:
+            self.table.sources = origin.source_names(self.session.net.layout)
+            self.table.source_file = origin.file.name
         self.refresh_view()
         self.table.focus()
 

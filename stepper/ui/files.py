@@ -5,8 +5,16 @@ from __future__ import annotations
 from pathlib import Path
 from typing import Callable
 
+from stepper.errors import StepperError
+from stepper.formats.export import export_weights
+from stepper.formats.weight_sources import DTYPES
+from stepper.formats.weights_export import LAYOUTS
 from stepper.ui.base import AppBase
 from stepper.ui.dialogs import ConfirmScreen, HelpScreen, QuitScreen
+
+
+#: Words after the path in the save prompt that make it an export.
+EXPORT_WORDS = set(LAYOUTS) | set(DTYPES)
 
 
 class FileKeys(AppBase):
@@ -16,29 +24,60 @@ class FileKeys(AppBase):
         self.save_then(None)
 
     def save_then(self, after: Callable[[], None] | None) -> None:
-        """Ask for a path and save a checkpoint there; then run ``after`` if the save worked."""
+        """Ask for a path and save a checkpoint there; then run ``after`` if the save worked.
+
+        A path ending in ``.onnx``, or followed by a layout word (``torch``, ``stepper``),
+        exports the weights instead (``stepper export``); ``float32``/``float64`` picks the type.
+        """
         if self.busy():
             return
 
-        def write(path: Path) -> None:
-            if self.apply(lambda: self.session.save_checkpoint(path)):
+        def write(path: Path, export: tuple[str | None, str | None] | None) -> None:
+            if export is not None:
+                self._export(path, *export)
+            elif self.apply(lambda: self.session.save_checkpoint(path)):
                 self.say(f"saved {path}")
                 if after is not None:
                     after()
 
         def chosen(text: str) -> None:
-            if not text.strip():
+            words = text.split()
+            options: list[str] = []
+            while words and words[-1] in EXPORT_WORDS:
+                options.insert(0, words.pop())
+            if not words:
                 self.say("no path given: nothing saved", error=True)
                 return
-            path = Path(text.strip()).expanduser()
+            path = Path(" ".join(words)).expanduser()
+            export = None
+            if options or path.suffix.lower() == ".onnx":
+                export = (next((w for w in options if w in LAYOUTS), None),
+                          next((w for w in options if w in DTYPES), None))
             if path.exists():
                 self.push_screen(ConfirmScreen(f"{path} exists. Overwrite it? (y: yes, any other key: no)"),
-                                 lambda yes: write(path) if yes else self.say("nothing saved"))
+                                 lambda yes: write(path, export) if yes else self.say("nothing saved"))
             else:
-                write(path)
+                write(path, export)
 
-        self.ask("Save checkpoint", "Path of the checkpoint (.safetensors):",
+        self.ask("Save checkpoint or export",
+                 "Path of the checkpoint (.safetensors), or to export the weights: a .onnx path, or a "
+                 ".safetensors path then torch or stepper (add float32 for that type):",
                  str(self.session.default_checkpoint_path()), chosen)
+
+    def _export(self, path: Path, layout: str | None, dtype: str | None) -> None:
+        """Write the current weights for another program (the session itself is unchanged)."""
+        if self.busy():
+            return
+        last = self.session.last_checkpoint
+        try:
+            done = export_weights(self.session.setup, self.session.theta.copy(), path, layout, dtype,
+                                  () if last is None else (last,))
+        except StepperError as exc:
+            self.say(exc.message, error=True)
+            return
+        what = "ONNX" if done.kind == "onnx" else f"{done.layout} layout"
+        self.say(f"exported {path} ({what}, {done.dtype}): training cost at the weights written "
+                 f"{done.written_cost:.6g}; the session itself is not saved")
 
     def action_load(self) -> None:
         if self.busy():

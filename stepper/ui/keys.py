@@ -105,7 +105,8 @@ KEYS: tuple[Key, ...] = (
     Key("j", "jump", "jump", "jump to a weight by name, e.g. L2.W[0,1]", "table"),
     # -- plot and files --------------------------------------------------------------------
     Key("y", "toggle_log", "log cost", "cost plot: log or linear y axis", "plot"),
-    Key("w", "save", "save", "save a checkpoint (asks for the path)", "files", footer=True),
+    Key("w", "save", "save", "save a checkpoint, or export the weights (asks for the path)", "files",
+        footer=True),
     Key("l", "load", "load", "load a checkpoint (asks for the path)", "files"),
     Key("question_mark,f1", "help", "help", "this list of keys", "app", footer=True, display="?"),
     Key("q", "quit", "quit", "quit (asks first when there are unsaved changes)", "app", footer=True),

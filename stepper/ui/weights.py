@@ -183,6 +183,9 @@ class WeightTable(ScrollView, can_focus=True):
         self._style_cache: dict[tuple[str, ...], Style] = {}
         super().__init__(name=name, id=id, classes=classes)
         self.snapshot: Snapshot | None = None
+        #: Each weight's tensor in the file it came from (``fc1.weight[0,3]``), and that file's name.
+        self.sources: tuple[str | None, ...] | None = None
+        self.source_file = ""
         self.sort_key = "name"
         self.descending = False
         self.layer_filter: int | None = None
@@ -271,6 +274,9 @@ class WeightTable(ScrollView, can_focus=True):
             parts.append("in network order" if not self.descending else "in reverse network order")
         else:
             parts.append(f"by {title}, {'largest' if self.descending else 'smallest'} first")
+        if self.sources is not None and self._selected is not None and self.sources[self._selected]:
+            parts.append(f"{self.snapshot.names[self._selected] if self.snapshot else ''} is "
+                         f"{self.sources[self._selected]} of {self.source_file}")
         return " | ".join(parts)
 
     def _filter_mask(self, snap: Snapshot) -> NDArray[np.bool_]:
@@ -324,6 +330,8 @@ class WeightTable(ScrollView, can_focus=True):
             self.scroll_to(y=row - self.page_rows + 1, animate=False, immediate=True)
         self.refresh()
         if force or old_selected != self._selected:
+            if self.sources is not None:
+                self.border_title = self.describe()
             self.post_message(self.Selected(self, self._selected))
 
     def action_cursor(self, delta: int) -> None:
