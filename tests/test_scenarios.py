@@ -93,28 +93,22 @@ def test_every_slope_agrees(name: str, capsys: pytest.CaptureFixture[str]) -> No
     assert report["counts"]["agree"] == report["model"]["parameters"]
 
 
-@pytest.mark.parametrize("name", [n for n in NAMES if (ROOT / n / "make_data.py").is_file()])
-def test_make_data_reproduces_the_csv(name: str, tmp_path: Path) -> None:
-    out = tmp_path / "data.csv"
+#: Seeded scripts beside the files they write: (script, file).
+GENERATED = (("make_data.py", "data.csv"), ("make_network.py", "net.onnx"))
+
+
+@pytest.mark.parametrize("name, script, written", [
+    (n, script, written) for n in NAMES for script, written in GENERATED if (ROOT / n / script).is_file()
+])
+def test_seeded_scripts_reproduce_their_files(name: str, script: str, written: str, tmp_path: Path) -> None:
+    out = tmp_path / written
     subprocess.run(
-        [sys.executable, str(ROOT / name / "make_data.py"), str(out)],
+        [sys.executable, str(ROOT / name / script), str(out)],
         check=True,
         capture_output=True,
         timeout=60,
     )
-    assert out.read_bytes() == (ROOT / name / "data.csv").read_bytes()
-
-
-@pytest.mark.parametrize("name", [n for n in NAMES if (ROOT / n / "make_network.py").is_file()])
-def test_make_network_reproduces_the_onnx_file(name: str, tmp_path: Path) -> None:
-    out = tmp_path / "net.onnx"
-    subprocess.run(
-        [sys.executable, str(ROOT / name / "make_network.py"), str(out)],
-        check=True,
-        capture_output=True,
-        timeout=60,
-    )
-    assert out.read_bytes() == (ROOT / name / "net.onnx").read_bytes()
+    assert out.read_bytes() == (ROOT / name / written).read_bytes()
 
 
 def test_the_onnx_scenario_runs_in_onnxruntime_as_stepper_computes() -> None:
