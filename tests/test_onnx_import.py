@@ -178,3 +178,23 @@ def test_open_check_and_run_take_an_onnx_file_with_data_options(tmp_path: Path,
     onnx_out = run_onnxruntime(onnx_path, X)  # onnxruntime
     expected = -np.mean(np.log(onnx_out[np.arange(30), classes[:, 0].astype(int)]))
     assert doc["cost_before"] == pytest.approx(expected, rel=1e-12)
+
+
+def test_a_journal_of_an_onnx_file_opened_with_data_options_replays(tmp_path: Path,
+                                                                   capsys: pytest.CaptureFixture[str]) -> None:
+    # The journal records the options' document, so replay rebuilds the same setup
+    # (bit for bit, as the journal's own contract asks) without a model file.
+    from stepper.commands.replay import replay
+
+    model = chain(CASES["gemm transB=1 (PyTorch's Linear)"])
+    onnx_path, _, _ = _setup(tmp_path, model, 1)
+    journal = tmp_path / "run.jsonl"
+    options = ["--data", str(tmp_path / "data.csv"), "--targets", "y0", "--loss", "mean_squared_error"]
+    assert cli.main(["run", str(onnx_path), *options, "--steps", "7", "--rate", "0.05", "--journal", str(journal),
+                     "--save", str(tmp_path / "ck.safetensors")]) == 0
+    capsys.readouterr()
+    rebuilt = replay(journal)
+    from stepper.formats.checkpoint import load_checkpoint
+
+    saved = load_checkpoint(tmp_path / "ck.safetensors", rebuilt.net.layout)
+    assert rebuilt.step_count == 7 and rebuilt.theta.tobytes() == saved.theta.tobytes()

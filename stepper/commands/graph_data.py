@@ -8,8 +8,10 @@ table: the options are turned into that document and checked the same way.
 from __future__ import annotations
 
 import argparse
+import dataclasses
 import json
 from pathlib import Path
+from typing import Any
 
 from stepper.core.losses import LOSSES
 from stepper.errors import UsageError
@@ -53,8 +55,14 @@ def load_graph_setup(args: argparse.Namespace, model: Path) -> Setup:
         "inputs": "*" if args.inputs is None else _columns("--inputs", args.inputs),
     }
     doc = {"name": model.stem, "network": model.name, "loss": args.loss, "data": data}
+    return graph_setup(doc, model)
+
+
+def graph_setup(doc: dict[str, Any], model: Path) -> Setup:
+    """The setup of ONNX file ``model`` and the document the options built (also a journal's, on replay)."""
     options = json.dumps(doc, sort_keys=True).encode("utf-8")
-    return setup_from_doc(doc, model, options, label=f"{model} (with the data options)")
+    setup = setup_from_doc(doc, model, options, label=f"{model} (with the data options)")
+    return dataclasses.replace(setup, document=doc)
 
 
 def _columns(option: str, text: str) -> list[str]:

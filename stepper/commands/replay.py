@@ -32,7 +32,14 @@ def add_parser(subs: Any) -> None:
 def replay(journal: Path, model: Path | None = None, force: bool = False) -> Session:
     """A session rebuilt from ``journal``; the journal itself is not written to."""
     header, entries = read_numbered_journal(journal)
-    setup = load_setup(model if model is not None else Path(str(header.get("model"))))
+    document = (header.get("start") or {}).get("document") if isinstance(header.get("start"), dict) else None
+    if model is None and isinstance(document, dict):
+        # An ONNX file that was opened with --data, --targets and --loss: the options built this document.
+        from stepper.commands.graph_data import graph_setup
+
+        setup = graph_setup(document, Path(str(header.get("model"))))
+    else:
+        setup = load_setup(model if model is not None else Path(str(header.get("model"))))
     if setup.digest != header.get("digest") and not force:
         raise CheckpointError(
             f"{journal}: the model file {setup.path} has changed since the journal was written "

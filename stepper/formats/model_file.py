@@ -94,6 +94,9 @@ class Setup:
             the ONNX file's after them when the model file names one.
         origin: the file the weights came from and the tensor behind each array
             (an ONNX graph, or a framework's weights file), or None.
+        document: the model document when it was built from command-line
+            options rather than read from a model file (a journal records it,
+            so a replay can build it again), else None.
     """
 
     path: Path
@@ -103,6 +106,7 @@ class Setup:
     data: Dataset
     digest: str
     origin: WeightOrigin | None = None
+    document: dict[str, Any] | None = None
 
 
 class _Keys:

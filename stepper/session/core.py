@@ -126,9 +126,11 @@ class SessionCore:
         self.history: list[HistoryEntry] = [self._entry()]
         self.journal: JournalWriter | None = None
         if journal is not None:
-            self.journal = JournalWriter(journal, setup.path, setup.digest,
-                                         {"rate": self.rate, "rule": self.rule, "seed": self.seed,
-                                          "slope_source": self.slope_source, "batch_size": self.batch_size})
+            start = {"rate": self.rate, "rule": self.rule, "seed": self.seed,
+                     "slope_source": self.slope_source, "batch_size": self.batch_size}
+            if setup.document is not None:
+                start["document"] = setup.document  # an ONNX file opened with --data ...: how to rebuild it
+            self.journal = JournalWriter(journal, setup.path, setup.digest, start)
 
     # -- read-only views -------------------------------------------------------------------
 
