@@ -28,7 +28,8 @@ from pathlib import Path
 from typing import Any
 
 from stepper.errors import CheckpointError
-from stepper.session.core import MIN_UNDO, SLOPE_SOURCES, UNDO_BYTES, HistoryEntry, StepReport
+from stepper.session.core import SLOPE_SOURCES, UNDO_BYTES, HistoryEntry, StepReport
+from stepper.session.undo import undo_budget
 from stepper.session.edits import Edits
 from stepper.session.files import Files
 from stepper.session.folders import default_journal_for, session_folder_for
@@ -36,7 +37,6 @@ from stepper.session.runaway import RUN_ON, RunawayRule
 from stepper.session.stepping import Stepping
 
 __all__ = [
-    "MIN_UNDO",
     "RUN_ON",
     "SLOPE_SOURCES",
     "UNDO_BYTES",
@@ -45,6 +45,7 @@ __all__ = [
     "Session",
     "StepReport",
     "default_journal_for",
+    "undo_budget",
     "session_folder_for",
 ]
 

@@ -24,15 +24,13 @@ from stepper.formats.journal import JournalWriter
 from stepper.formats.model_file import Setup
 from stepper.session.folders import default_journal_for, session_folder_for
 from stepper.session.runaway import RunawayRule
+from stepper.session.undo import UNDO_BYTES as UNDO_BYTES  # re-exported: the undo budget's ceiling
+from stepper.session.undo import RuleBits, compact, flip, flipped, saved_bytes, undo_budget
 
 Array = NDArray[np.float64]
 
 SLOPE_SOURCES = ("analytic", "numeric")
 
-#: Undo history is trimmed (oldest first) beyond this many bytes of saved arrays,
-#: always keeping at least MIN_UNDO levels.
-UNDO_BYTES = 256 * 1024 * 1024
-MIN_UNDO = 20
 
 
 @dataclass(frozen=True)
@@ -64,21 +62,8 @@ class _Change:
     after: dict[str, Any]
 
     def nbytes(self) -> int:
-        total = 0
-        for side in (self.before, self.after):
-            for value in side.values():
-                total += _nbytes(value)
-        return total
-
-
-def _nbytes(value: Any) -> int:
-    if isinstance(value, np.ndarray):
-        return int(value.nbytes)
-    if isinstance(value, RuleState):
-        return sum(int(a.nbytes) for a in value.arrays.values())
-    if isinstance(value, tuple):
-        return sum(_nbytes(v) for v in value)
-    return 64
+        """Bytes of the arrays this change holds (an array both sides share counts once)."""
+        return saved_bytes(self.before, self.after)
 
 
 class SessionCore:
@@ -120,6 +105,9 @@ class SessionCore:
         self.last_checkpoint: Path | None = None
         self._undo: list[_Change] = []
         self._redo: list[_Change] = []
+        self._undo_bytes = 0
+        #: Bytes of saved arrays the undo levels may keep (stepper.session.undo).
+        self.undo_budget = undo_budget(n)
         self._version = 0
         self._check_version = -1
         self._cache: dict[str, tuple[int, Any]] = {}
@@ -154,6 +142,15 @@ class SessionCore:
     @property
     def can_redo(self) -> bool:
         return bool(self._redo)
+
+    @property
+    def undo_levels(self) -> int:
+        """How many operations undo can take back now (the oldest are dropped past the budget)."""
+        return len(self._undo)
+
+    @property
+    def redo_levels(self) -> int:
+        return len(self._redo)
 
     @property
     def check_is_stale(self) -> bool:
@@ -239,14 +236,23 @@ class SessionCore:
             if name == "theta":
                 self.theta[...] = value
                 self._version += 1
+            elif name == "theta_bits":
+                flip(self.theta, value)
+                self._version += 1
             elif name == "theta_at":
                 idx, values = value
                 self.theta[idx] = values
+                self._version += 1
+            elif name == "theta_at_bits":
+                idx, bits = value
+                self.theta[idx] = flipped(self.theta[idx], bits)
                 self._version += 1
             elif name == "frozen":
                 self.frozen[...] = value
             elif name == "rule_state":
                 self.rule_state = value.copy()
+            elif name == "rule_bits":
+                self.rule_state = self._rule_flipped(value)
             elif name == "batch_rng":
                 self.batch_rng.bit_generator.state = value
             elif name == "noise_rng":
@@ -258,12 +264,20 @@ class SessionCore:
             else:
                 setattr(self, name, value)
 
+    def _rule_flipped(self, side: RuleBits) -> RuleState:
+        """The update rule's memory on the other side of a difference (new arrays)."""
+        state = self.rule_state
+        assert state.rule == side.rule, "an undo level applied out of order"
+        return RuleState(state.rule, {k: flipped(state.arrays[k], bits) for k, bits in side.bits.items()}, side.t)
+
     def _commit(self, change: _Change, journal: dict[str, Any] | None) -> None:
+        """Record ``change`` (state now on its ``after`` side) as the newest undo level, within the budget."""
+        change.before, change.after = compact(change.before, change.after)
         self._undo.append(change)
+        self._undo_bytes += change.nbytes()
         self._redo.clear()
-        total = sum(c.nbytes() for c in self._undo)
-        while len(self._undo) > MIN_UNDO and total > UNDO_BYTES:
-            total -= self._undo.pop(0).nbytes()
+        while len(self._undo) > 1 and self._undo_bytes > self.undo_budget:
+            self._undo_bytes -= self._undo.pop(0).nbytes()
         self.dirty = True
         self._log(journal)
 
@@ -277,6 +291,7 @@ class SessionCore:
             self.last_action = "nothing to undo"
             return None
         change = self._undo.pop()
+        self._undo_bytes -= change.nbytes()
         self._restore(change.before)
         self._redo.append(change)
         self.dirty = True
@@ -292,6 +307,7 @@ class SessionCore:
         change = self._redo.pop()
         self._restore(change.after)
         self._undo.append(change)
+        self._undo_bytes += change.nbytes()
         self.dirty = True
         self.last_action = f"redid {change.name}"
         self._log({"op": "redo"})
