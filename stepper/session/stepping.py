@@ -27,7 +27,7 @@ import numpy as np
 
 from stepper.core.numeric import Progress, numeric_slopes, run_to_end
 from stepper.core.optimizers import RuleState, compute_update
-from stepper.errors import DivergenceError, RunawayError, UsageError
+from stepper.errors import DivergenceError, RunawayError, StepperError, UsageError
 from stepper.session.core import Array, SessionCore, StepReport, _Change
 from stepper.session.runaway import RunawayRule
 
@@ -60,7 +60,7 @@ class Stepping(SessionCore):
         # replay of the journal, which holds only the steps made) draws the same batch.
         rng_state = self.batch_rng.bit_generator.state
         try:
-            theta, state, cost = self._next_update()
+            theta, state, cost, slopes = self._next_update()
         except BaseException:
             self.batch_rng.bit_generator.state = rng_state
             raise
@@ -69,22 +69,35 @@ class Stepping(SessionCore):
         self.step_count += 1
         self._version += 1
         self._cache["train"] = (self._version, float(cost))
+        if slopes is not None:
+            self._cache["slopes"] = (self._version, slopes)
         self.history.append(self._entry())
 
-    def _next_update(self) -> tuple[Array, RuleState, float]:
+    def _next_update(self) -> tuple[Array, RuleState, float, Array | None]:
         """The parameters, rule state and training cost after one update; nothing is changed.
+
+        Where the next step's slopes are backpropagated on the whole training set
+        (the same rows as the cost), the one forward pass at the new parameters
+        gives both: the slopes are returned too (else None), and the next step
+        or redraw does not run the network forward again.
 
         Raises DivergenceError when the update would make a weight or the cost non-finite.
         """
         X, Y = self._batch()
         data = self.setup.data
+        next_slopes: Array | None = None
         with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
             # Overflow is expected on the way to divergence; it is caught just below.
             slopes = self._slopes(X, Y)
             delta, state = compute_update(self.rule_state, slopes, self.rate, self.frozen)
             theta = self.theta + delta
             bad = ~np.isfinite(theta)
-            cost = self.net.cost(theta, data.X, data.Y) if not bad.any() else math.nan
+            if bad.any():
+                cost = math.nan
+            elif self.slope_source == "analytic" and self.batch_size is None:
+                cost, next_slopes = self._cost_and_slopes_at(theta)
+            else:
+                cost = self.net.cost(theta, data.X, data.Y)
         if bad.any() or not math.isfinite(cost):
             if bad.any():
                 culprits = tuple(self.names[i] for i in np.flatnonzero(bad)[:5])
@@ -94,7 +107,21 @@ class Stepping(SessionCore):
                 culprits = tuple(self.names[i] for i in order)
                 what = f"the cost would become non-finite (largest moves: {', '.join(culprits)})"
             raise DivergenceError(f"step refused at rate {self.rate:g}: {what}", culprits)
-        return theta, state, float(cost)
+        return theta, state, float(cost), next_slopes
+
+    def _cost_and_slopes_at(self, theta: Array) -> tuple[float, Array | None]:
+        """Training cost at ``theta`` ``(n_params,)``, with the slopes when backpropagation gives them.
+
+        A custom layer whose backward raises there does not stop the step (its
+        forward pass worked): the slopes are left for later, as before.
+        """
+        data = self.setup.data
+        trace = self.net.forward(theta, data.X)
+        try:
+            cost, slopes, _ = self.net.backward(theta, trace, data.Y)
+        except StepperError:
+            return float(self.net.output_cost(trace[-1][0], trace[-1][1], data.Y)), None
+        return cost, slopes
 
     def iter_steps(self, n: int, watch: bool = True) -> Progress[StepReport]:
         """Make ``n`` updates as one undoable operation, yielding ``(done, n)`` after each.
