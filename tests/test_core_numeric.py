@@ -11,11 +11,11 @@ from scipy.optimize import approx_fprime
 
 import stepper.core.numeric as numeric_module
 from stepper.core.activations import ACTIVATIONS
-from stepper.core.compare import noise_level, relative_error, verdicts
+from stepper.core.compare import relative_error, verdicts
 from stepper.core.gradcheck import compare, iter_check
 from stepper.core.layers import Dense, ParamSpec
 from stepper.core.network import Network
-from stepper.core.numeric import iter_numeric_slopes, numeric_slopes, run_to_end
+from stepper.core.numeric import NumericSlopes, default_step, iter_numeric_slopes, numeric_slopes, run_to_end
 
 EPS = float(np.finfo(np.float64).eps)
 
@@ -282,6 +282,12 @@ def test_relative_error_and_verdict_thresholds() -> None:
     kink[[5, 7]] = True
     assert list(verdicts(rel, kink)) == ["agree", "doubtful", "doubtful", "disagree", "doubtful", "agree",
                                          "", "kink"]
+    # The edges themselves: "agree at 1e-5 or below, doubtful up to 1e-3" (README).
+    edges = np.array([1e-5, np.nextafter(1e-5, 1.0), 1e-3, np.nextafter(1e-3, 1.0)])
+    assert list(verdicts(edges, np.zeros(4, dtype=bool))) == ["agree", "doubtful", "doubtful", "disagree"]
+    # The floor of the relative error is the documented 1e-8 unless the caller sets another.
+    assert relative_error(np.array([3e-9]), np.array([0.0]))[0] == pytest.approx(0.3)
+    assert relative_error(np.array([3e-9]), np.array([0.0]), floor=1e-6)[0] == pytest.approx(3e-3)
 
 
 def test_tiny_slopes_within_rounding_noise_agree() -> None:
@@ -299,7 +305,7 @@ def test_tiny_slopes_within_rounding_noise_agree() -> None:
     assert result is not None
     tiny = [net.layout.lookup(f"L1.W[2,{u}]") for u in range(4)]
     assert np.all(np.abs(result.analytic[tiny]) < 1e-8)
-    noise = noise_level(result.cost, result.h)
+    noise = 16.0 * EPS * abs(result.cost) / result.h   # the documented allowance, written out
     assert np.all(np.abs(result.analytic - result.numeric)[tiny] <= noise)
     assert np.all(result.verdict == "agree") and result.passed
     # The allowance is absolute, at the noise level: a tiny slope that is wrong by
@@ -308,6 +314,24 @@ def test_tiny_slopes_within_rounding_noise_agree() -> None:
     bad = result.analytic.copy()
     bad[tiny[0]] += 10.0 * noise
     assert compare(result.cost, bad, numeric).verdict[tiny[0]] == "disagree"
+
+
+@pytest.mark.parametrize("method", ["central", "forward"])
+def test_rounding_allowance_is_sixteen_times_eps_cost_over_h(method: str) -> None:
+    # README, "How the slopes are compared": a numeric slope carries a rounding error of
+    # about u |C| / h (Numerical Recipes, 3rd ed., 2007, section 5.7); two slopes closer
+    # than 16 times that agree (the factor is common practice). Slopes far below the
+    # relative-error floor, apart by 15 and by 17 times u |C| / h: only the first agrees.
+    cost, h = 0.8, default_step(method)
+    unit = EPS * cost / h
+    numeric = NumericSlopes(np.zeros(4), np.zeros(4, dtype=bool), method, h)
+    analytic = np.array([15.0, -15.0, 17.0, 20.0]) * unit
+    result = compare(cost, analytic, numeric)
+    assert list(result.verdict) == ["agree", "agree", "disagree", "disagree"]
+    # The relative error shown is still the computed one (README): far above 1e-5 here.
+    assert np.all(result.rel_error > 1e-5)
+    # The allowance scales with |C| and 1 / h: at twice the cost, 17 units agree too.
+    assert compare(2.0 * cost, analytic, numeric).verdict[2] == "agree"
 
 
 # -- details of the batched pass -------------------------------------------------------------------

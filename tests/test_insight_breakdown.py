@@ -16,6 +16,8 @@ from stepper.core.breakdown import slope_breakdown
 from stepper.core.layers import Dense
 from stepper.core.network import Network
 
+from edge_cases import saturation_case, signal_ratio_case
+
 SCENARIOS = Path(__file__).resolve().parents[1] / "scenarios"
 
 # (hidden activation, output activation, loss): every activation in a hidden layer,
@@ -145,16 +147,51 @@ def test_flags_large_inputs_and_cancelling_samples() -> None:
     assert b.analytic == 0.0 and "cancelling" in {f.code for f in b.flags}
 
 
-def test_flags_an_error_signal_that_shrank_on_the_way_back() -> None:
-    # Each sigmoid layer multiplies the backward signal by sigmoid' <= 1/4 times the
-    # weights (a textbook bound); eight layers of small weights shrink it far below 1e-3.
-    layers = [Dense(2, 2, ACTIVATIONS["sigmoid"]) for _ in range(8)] + [Dense(2, 1, ACTIVATIONS["identity"])]
-    net = Network(2, layers, "mean_squared_error")
-    theta = np.random.default_rng(2).normal(0.0, 0.3, net.n_params)
-    X = np.random.default_rng(3).normal(size=(20, 2))
-    Y = np.ones((20, 1))
-    assert "signal_vanished" in flag_codes(net, theta, X, Y, "L1.W[0,0]")
-    assert "signal_vanished" not in flag_codes(net, theta, X, Y, "L9.W[0,0]")
+def test_saturated_flag_edges_are_the_documented_ones() -> None:
+    # README: a saturated unit has an activation slope below 0.01 on 90% of the samples
+    # (common practice). Units at 90% and 100% with slope 0.0099 are flagged, one at 89%
+    # is not; a slope of 0.0101 is never flagged.
+    net, theta, X, Y = saturation_case([0.90, 0.89, 1.0], slope=0.0099)
+    flagged = ["saturated" in flag_codes(net, theta, X, Y, f"L1.W[{j},{j}]") for j in range(3)]
+    assert flagged == [True, False, True]
+    net, theta, X, Y = saturation_case([1.0], slope=0.0101)
+    assert "saturated" not in flag_codes(net, theta, X, Y, "L1.W[0,0]")
+
+
+def test_error_signal_flags_at_a_thousand_times() -> None:
+    # README: an error signal that shrank or grew by 1000 times on the way back from the
+    # output (common practice). In the case the hidden unit's signal is exactly |W2|
+    # times the output's, probed 1% inside and outside each edge.
+    for ratio, expected in [(0.99e-3, {"signal_vanished"}), (1.01e-3, set()), (0.99e3, set()),
+                            (1.01e3, {"signal_exploded"})]:
+        codes = flag_codes(*signal_ratio_case(ratio), "L1.W[0,0]")
+        assert codes & {"signal_vanished", "signal_exploded"} == expected, ratio
+
+
+def test_input_and_cancelling_flag_edges() -> None:
+    # stepper.core.breakdown (common practice, no published source): an input is near
+    # zero when |a| < 1e-3 on 90% of the samples, large when its mean |a| exceeds 100;
+    # the samples cancel when |sum| < 0.01 of the summed sizes of the per-sample parts.
+    # One identity unit, mean squared error: the part of sample s is 2 (w a_s - y_s) a_s / n.
+    net = Network(1, [Dense(1, 1, ACTIVATIONS["identity"])], "mean_squared_error")
+    Y = np.zeros((10, 1))
+    for near, expected in [(0.999e-3, True), (1.001e-3, False)]:
+        X = np.full((10, 1), near)
+        X[9] = 1.0   # 90% of the samples near zero
+        assert ("input_near_zero" in flag_codes(net, np.array([1.0, 0.0]), X, Y, "L1.W[0,0]")) == expected
+    for size, expected in [(99.0, False), (101.0, True)]:
+        X = np.full((10, 1), size)
+        assert ("input_large" in flag_codes(net, np.array([1e-3, 0.0]), X, Y, "L1.W[0,0]")) == expected
+    # Two samples, a = 1 each, residuals r and -(r - d): parts 2r/2 and -2(r-d)/2, so
+    # |sum| / sum|parts| = d / (2r - d).
+    X = np.ones((2, 1))
+    for share, expected in [(0.0099, True), (0.0101, False)]:
+        d = 2.0 * share / (1.0 + share)   # r = 1
+        Y2 = np.array([[-1.0], [1.0 - d]])  # w = 0, b = 0: residuals +1 and -(1 - d)
+        b = slope_breakdown(net, np.array([0.0, 0.0]), X, Y2, 0)
+        spread = float(np.sum(np.abs(b.products)))
+        assert abs(b.total) / spread == pytest.approx(share, rel=1e-9)
+        assert ("cancelling" in {f.code for f in b.flags}) == expected, share
 
 
 def test_factors_multiply_back_around_a_custom_layer() -> None:

@@ -8,9 +8,11 @@ import pytest
 from autograd import grad
 
 from stepper.core.activations import ACTIVATIONS
-from stepper.core.health import MOST, SATURATED_BELOW, layer_health
+from stepper.core.health import layer_health
 from stepper.core.layers import Dense
 from stepper.core.network import Network
+
+from edge_cases import saturation_case, signal_ratio_case
 
 
 def test_a_layer_forced_into_saturation() -> None:
@@ -28,10 +30,11 @@ def test_a_layer_forced_into_saturation() -> None:
     health = layer_health(net, theta, X, Y, rate=0.1)
     first = health.layers[0]
     Z = X @ views[0]["W"] + views[0]["b"]
-    expected = np.mean(np.abs(Z) > np.arctanh(np.sqrt(1.0 - SATURATED_BELOW)), axis=0)
+    # The documented thresholds, written out: slope below 0.01 on at least 90% of the samples.
+    expected = np.mean(np.abs(Z) > np.arctanh(np.sqrt(1.0 - 0.01)), axis=0)
     np.testing.assert_allclose(first.saturation, expected)
     assert first.saturation[0] == 1.0 and first.saturation[2] == 0.0
-    np.testing.assert_array_equal(first.saturated_units, np.flatnonzero(expected >= MOST))
+    np.testing.assert_array_equal(first.saturated_units, np.flatnonzero(expected >= 0.9))
     assert 0 in first.saturated_units and 2 not in first.saturated_units
     assert first.saturated_fraction == pytest.approx(len(first.saturated_units) / 4)
     assert np.isnan(first.dead_fraction) and first.active is None
@@ -85,16 +88,43 @@ def test_update_ratio_and_norms_against_autograd() -> None:
                                                    rel=1e-10)
 
 
-def test_ratio_verdict_brackets_the_rule_of_thumb() -> None:
-    # Around 1e-3 per step is the rule of thumb (common practice, no published source).
+def test_ratio_verdict_edges_are_the_documented_ones() -> None:
+    # README: around 1e-3 per step is the rule of thumb (common practice, no published
+    # source); below 1e-4 is marked low and above 1e-2 high. Probed 1% inside and
+    # outside each edge: the ratio is linear in the rate, so the rate sets it exactly.
     rng = np.random.default_rng(3)
     net = Network(2, [Dense(2, 1, ACTIVATIONS["identity"])], "mean_squared_error")
     theta = rng.normal(size=net.n_params)
     X, Y = rng.normal(size=(10, 2)), rng.normal(size=(10, 1))
     base = layer_health(net, theta, X, Y, rate=1.0).layers[0].update_ratio
-    assert layer_health(net, theta, X, Y, rate=1e-3 / base).layers[0].ratio_verdict == "typical"
-    assert layer_health(net, theta, X, Y, rate=1e-5 / base).layers[0].ratio_verdict == "low"
-    assert layer_health(net, theta, X, Y, rate=1e-1 / base).layers[0].ratio_verdict == "high"
+    for ratio, verdict in [(0.99e-4, "low"), (1.01e-4, "typical"), (1e-3, "typical"),
+                           (0.99e-2, "typical"), (1.01e-2, "high")]:
+        entry = layer_health(net, theta, X, Y, rate=ratio / base).layers[0]
+        assert entry.update_ratio == pytest.approx(ratio, rel=1e-12)
+        assert entry.ratio_verdict == verdict, ratio
+
+
+def test_saturation_edges_are_the_documented_ones() -> None:
+    # README: a unit is saturated when its activation slope is below 0.01 on 90% of
+    # the samples (common practice). Unit 0 sits at exactly 90%, unit 1 at 89%, with a
+    # slope of 0.0099; a slope of 0.0101 never counts.
+    net, theta, X, Y = saturation_case([0.90, 0.89, 1.0], slope=0.0099)
+    first = layer_health(net, theta, X, Y, rate=0.1).layers[0]
+    np.testing.assert_allclose(first.saturation, [0.90, 0.89, 1.0])
+    assert list(first.saturated_units) == [0, 2]
+    net, theta, X, Y = saturation_case([1.0], slope=0.0101)
+    first = layer_health(net, theta, X, Y, rate=0.1).layers[0]
+    assert list(first.saturation) == [0.0] and first.saturated_units.size == 0
+
+
+def test_trend_edges_are_a_factor_ten() -> None:
+    # stepper.core.health: slopes "shrink" or "grow" on the way back when the first
+    # layer's error signal is below a tenth or above ten times the last layer's
+    # (common practice, no published source). The case's travel is exactly |W2|.
+    for ratio, trend in [(0.099, "shrinking"), (0.101, "steady"), (9.9, "steady"), (10.1, "growing")]:
+        health = layer_health(*signal_ratio_case(ratio), rate=0.1)
+        assert health.travel == pytest.approx(ratio, rel=1e-12)
+        assert health.trend == trend, ratio
 
 
 def test_slopes_shrink_through_deep_sigmoid_layers_and_grow_through_large_linear_ones() -> None:
