@@ -77,7 +77,7 @@ def test_the_buggy_scenario_fails_and_names_the_wrong_parameters(capsys) -> None
     out = capsys.readouterr().out
     assert code == 1
     assert all(f"L2.b[{j}]" in out for j in range(3)) and "XX  disagree" in out
-    assert "result      FAIL: some slopes disagree" in out
+    assert "result      FAIL: 3 slopes disagree\n" in out
 
 
 def test_the_fixed_scenario_passes(capsys) -> None:
