@@ -321,7 +321,7 @@ def test_p_perturbs_the_selected_weight_and_shift_p_all(session: Session, drive)
         assert changed.tolist() == [2]
         await press(app, pilot, "P")
         assert np.all(session.theta != theta0)
-        assert "perturbed all parameters" in status(app)
+        assert "perturbed all 37 parameters by " in status(app)
 
     drive(session, check)
 

@@ -21,6 +21,7 @@ from stepper.commands.common import (
     resumed_weights,
     sample_limit,
 )
+from stepper.core.nearest import unknown_name
 from stepper.core.slice import DEFAULT_POINTS, CostSlice, cost_slice
 from stepper.errors import UsageError
 from stepper.formats.model_file import Setup
@@ -105,9 +106,7 @@ def weight_index(setup: Setup, text: str) -> int:
     try:
         return layout.lookup(text)
     except KeyError:
-        arrays = ", ".join(f"{b.prefix} {'x'.join(str(s) for s in b.shape)}" for b in layout.blocks)
-        raise UsageError(f"no weight named {text!r} in {setup.path} (its arrays: {arrays}; "
-                         "a name looks like L1.W[0,2] or L1.b[0])") from None
+        raise UsageError(f"no weight named {text!r} in {setup.path} ({unknown_name(layout, text)})") from None
 
 
 # -- output ------------------------------------------------------------------------------------

@@ -292,10 +292,11 @@ class SessionCore:
             return None
         change = self._undo.pop()
         self._undo_bytes -= change.nbytes()
+        cost = self.history[-1].train_cost
         self._restore(change.before)
         self._redo.append(change)
         self.dirty = True
-        self.last_action = f"undid {change.name}"
+        self.last_action = f"undid {change.name}{self._cost_change(change, cost)}"
         self._log({"op": "undo"})
         return change.name
 
@@ -305,13 +306,20 @@ class SessionCore:
             self.last_action = "nothing to redo"
             return None
         change = self._redo.pop()
+        cost = self.history[-1].train_cost
         self._restore(change.after)
         self._undo.append(change)
         self._undo_bytes += change.nbytes()
         self.dirty = True
-        self.last_action = f"redid {change.name}"
+        self.last_action = f"redid {change.name}{self._cost_change(change, cost)}"
         self._log({"op": "redo"})
         return change.name
+
+    def _cost_change(self, change: _Change, before: float) -> str:
+        """``: cost 1.31 -> 1.27`` for a change that moved the weights (its history holds the costs), else ""."""
+        if "history" not in change.before:
+            return ""
+        return f": cost {before:.6g} -> {self.history[-1].train_cost:.6g}"
 
     def _setting(self, name: str, field: str, value: Any, journal: dict[str, Any]) -> None:
         before = self._snapshot([field])

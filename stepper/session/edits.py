@@ -9,6 +9,7 @@ from typing import Any, Iterable
 import numpy as np
 from numpy.typing import NDArray
 
+from stepper.core.nearest import arrays_text, unknown_name
 from stepper.core.optimizers import RULES, fresh_state
 from stepper.errors import UsageError
 from stepper.session.core import Array, SessionCore, _Change, _check_batch_size, _check_rate, _check_slope_source
@@ -30,18 +31,23 @@ class Edits(SessionCore):
         before = self._snapshot(["rule_state"])
         self.rule_state = fresh_state(rule, self.net.n_params)
         after = self._snapshot(["rule_state"])
-        self._commit(_Change(f"rule {before['rule_state'].rule} -> {rule}", before, after),
+        self._commit(_Change(f"update rule {before['rule_state'].rule} -> {rule}", before, after),
                      {"op": "set_rule", "rule": rule})
-        self.last_action = f"update rule {rule}"
+        self.last_action = f"update rule {before['rule_state'].rule} -> {rule} (its memory starts afresh)"
 
     def set_slope_source(self, source: str) -> None:
         source = _check_slope_source(source)
-        self._setting(f"slopes from {source}", "slope_source", source, {"op": "set_slope_source", "source": source})
+        how = "backpropagation (analytic)" if source == "analytic" else "finite differences (numeric)"
+        self._setting(f"switch to {source} slopes", "slope_source", source,
+                      {"op": "set_slope_source", "source": source})
+        self.last_action = f"steps now take their slopes from {how}"
 
     def set_batch_size(self, size: int | None) -> None:
         size = _check_batch_size(size, self.setup.data.n_train)
-        label = "full batch" if size is None else f"mini-batches of {size}"
-        self._setting(label, "batch_size", size, {"op": "set_batch_size", "size": size})
+        label = "the full batch" if size is None else f"mini-batches of {size}"
+        self._setting(f"switch to {label}", "batch_size", size, {"op": "set_batch_size", "size": size})
+        self.last_action = ("each step now uses every training sample" if size is None else
+                            f"each step now uses a mini-batch of {size} samples, drawn afresh")
 
     # -- freezing --------------------------------------------------------------------------
 
@@ -99,7 +105,9 @@ class Edits(SessionCore):
         escaped = "".join("[[]" if c == "[" else "[]]" if c == "]" else c for c in pattern)
         hits = [i for i, name in enumerate(self.names) if fnmatch.fnmatchcase(name, escaped)]
         if not hits:
-            raise UsageError(f"no parameter name matches {pattern!r} (names look like {self.names[0]})")
+            hint = (unknown_name(self.net.layout, pattern) if not any(c in pattern for c in "*?")
+                    else f"the model's arrays: {arrays_text(self.net.layout)}")
+            raise UsageError(f"no parameter name matches {pattern!r} ({hint})")
         return np.array(hits, dtype=np.int64)
 
     def freeze_matching(self, pattern: str) -> None:
@@ -148,19 +156,30 @@ class Edits(SessionCore):
         """
         if not (math.isfinite(scale) and scale > 0):
             raise UsageError(f"noise scale {scale!r} must be a positive number")
-        idx = np.arange(self.net.n_params) if indices is None else self._indices(indices)
-        idx = idx[~self.frozen[idx]]
+        chosen = np.arange(self.net.n_params) if indices is None else self._indices(indices)
+        idx = chosen[~self.frozen[chosen]]
         if idx.size == 0:
             raise UsageError("every chosen parameter is frozen: nothing to perturb")
         if seed is None:
             seed = int(self.noise_rng.integers(0, 2**31 - 1))
         noise = np.random.default_rng(seed).normal(0.0, scale, idx.size)
         before = self.train_cost()
-        what = self._describe(idx) if indices is not None else "all parameters"
-        self._set_values(idx, self.theta[idx] + noise, f"perturbed {what} by {scale:g}",
+        name = f"perturbed {self._perturbed(idx, chosen.size, indices is None, noise)}"
+        self._set_values(idx, self.theta[idx] + noise, name,
                          {"op": "perturb", "scale": scale, "seed": seed,
                           "names": None if indices is None else [self.names[i] for i in idx]})
-        self.last_action = f"perturbed {what} (noise {scale:g}): cost {before:.6g} -> {self.train_cost():.6g}"
+        self.last_action = f"{name} (noise sd {scale:g}): cost {before:.6g} -> {self.train_cost():.6g}"
+
+    def _perturbed(self, idx: NDArray[np.int64], n_chosen: int, everything: bool, noise: Array) -> str:
+        """What a perturbation changed: ``L1.W[0,0] by +0.0123``, or how many moved and by how much."""
+        if idx.size == 1:
+            return f"{self.names[int(idx[0])]} by {noise[0]:+.3g}"
+        skipped = n_chosen - idx.size
+        if skipped == 0:
+            which = f"all {idx.size} parameters" if everything else f"{idx.size} parameters"
+        else:
+            which = f"{idx.size} of {n_chosen} parameters ({skipped} frozen, left alone)"
+        return f"{which} by {float(np.sqrt(np.mean(noise * noise))):.3g} rms"
 
     def reset(self) -> None:
         """All parameters back to their initial values; the rule's memory starts afresh."""

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 from textual import on
 
+from stepper.core.nearest import unknown_name
 from stepper.ui.base import AppBase, log, parse_float
 from stepper.ui.weights import WeightTable
 
@@ -78,7 +79,7 @@ class ViewKeys(AppBase):
             try:
                 index = layout.lookup(text.strip())
             except KeyError:
-                self.say(f"no weight is called {text.strip()!r} (names look like {layout.names[0]})",
+                self.say(f"no weight is called {text.strip()!r} ({unknown_name(layout, text)})",
                          error=True)
                 return
             self.table.select(index)
