@@ -252,19 +252,19 @@ def test_invalid_toml(capsys: pytest.CaptureFixture[str], tmp_path: Path, write_
 # (text to replace in MODEL, replacement, message after "stepper: model.toml: ")
 MODEL_MISTAKES = [
     ('activation = "tanh"', 'activation = "swish"',
-     "layers[0].activation: unknown 'swish' (expected one of: identity, sigmoid, tanh, relu, leaky_relu, "
+     "layers[0].activation (L1): unknown 'swish' (expected one of: identity, sigmoid, tanh, relu, leaky_relu, "
      "softplus, softmax)"),
     ('"mean_squared_error"', '"absolute_error"',
      "loss: unknown 'absolute_error' (expected one of: half_squared_error, mean_squared_error, "
      "binary_cross_entropy, categorical_cross_entropy)"),
-    ("units = 3", 'units = "three"', "layers[0].units: expected an integer, got the string 'three'"),
+    ("units = 3", 'units = "three"', "layers[0].units (L1): expected an integer, got the string 'three'"),
     ("seed = 2", "seed = 2\nsead = 3", "init.sead: unknown key (allowed: file, layout, names, range, scheme, seed)"),
     ("units = 1\n", "units = 2\n",
-     "layers[1].units: the last layer has 2 units but [data].targets names 1 column(s); they must match; "
+     "layers[1].units (L2): the last layer has 2 units but [data].targets names 1 column(s); they must match; "
      "if 'y' holds class numbers, end with a softmax layer of 2 units and Stepper builds the one-hot targets "
      "from them"),
     ('activation = "tanh"', 'activation = "tanh"\nweights = [[0.1, 0.2], [0.3, 0.4]]',
-     "layers[0].weights: shape 2x2 does not fit the layer, which needs 2x3 (inputs x units)"),
+     "layers[0].weights (L1): shape 2x2 does not fit the layer, which needs 2x3 (inputs x units)"),
 ]
 
 

@@ -198,7 +198,7 @@ def test_an_exception_in_forward_names_the_layer_and_the_users_line(model_with, 
     code, err = run_check(model, capsys)
     line = line_of(model.parent / "mix.py", "scale = 1 / 0")
     assert code == 2
-    assert err == (f"stepper: {model}: layers[1] (mix.py:Mix): forward raised ZeroDivisionError: "
+    assert err == (f"stepper: {model}: layers[1] (L2, mix.py:Mix): forward raised ZeroDivisionError: "
                    f"division by zero [mix.py line {line} in forward: scale = 1 / 0]\n")
 
 
@@ -209,7 +209,7 @@ def test_the_traceback_keeps_only_the_users_frames(model_with, capsys) -> None:
     code, err = run_check(model, capsys)
     mix = model.parent / "mix.py"
     assert code == 2
-    assert err.startswith(f"stepper: {model}: layers[1] (mix.py:Mix): backward raised IndexError: ")
+    assert err.startswith(f"stepper: {model}: layers[1] (L2, mix.py:Mix): backward raised IndexError: ")
     assert err.endswith(f"[mix.py line {line_of(mix, 'self.helper(dOut)')} in backward: self.helper(dOut) > "
                         f"mix.py line {line_of(mix, 'return v[99]')} in helper: return v[99]]\n")
     assert "stepper/" not in err and err.count("\n") == 1
@@ -233,7 +233,7 @@ def test_wrong_results_get_a_clear_message(model_with, capsys, old: str, new: st
     model = model_with(old, new)
     code, err = run_check(model, capsys)
     assert code == 2
-    assert err == f"stepper: {model}: layers[1] (mix.py:Mix): {message}\n"
+    assert err == f"stepper: {model}: layers[1] (L2, mix.py:Mix): {message}\n"
 
 
 def test_writing_into_an_input_is_refused_with_a_hint(model_with, capsys) -> None:
@@ -246,26 +246,26 @@ def test_writing_into_an_input_is_refused_with_a_hint(model_with, capsys) -> Non
 
 
 @pytest.mark.parametrize("old, new, extra, message", [
-    ("", "", 'activation = "tanh"', "layers[1].activation: a custom layer does not take this key (it sets "
+    ("", "", 'activation = "tanh"', "layers[1].activation (L2): a custom layer does not take this key (it sets "
      "its own parameters and activation in its class)"),
-    ("class Mix:", "class Blend:", "", "layers[1].class: 'Mix' is not defined in mix.py (classes there: Blend)"),
-    ("    def backward(self", "    def backwards(self", "", "layers[1].class: Mix has no backward method (a "
+    ("class Mix:", "class Blend:", "", "layers[1].class (L2): 'Mix' is not defined in mix.py (classes there: Blend)"),
+    ("    def backward(self", "    def backwards(self", "", "layers[1].class (L2): Mix has no backward method (a "
      "custom layer needs init, forward and backward; see README.md, Custom layers)"),
     ("self.n_out = units if units is not None else n_in", "self.n_out = 4", "",
-     "layers[1] (mix.py:Mix): the class set n_out = 4 but the model file says units = 3"),
+     "layers[1] (L2, mix.py:Mix): the class set n_out = 4 but the model file says units = 3"),
     ("self.spread = options.get", "self.spread = options.pop('x') or options.get", "",
-     "layers[1] (mix.py:Mix): creating the layer raised KeyError: 'x' [mix.py line 10 in __init__: "
+     "layers[1] (L2, mix.py:Mix): creating the layer raised KeyError: 'x' [mix.py line 10 in __init__: "
      "self.spread = options.pop('x') or options.get(\"spread\", 0.5)]"),
     ('"t": np.zeros(self.n_out)}', '"t": np.zeros(self.n_out), "1x": np.ones(2)}', "",
-     "layers[1] (mix.py:Mix): init returned a parameter named '1x'; names must be identifiers (letters, "
+     "layers[1] (L2, mix.py:Mix): init returned a parameter named '1x'; names must be identifiers (letters, "
      "digits, underscores)"),
     ('"t": np.zeros(self.n_out)}', '"t": np.float64(0.0)}', "",
-     "layers[1] (mix.py:Mix): init returned a float64 for 't', expected a numpy array with at least one "
+     "layers[1] (L2, mix.py:Mix): init returned a float64 for 't', expected a numpy array with at least one "
      "axis (use shape (1,) for a single number)"),
     ("import numpy as np\n", "import numpy as np\nraise RuntimeError('no sensor attached')\n", "",
-     "layers[1] (mix.py): loading the file raised RuntimeError: no sensor attached [mix.py line 2 in "
+     "layers[1] (L2, mix.py): loading the file raised RuntimeError: no sensor attached [mix.py line 2 in "
      "<module>: raise RuntimeError('no sensor attached')]"),
-    ("class Mix:", "class Mix(", "", "layers[1] (mix.py): syntax error at line 4: '(' was never closed"),
+    ("class Mix:", "class Mix(", "", "layers[1] (L2, mix.py): syntax error at line 4: '(' was never closed"),
 ])
 def test_bad_layer_files_are_refused_at_load(model_with, capsys, old: str, new: str, extra: str,
                                              message: str) -> None:
@@ -280,4 +280,4 @@ def test_a_missing_layer_file_is_named(model_with, capsys) -> None:
     model.write_text(model.read_text().replace('file = "mix.py"', 'file = "lens.py"'))
     code, err = run_check(model, capsys)
     assert code == 2
-    assert err == f"stepper: {model}: layers[1].file: no such file 'lens.py' (looked for {model.parent / 'lens.py'})\n"
+    assert err == f"stepper: {model}: layers[1].file (L2): no such file 'lens.py' (looked for {model.parent / 'lens.py'})\n"

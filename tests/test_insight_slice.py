@@ -203,13 +203,12 @@ def test_slice_command_json_agrees_with_the_core(capsys) -> None:
     assert doc["rate_x_curvature"] == pytest.approx(0.1 * doc["curvature"])
 
 
-def test_slice_command_names_the_arrays_when_the_weight_is_unknown(capsys) -> None:
+def test_slice_command_names_the_nearest_weights_when_the_weight_is_unknown(capsys) -> None:
     model = SCENARIOS / "bakery-demand" / "model.toml"
     code = cli.main(["slice", str(model), "L3.W[0,0]"])
     assert code == 2
     assert capsys.readouterr().err == (
-        f"stepper: no weight named 'L3.W[0,0]' in {model} (its arrays: L1.W 4x6, L1.b 6, L2.W 6x1, "
-        "L2.b 1; a name looks like L1.W[0,2] or L1.b[0])\n"
+        f"stepper: no weight named 'L3.W[0,0]' in {model} (did you mean L2.W[0,0] or L1.W[0,0]?)\n"
     )
 
 

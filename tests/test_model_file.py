@@ -164,24 +164,24 @@ MISTAKES = [
     ('"mean_squared_error"', "1979-05-27T07:32:00Z", "loss: expected a string, got a date-time"),
     ('"mean_squared_error"', "07:32:00", "loss: expected a string, got a time of day"),
     ('activation = "tanh"', 'activation = "relu6"',
-     "layers[0].activation: unknown 'relu6' (expected one of: identity, sigmoid, tanh, relu, leaky_relu, "
+     "layers[0].activation (L1): unknown 'relu6' (expected one of: identity, sigmoid, tanh, relu, leaky_relu, "
      "softplus, softmax)"),
     ('activation = "tanh"', 'activation = "tanh"\nshape = "round"',
-     "layers[0].shape: unknown key (allowed: activation, bias, biases, class, file, options, type, units, "
+     "layers[0].shape (L1): unknown key (allowed: activation, bias, biases, class, file, options, type, units, "
      "weights)"),
-    ("units = 4", 'units = "three"', "layers[0].units: expected an integer, got the string 'three'"),
-    ("units = 4", "units = 4.0", "layers[0].units: expected an integer, got a number"),
-    ("units = 4", "units = true", "layers[0].units: expected an integer, got a boolean"),
-    ("units = 4", "units = 0", "layers[0].units: 0 is not a positive number of units"),
-    ("units = 4", "", "layers[0].units: missing"),
+    ("units = 4", 'units = "three"', "layers[0].units (L1): expected an integer, got the string 'three'"),
+    ("units = 4", "units = 4.0", "layers[0].units (L1): expected an integer, got a number"),
+    ("units = 4", "units = true", "layers[0].units (L1): expected an integer, got a boolean"),
+    ("units = 4", "units = 0", "layers[0].units (L1): 0 is not a positive number of units"),
+    ("units = 4", "", "layers[0].units (L1): missing"),
     ('activation = "tanh"', 'activation = "tanh"\nbias = "yes"',
-     "layers[0].bias: expected true or false, got the string 'yes'"),
+     "layers[0].bias (L1): expected true or false, got the string 'yes'"),
     ('activation = "tanh"', 'activation = "tanh"\nclass = "Mine"',
-     'layers[0].class: only a layer with type = "custom" takes this key'),
+     'layers[0].class (L1): only a layer with type = "custom" takes this key'),
     ('activation = "tanh"', 'activation = "tanh"\ntype = "conv"',
-     "layers[0].type: unknown 'conv' (expected one of: dense, custom)"),
+     "layers[0].type (L1): unknown 'conv' (expected one of: dense, custom)"),
     ("units = 1\n", "units = 2\n",
-     "layers[1].units: the last layer has 2 units but [data].targets names 1 column(s); they must match; "
+     "layers[1].units (L2): the last layer has 2 units but [data].targets names 1 column(s); they must match; "
      "if 'y' holds class numbers, end with a softmax layer of 2 units and Stepper builds the one-hot targets "
      "from them"),
     ('[data]\nfile = "data.csv"', '[data]\nfile = 3', "data.file: expected a string, got an integer"),
@@ -224,7 +224,7 @@ def test_structural_mistakes(write_model: WriteModel) -> None:
     assert load_error(write_model, "layers = []\n" + head) == (
         "model.toml: layers: expected at least one [[layers]] table")
     assert load_error(write_model, "layers = [3]\n" + head) == (
-        "model.toml: layers[0]: expected a table, got an integer")
+        "model.toml: layers[0] (L1): expected a table, got an integer")
     assert load_error(write_model, 'data = "x.csv"\n' + MODEL.replace("[data]", "[other]")).startswith(
         "model.toml: other: unknown key")
 
@@ -233,23 +233,23 @@ def test_structural_mistakes(write_model: WriteModel) -> None:
 
 INLINE_MISTAKES = [
     ("weights = [[1, 2, 3, 4], [1, 2, 3, 4]]",
-     "layers[0].weights: shape 2x4 does not fit the layer, which needs 3x4 (inputs x units)"),
+     "layers[0].weights (L1): shape 2x4 does not fit the layer, which needs 3x4 (inputs x units)"),
     ("weights = [[1, 2, 3, 4], [1, 2, 3], [1, 2, 3, 4]]",
-     "layers[0].weights: expected numbers (a list of rows for weights, a list for biases)"),
+     "layers[0].weights (L1): expected numbers (a list of rows for weights, a list for biases)"),
     ("weights = [1, 2, 3, 4]",
-     "layers[0].weights: expected numbers (a list of rows for weights, a list for biases)"),
+     "layers[0].weights (L1): expected numbers (a list of rows for weights, a list for biases)"),
     ('weights = [["1", 2, 3, 4], [1, 2, 3, 4], [1, 2, 3, 4]]',
-     "layers[0].weights: expected numbers (a list of rows for weights, a list for biases)"),
+     "layers[0].weights (L1): expected numbers (a list of rows for weights, a list for biases)"),
     ("weights = [[true, 2, 3, 4], [1, 2, 3, 4], [1, 2, 3, 4]]",
-     "layers[0].weights: expected numbers (a list of rows for weights, a list for biases)"),
+     "layers[0].weights (L1): expected numbers (a list of rows for weights, a list for biases)"),
     ("weights = [[nan, 2, 3, 4], [1, 2, 3, 4], [1, 2, 3, 4]]",
-     "layers[0].weights: contains a value that is not a finite number"),
-    ("weights = 3", "layers[0].weights: expected a list, got an integer"),
-    ("biases = [1, 2, 3]", "layers[0].biases: has 3 entries, the layer needs 4"),
+     "layers[0].weights (L1): contains a value that is not a finite number"),
+    ("weights = 3", "layers[0].weights (L1): expected a list, got an integer"),
+    ("biases = [1, 2, 3]", "layers[0].biases (L1): has 3 entries, the layer needs 4"),
     ("biases = [[1, 2, 3, 4]]",
-     "layers[0].biases: expected numbers (a list of rows for weights, a list for biases)"),
-    ("biases = [1, 2, 3, inf]", "layers[0].biases: contains a value that is not a finite number"),
-    ("bias = false\nbiases = [1, 2, 3, 4]", "layers[0].biases: this layer has bias = false, so it takes no biases"),
+     "layers[0].biases (L1): expected numbers (a list of rows for weights, a list for biases)"),
+    ("biases = [1, 2, 3, inf]", "layers[0].biases (L1): contains a value that is not a finite number"),
+    ("bias = false\nbiases = [1, 2, 3, 4]", "layers[0].biases (L1): this layer has bias = false, so it takes no biases"),
 ]
 
 
@@ -262,7 +262,7 @@ def test_inline_value_mistakes(write_model: WriteModel, line: str, expected: str
 def test_too_many_parameters(write_model: WriteModel) -> None:
     text = MODEL.replace("units = 4", "units = 30000000")
     assert load_error(write_model, text) == (
-        "model.toml: layers[0].units: the network would have 120,000,000 parameters up to this layer; "
+        "model.toml: layers[0].units (L1): the network would have 120,000,000 parameters up to this layer; "
         f"Stepper handles at most {MAX_PARAMETERS:,}")
 
 

@@ -85,7 +85,7 @@ def test_units_that_disagree_with_the_shapes_are_named_with_both(tmp_path: Path)
     with pytest.raises(ModelFileError) as info:
         load_setup(write(tmp_path, model_text(layers), state_dict()))
     assert info.value.message.endswith(
-        "layers[0].units: 5, but tensor '0.weight' has shape (4, 4) (PyTorch's Linear stores (out, in)): 4 units")
+        "layers[0].units (L1): 5, but tensor '0.weight' has shape (4, 4) (PyTorch's Linear stores (out, in)): 4 units")
 
 
 def test_a_state_dict_of_another_depth_is_refused(tmp_path: Path) -> None:
@@ -100,7 +100,7 @@ def test_inputs_that_do_not_fit_the_first_weight(tmp_path: Path) -> None:
     with pytest.raises(ModelFileError) as info:
         load_setup(write(tmp_path, model_text(THREE), state_dict(sizes=(5, 4, 4, 1))))
     assert info.value.message.endswith(
-        "layers[0]: (L1) tensor '0.weight' has shape (4, 5) (PyTorch's Linear stores (out, in)): 5 inputs, "
+        "layers[0] (L1): tensor '0.weight' has shape (4, 5) (PyTorch's Linear stores (out, in)): 5 inputs, "
         "but the layer gets 4")
 
 

@@ -75,7 +75,7 @@ class CustomLayer:
 
     Attributes:
         n_in, n_out: input and output widths.
-        where: ``model.toml: layers[1] (gate.py:GatedUnits)``, the prefix of every message.
+        where: ``model.toml: layers[1] (L2, gate.py:GatedUnits)``, the prefix of every message.
         path: the user's Python file.
         user: the user's layer object.
     """
@@ -153,9 +153,11 @@ def build_custom_layer(keys: Any, n_in: int, model_path: Path) -> CustomLayer:
         keys.fail("file", f"'{file_name}' is not a Python file (expected a name ending in .py)")
     if not path.is_file():
         keys.fail("file", f"no such file '{file_name}' (looked for {path})")
-    where = f"{keys.file}: {keys.where} ({path.name}:{class_name})"
+    from stepper.formats.model_file import layer_label  # model_file loads this module when it needs it
 
-    module = _load_module(path, f"{keys.file}: {keys.where} ({path.name})")
+    where = f"{keys.file}: {keys.where} ({layer_label(keys.where)}, {path.name}:{class_name})"
+
+    module = _load_module(path, f"{keys.file}: {keys.where} ({layer_label(keys.where)}, {path.name})")
     cls: Any = getattr(module, class_name, None)
     if cls is None:
         defined = sorted(n for n, v in vars(module).items()

@@ -47,6 +47,7 @@ from __future__ import annotations
 import datetime
 import hashlib
 import math
+import re
 import tomllib
 from dataclasses import dataclass
 from pathlib import Path
@@ -109,6 +110,15 @@ class Setup:
     document: dict[str, Any] | None = None
 
 
+_LAYER_PATH = re.compile(r"^layers\[(\d+)\]")
+
+
+def layer_label(path: str) -> str | None:
+    """``"L2"`` for a key path inside ``layers[1]`` (TOML counts from 0, weight names from 1), else None."""
+    match = _LAYER_PATH.match(path)
+    return f"L{int(match[1]) + 1}" if match else None
+
+
 class _Keys:
     """Typed access to one TOML table, with errors that name the file and key path."""
 
@@ -129,6 +139,9 @@ class _Keys:
 
     def fail(self, key: str, message: str) -> None:
         where = self.path(key)
+        label = layer_label(where)
+        if label:
+            where += f" ({label})"
         raise ModelFileError(f"{self.file}: {where}: {message}" if where else f"{self.file}: {message}")
 
     def has(self, key: str) -> bool:
@@ -329,9 +342,8 @@ def _build_layer(keys: _Keys, n_in: int, model_path: Path, linear: TorchLinear |
 def _torch_shape(keys: _Keys, n_in: int, linear: TorchLinear) -> tuple[int, bool]:
     """Units and bias of a dense layer read from its Linear layer's tensors (checked against the keys)."""
     shape = f"tensor '{linear.weight}' has shape {tuple(linear.W.shape)} (PyTorch's Linear stores (out, in))"
-    layer = f"L{int(keys.where[len('layers['):-1]) + 1}"  # keys.where is "layers[i]"
     if linear.n_in != n_in:
-        keys.fail("", f"({layer}) {shape}: {linear.n_in} inputs, but the layer gets {n_in}")
+        keys.fail("", f"{shape}: {linear.n_in} inputs, but the layer gets {n_in}")
     units = keys.get("units", int, linear.n_out)
     if units != linear.n_out:
         keys.fail("units", f"{units}, but {shape}: {linear.n_out} units")
