@@ -87,7 +87,7 @@ def test_a_wrong_layer_table_is_named_like_a_model_file() -> None:
     with pytest.raises(StepperError) as info:
         api.from_arrays([{"units": 2, "activation": "swish"}], np.zeros((4, 2)), np.zeros((4, 2)),
                         "mean_squared_error")
-    assert info.value.message.startswith("arrays (from arrays): layers[0].activation: unknown 'swish'")
+    assert info.value.message.startswith("arrays (from arrays): layers[0].activation (L1): unknown 'swish'")
 
 
 def test_open_app_runs_the_app_on_the_session(monkeypatch: pytest.MonkeyPatch, tmp_path: Path) -> None:
