@@ -371,6 +371,10 @@ def rewrite_meta(source: Path, target: Path, change: dict[str, Any]) -> Path:
     ({"frozen": ["L9.W[0,0]"]}, "frozen parameter L9.W[0,0] is not in it"),
     ({"slope_source": "guess"}, "unknown slope source 'guess'"),
     ({"format": 7}, "unsupported checkpoint format 7"),
+    ({"l2": -0.5}, "metadata is incomplete or wrong"),
+    ({"weight_decay": "lots"}, "metadata is incomplete or wrong"),
+    ({"clip_norm": 0}, "metadata is incomplete or wrong"),
+    ({"schedule": {"kind": "cosine"}}, "metadata is incomplete or wrong (a cosine schedule needs steps)"),
 ])
 def test_bad_metadata_is_refused_and_changes_nothing(bakery, tmp_path: Path,  # type: ignore[no-untyped-def]
                                                      change: dict[str, Any], message: str) -> None:

@@ -17,6 +17,7 @@ import pytest
 
 from stepper import cli
 from stepper.commands.replay import replay
+from stepper.core.schedules import Schedule
 from stepper.errors import CheckpointError
 from stepper.formats.journal import read_journal
 from stepper.formats.model_file import load_setup
@@ -43,6 +44,11 @@ def fingerprint(s: Session) -> tuple[Any, ...]:
         json.dumps(s.batch_rng.bit_generator.state, sort_keys=True),
         s.can_undo,
         s.can_redo,
+        s.l2,
+        s.weight_decay,
+        s.clip_norm,
+        s.schedule,
+        s.last_update.tobytes(),
     )
 
 
@@ -89,6 +95,19 @@ def every_operation(s: Session, folder: Path) -> list[tuple[Any, ...]]:
     s.redo(); did()
     s.set_batch_size(None); did()
     s.step(2); did()
+    s.set_l2(0.01); did()
+    s.set_weight_decay(0.02); did()
+    s.set_clip_norm(0.25); did()
+    s.set_schedule(Schedule("cosine", steps=20, warmup=2, floor=0.1)); did()
+    s.step(3); did()
+    s.save_checkpoint(folder / "trained.safetensors"); did()
+    s.set_clip_norm(None); did()
+    s.set_schedule(Schedule()); did()
+    s.set_l2(0.0); did()
+    s.step(); did()
+    s.load_checkpoint(folder / "trained.safetensors"); did()
+    s.step(2); did()
+    s.undo(); did()
     return states
 
 

@@ -153,7 +153,7 @@ def test_nesting_too_deep(write_model: WriteModel) -> None:
 # (replace this, with that, expected message after "model.toml: ")
 MISTAKES = [
     ('name = "test net"', 'name = "test net"\ncolour = "red"',
-     "colour: unknown key (allowed: data, init, layers, loss, name, network)"),
+     "colour: unknown key (allowed: data, init, layers, loss, name, network, training)"),
     ('name = "test net"', "name = 7", "name: expected a string, got an integer"),
     ('loss = "mean_squared_error"\n', "", "loss: missing"),
     ('"mean_squared_error"', '"hinge"',

@@ -17,6 +17,7 @@ import numpy as np
 import pytest
 
 from stepper.core.optimizers import RuleState
+from stepper.core.schedules import Schedule
 from stepper.formats.model_file import load_setup
 from stepper.session import HistoryEntry, Session
 
@@ -37,6 +38,8 @@ class State:
     history: list[HistoryEntry]
     batch_rng: dict[str, Any]
     train_cost: float
+    training: tuple[Any, ...]
+    last_update: np.ndarray
 
     def same_as(self, other: "State") -> bool:
         return (
@@ -50,13 +53,15 @@ class State:
             and self.history == other.history
             and self.batch_rng == other.batch_rng
             and self.train_cost == other.train_cost
+            and self.training == other.training
+            and self.last_update.tobytes() == other.last_update.tobytes()
         )
 
 
 def state_of(s: Session) -> State:
     return State(s.theta.copy(), s.frozen.copy(), s.rule_state.copy(), s.step_count, s.rate,
                  s.slope_source, s.batch_size, list(s.history), s.batch_rng.bit_generator.state,
-                 s.train_cost())
+                 s.train_cost(), (s.l2, s.weight_decay, s.clip_norm, s.schedule), s.last_update.copy())
 
 
 @pytest.fixture(scope="module")
@@ -93,6 +98,10 @@ OPERATIONS: dict[str, Callable[[Session, Path], None]] = {
     "set_value": lambda s, tmp: s.set_value(7, -1.25),
     "reset": lambda s, tmp: s.reset(),
     "load_checkpoint": lambda s, tmp: load_other(s, tmp),
+    "set_l2": lambda s, tmp: s.set_l2(0.05),
+    "set_weight_decay": lambda s, tmp: s.set_weight_decay(0.01),
+    "set_clip_norm": lambda s, tmp: s.set_clip_norm(0.5),
+    "set_schedule": lambda s, tmp: s.set_schedule(Schedule("cosine", steps=50, warmup=5)),
 }
 
 
@@ -102,6 +111,10 @@ def load_other(s: Session, tmp: Path) -> None:
     other.set_rule("adam")
     other.set_batch_size(32)
     other.freeze_matching("L2.*")
+    other.set_l2(0.02)
+    other.set_weight_decay(0.003)
+    other.set_clip_norm(2.0)
+    other.set_schedule(Schedule("step", every=3, factor=0.5))
     other.step(4)
     path = other.save_checkpoint(tmp / "other.safetensors")
     s.load_checkpoint(path)
@@ -125,6 +138,7 @@ def test_many_levels_deep_and_back(setup: Any, tmp_path: Path) -> None:
     s = started(setup)
     states = [state_of(s)]
     order = list(OPERATIONS) + ["step", "set_rule_adam", "n_steps", "perturb_all", "set_batch_size", "n_steps"]
+    assert "set_schedule" in order
     for name in order:
         OPERATIONS[name](s, tmp_path)
         states.append(state_of(s))

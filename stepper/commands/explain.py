@@ -89,7 +89,9 @@ def report(setup: Setup, name: str, b: Breakdown, value: float) -> str:
         row("mean over samples", mean),
         row(f"sample {b.sample}" + (" (largest)" if b.sample == _largest(b) else ""), one),
         "",
-        f"sum of the {n} products   {b.total: .12e}",
+        f"sum of the {n} products   {b.total - b.penalty: .12e}",
+        *([f"+ L2 term l2 x w         {b.penalty: .12e}", f"= sum                     {b.total: .12e}"]
+          if b.penalty else []),
         f"analytic slope (table)    {b.analytic: .12e}",
         "",
     ]
@@ -129,7 +131,8 @@ def explain_document(setup: Setup, name: str, b: Breakdown, value: float) -> dic
         "through_z": b.through_z,
         "mean": {"error": e, "activation_slope": f, "input": a, "product": p},
         "sample": {"index": b.sample, "error": se, "activation_slope": sf, "input": sa, "product": sp},
-        "sum_of_products": b.total,
+        "sum_of_products": b.total - b.penalty,
+        "l2_term": b.penalty,
         "analytic": b.analytic,
         "flags": [{"code": flag.code, "text": flag.text} for flag in b.flags],
     }

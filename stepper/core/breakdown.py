@@ -83,6 +83,8 @@ class Breakdown:
         analytic: the slope of this parameter from the network's backward pass.
         sample: the sample shown on its own.
         flags: possible causes of a vanishing or exploding slope.
+        penalty: the L2 term's part of the slope, ``l2 * w`` (0 for a bias or without the term);
+            it belongs to no sample.
     """
 
     index: int
@@ -99,6 +101,7 @@ class Breakdown:
     analytic: float
     sample: int
     flags: tuple[Flag, ...]
+    penalty: float = 0.0
 
     @property
     def n_samples(self) -> int:
@@ -106,8 +109,8 @@ class Breakdown:
 
     @property
     def total(self) -> float:
-        """Sum of the per-sample products: the slope, rebuilt from its factors."""
-        return float(np.sum(self.products))
+        """Sum of the per-sample products and the L2 term's part: the slope, rebuilt from its factors."""
+        return float(np.sum(self.products)) + self.penalty
 
     def means(self) -> tuple[float, float, float, float]:
         """Mean over samples of the error signal, activation slope, input and product."""
@@ -176,7 +179,8 @@ def slope_breakdown(
     flags = _flags(block.layer, block.kind, source, unit, act.name, act.saturates and not through_z,
                    cache, error, act_slope, inputs, products, out_rms, last)
     return Breakdown(index, block.layer, block.kind, source, unit, act.name, through_z, error,
-                     act_slope, inputs, products, float(grads[index]), sample, flags)
+                     act_slope, inputs, products, float(grads[index]), sample, flags,
+                     net.l2 * float(theta[index]) if net.penalized[index] else 0.0)
 
 
 def _flags(

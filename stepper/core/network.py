@@ -10,6 +10,14 @@ layer's which array, and gives every entry a stable, readable name:
 
 A flat vector keeps the optimizer, the frozen mask, undo and checkpoints
 simple; per-layer arrays are reshaped views into it, never copies.
+
+The cost may carry an L2 term, ``(l2 / 2) * sum(w^2)`` over the weights (not the
+biases), whose slope is ``l2 * w`` (Goodfellow, Bengio & Courville, *Deep
+Learning*, 2016, section 7.1.1, eqs. 7.2-7.3; leaving biases out is the practice
+described there). :meth:`Network.cost` and :meth:`Network.backward` include it;
+:meth:`Network.output_cost` is the data term alone, and whoever evaluates
+perturbed copies through it adds :meth:`Network.penalty_at` (the numeric slopes
+do, so the check compares slopes of the same cost).
 """
 
 from __future__ import annotations
@@ -155,11 +163,13 @@ class Network:
         n_inputs: width of the input ``X``, ``(n_samples, n_inputs)``.
         layers: the layers in order; layer ``i`` feeds layer ``i + 1``.
         loss: key into :data:`stepper.core.losses.LOSSES`.
+        l2: strength of the L2 term in the cost (0: none); see the module docstring.
     """
 
     n_inputs: int
     layers: list[Layer]
     loss: str
+    l2: float = 0.0
     layout: ParamLayout = field(init=False)
 
     def __post_init__(self) -> None:
@@ -220,9 +230,44 @@ class Network:
         return self.loss_fn.value(A, Y)
 
     def cost(self, theta: Array, X: Array, Y: Array) -> float:
-        """Cost of the whole set ``X`` ``(n, n_inputs)`` against targets ``Y`` ``(n, n_outputs)``."""
+        """Cost of the whole set ``X`` ``(n, n_inputs)`` against targets ``Y`` ``(n, n_outputs)``.
+
+        Includes the L2 term (:meth:`penalty`).
+        """
         A, cache = self.forward(theta, X)[-1]
-        return float(self.output_cost(A, cache, Y))
+        return float(self.output_cost(A, cache, Y)) + self.penalty(theta)
+
+    # -- the L2 term -------------------------------------------------------------------------
+
+    @property
+    def penalized(self) -> NDArray[np.bool_]:
+        """True for the entries the L2 term covers (weights, not biases), ``(n_params,)``."""
+        return ~self.layout.is_bias
+
+    def penalty(self, theta: Array) -> float:
+        """The L2 term ``(l2 / 2) * sum(w^2)`` over the weights of ``theta`` ``(n_params,)``."""
+        if self.l2 == 0.0:
+            return 0.0
+        w = theta[self.penalized]
+        return 0.5 * self.l2 * float(np.dot(w, w))
+
+    def penalty_slopes(self, theta: Array) -> Array:
+        """Slope of the L2 term, ``l2 * w`` on weights and 0 on biases, ``(n_params,)``."""
+        if self.l2 == 0.0:
+            return np.zeros(theta.shape)
+        return np.where(self.penalized, self.l2 * theta, 0.0)
+
+    def penalty_at(self, theta: Array, base: float, idx: NDArray[np.int64], offsets: Array | float) -> Array:
+        """The L2 term with ``theta[idx[k]]`` moved by ``offsets[k]`` (one at a time), ``(k,)``.
+
+        ``base`` is :meth:`penalty` at ``theta``; only the moved entry's part changes.
+        """
+        shift = np.broadcast_to(np.asarray(offsets, dtype=np.float64), idx.shape)
+        if self.l2 == 0.0:
+            return np.zeros(idx.shape)
+        w = theta[idx]
+        change = 0.5 * self.l2 * np.where(self.penalized[idx], (w + shift) ** 2 - w * w, 0.0)
+        return base + change
 
     # -- backward --------------------------------------------------------------------------
 
@@ -240,7 +285,8 @@ class Network:
     ) -> tuple[float, Array, list[Array]]:
         """Backpropagate through a forward ``trace`` of the whole network.
 
-        Returns the cost, the flat slopes ``(n_params,)`` and, per layer, the
+        Returns the cost and the flat slopes ``(n_params,)``, both with the L2
+        term, and, per layer, the
         slope of the cost w.r.t. that layer's output (``(n, n_out)``), which the
         insight views use as each unit's error signal.
         """
@@ -248,7 +294,7 @@ class Network:
         grads = np.zeros(self.n_params)
         gviews = self.views(grads)
         A, cache = trace[-1]
-        cost = float(self.output_cost(A, cache, Y))
+        cost = float(self.output_cost(A, cache, Y)) + self.penalty(theta)
         output_slopes: list[Array] = [np.empty(0)] * len(self.layers)
         last = self.layers[-1]
         fused = self.fused
@@ -267,6 +313,8 @@ class Network:
             output_slopes[index] = dA
             layer_grads, dA = self._layer_backward(index, params, trace[index][1], dA)
             self._store(gviews[index], layer_grads)
+        if self.l2 != 0.0:
+            grads += self.penalty_slopes(theta)
         return cost, grads, output_slopes
 
     def _layer_backward(self, index: int, params: list[Params], cache: Any, dOut: Array) -> tuple[Params, Array]:

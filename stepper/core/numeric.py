@@ -1,5 +1,9 @@
 """Numeric slopes of the cost by finite differences.
 
+The cost is the whole cost, with the network's L2 term when it has one
+(:meth:`Network.penalty_at` gives the term at each perturbed point), so these
+slopes check the same thing backpropagation computes.
+
 For parameter ``w`` and step ``h``:
 
 - central: ``(C(w + h) - C(w - h)) / (2 h)``, error ``O(h^2)``;
@@ -193,7 +197,8 @@ def iter_numeric_slopes(
 
     theta = np.array(theta, dtype=np.float64, copy=True)
     trace = net.forward(theta, X)
-    base_cost = float(net.output_cost(trace[-1][0], trace[-1][1], Y))
+    base_penalty = net.penalty(theta)
+    base_cost = float(net.output_cost(trace[-1][0], trace[-1][1], Y)) + base_penalty
     inputs = [X] + [out for out, _ in trace[:-1]]
     params = net.views(theta)
     work = _Workspace()
@@ -214,8 +219,10 @@ def iter_numeric_slopes(
                 idx: NDArray[np.int64], space: _Workspace, block: Any = block
             ) -> tuple[NDArray[np.int64], Array, NDArray[np.bool_]]:
                 plus, kink_p = _dense_costs(net, params, trace, block, idx, +step, Y, space)
+                plus = plus + net.penalty_at(theta, base_penalty, idx, +step)
                 if method == "central":
                     minus, kink_m = _dense_costs(net, params, trace, block, idx, -step, Y, space)
+                    minus = minus + net.penalty_at(theta, base_penalty, idx, -step)
                     return idx, (plus - minus) / (2.0 * step), kink_p | kink_m
                 return idx, (plus - base_cost) / step, kink_p
 
@@ -263,6 +270,20 @@ def set_workers(n: int) -> None:
             _POOL.shutdown(wait=True)
         _POOL = ThreadPoolExecutor(max_workers=n, thread_name_prefix="stepper-slopes") if n > 1 else None
         _WORKERS = n
+
+
+def parallel_map(fn: Callable[[int], T], count: int) -> list[T]:
+    """``[fn(0), ..., fn(count - 1)]``, spread over the threads of :func:`set_workers` when there are several.
+
+    Each call runs in a copy of the caller's context (its ``np.errstate`` holds
+    there too). ``fn`` must not share writable state between calls, and must
+    never run a user's custom layer (those run on the caller's thread only).
+    """
+    pool = _POOL
+    if pool is None or count < 2:
+        return [fn(i) for i in range(count)]
+    futures = [pool.submit(contextvars.copy_context().run, fn, i) for i in range(count)]
+    return [future.result() for future in futures]
 
 
 def _pieces(
@@ -355,7 +376,7 @@ def _rerun_cost(
     theta[flat] = saved + delta
     try:
         A, cache = net.forward(theta, X_in, start=layer)[-1]
-        return float(net.output_cost(A, cache, Y))
+        return float(net.output_cost(A, cache, Y)) + net.penalty(theta)
     finally:
         theta[flat] = saved
 

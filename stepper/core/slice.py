@@ -187,9 +187,18 @@ def costs_at_offsets(
     for a bias); when its activation is elementwise and a dense layer follows,
     that layer's pre-activation gets a rank-one change; the rest of the network
     runs on all offsets stacked.
-    Parameters of other layers are moved one offset at a time.
+    Parameters of other layers are moved one offset at a time. The costs include
+    the network's L2 term at each moved point.
     """
     offsets = np.asarray(offsets, dtype=np.float64).ravel()
+    data = _data_costs_at_offsets(net, theta, X, Y, index, offsets)
+    return data + net.penalty_at(theta, net.penalty(theta), np.full(offsets.size, index), offsets)
+
+
+def _data_costs_at_offsets(
+    net: Network, theta: Array, X: Array, Y: Array, index: int, offsets: Array
+) -> Array:
+    """The data term of :func:`costs_at_offsets`, ``(k,)``."""
     block = net.layout.block_of(index)
     layer = net.layers[block.layer]
     trace = net.forward(theta, X)

@@ -6,9 +6,12 @@ Layout (our own):
   layer array, named like the weights in the table (without indices);
 - tensors ``rule.<array>.<L1.W>`` : the update rule's memory (momentum's
   velocity, Adam's m and v), split the same way;
+- tensors ``last_update.<L1.W>`` (optional): the change the last step made;
 - header metadata key ``stepper``: a JSON document with ``format`` (1), the
   step count, rate, rule, rule step ``t``, slope source, batch size, the names
-  of frozen parameters, the cost history, and the SHA-256 of the model file.
+  of frozen parameters, the cost history, the SHA-256 of the model file, and
+  the training settings (``l2``, ``weight_decay``, ``clip_norm``, ``schedule``;
+  optional, a checkpoint without them keeps the model file's).
 
 The file is a plain safetensors file: any safetensors reader can open it.
 Nothing in it is executable and nothing is ever unpickled. Every array is made
@@ -36,6 +39,7 @@ Array = NDArray[np.float64]
 
 FORMAT = 1
 META_KEY = "stepper"
+LAST_UPDATE = "last_update."
 
 
 @dataclass
@@ -47,12 +51,14 @@ class CheckpointData:
         rule_arrays: the rule's memory, each ``(n_params,)``.
         meta: the JSON metadata (see module docstring).
         sha256: SHA-256 of the file's bytes, when read from a file (journals record it).
+        last_update: the last step's change ``(n_params,)``, or None when not saved.
     """
 
     theta: Array
     rule_arrays: dict[str, Array] = field(default_factory=dict)
     meta: dict[str, Any] = field(default_factory=dict)
     sha256: str = ""
+    last_update: Array | None = None
 
 
 def encode(layout: ParamLayout, data: CheckpointData) -> bytes:
@@ -65,6 +71,10 @@ def encode(layout: ParamLayout, data: CheckpointData) -> bytes:
         for key, array in data.rule_arrays.items():
             tensors[f"rule.{key}.{block.prefix}"] = np.ascontiguousarray(
                 array[block.start : block.stop].reshape(block.shape)
+            )
+        if data.last_update is not None:
+            tensors[f"{LAST_UPDATE}{block.prefix}"] = np.ascontiguousarray(
+                data.last_update[block.start : block.stop].reshape(block.shape)
             )
     meta = dict(data.meta, format=FORMAT)
     return bytes(save(tensors, metadata={META_KEY: json.dumps(meta)}))
@@ -119,10 +129,13 @@ def _parse(path: Path, raw: bytes) -> tuple[dict[str, Array], dict[str, Any]]:
     return dict(tensors), header
 
 
-def load_checkpoint(path: Path, layout: ParamLayout) -> CheckpointData:
-    """Read a checkpoint and check that it fits ``layout`` (names, shapes, dtype)."""
-    raw = _read_bytes(path)
-    tensors, header = _parse(path, raw)
+def read_meta(path: Path) -> dict[str, Any]:
+    """The JSON metadata of a checkpoint, without checking its tensors against a model."""
+    header = read_header(path, _read_bytes(path))
+    return _meta_of(path, header)
+
+
+def _meta_of(path: Path, header: dict[str, Any]) -> dict[str, Any]:
     meta_text = (header.get("__metadata__") or {}).get(META_KEY)
     if meta_text is None:
         raise CheckpointError(f"{path}: not a Stepper checkpoint (no '{META_KEY}' metadata)")
@@ -133,8 +146,16 @@ def load_checkpoint(path: Path, layout: ParamLayout) -> CheckpointData:
     if not isinstance(meta, dict) or meta.get("format") != FORMAT:
         raise CheckpointError(f"{path}: unsupported checkpoint format {meta.get('format')!r} (expected {FORMAT})"
                               if isinstance(meta, dict) else f"{path}: the metadata is not a JSON object")
+    return meta
+
+
+def load_checkpoint(path: Path, layout: ParamLayout) -> CheckpointData:
+    """Read a checkpoint and check that it fits ``layout`` (names, shapes, dtype)."""
+    raw = _read_bytes(path)
+    tensors, header = _parse(path, raw)
+    meta = _meta_of(path, header)
     expected = {block.prefix: block for block in layout.blocks}
-    weights = {k: v for k, v in tensors.items() if not k.startswith("rule.")}
+    weights = {k: v for k, v in tensors.items() if not k.startswith(("rule.", LAST_UPDATE))}
     missing = sorted(set(expected) - set(weights))
     extra = sorted(set(weights) - set(expected))
     if missing or extra:
@@ -156,7 +177,15 @@ def load_checkpoint(path: Path, layout: ParamLayout) -> CheckpointData:
                 raise CheckpointError(f"{path}: does not fit the model: missing {tensor_name}")
             flat[block.start : block.stop] = _fit(path, tensor_name, tensors[tensor_name], block.shape)
         rule_arrays[key] = flat
-    return CheckpointData(theta, rule_arrays, meta, hashlib.sha256(raw).hexdigest())
+    last_update: Array | None = None
+    if any(k.startswith(LAST_UPDATE) for k in tensors):
+        last_update = np.empty(layout.size)
+        for name, block in expected.items():
+            tensor_name = f"{LAST_UPDATE}{name}"
+            if tensor_name not in tensors:
+                raise CheckpointError(f"{path}: does not fit the model: missing {tensor_name}")
+            last_update[block.start : block.stop] = _fit(path, tensor_name, tensors[tensor_name], block.shape)
+    return CheckpointData(theta, rule_arrays, meta, hashlib.sha256(raw).hexdigest(), last_update)
 
 
 def _fit(path: Path, name: str, array: Array, shape: tuple[int, ...]) -> Array:

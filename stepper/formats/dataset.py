@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import csv
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
@@ -28,11 +28,13 @@ class Table:
         header: column names in file order.
         values: ``(n_rows, n_columns)`` of the requested columns, float64.
         columns: the requested column names, in the order of ``values``.
+        lines: the file line of each row (the header is line 1), ``(n_rows,)``; None when not read from a file.
     """
 
     header: tuple[str, ...]
     values: Array
     columns: tuple[str, ...]
+    lines: NDArray[np.int64] | None = None
 
 
 def read_columns(path: Path, wanted: list[str], label: str | None = None) -> Table:
@@ -76,6 +78,7 @@ def read_columns(path: Path, wanted: list[str], label: str | None = None) -> Tab
             raise DataFileError(
                 f"{name}: line {offset + 2}: {len(row)} cells, but the header has {width}"
             )
+    lines = np.array([offset + 2 for offset, row in enumerate(body) if len(row) == width], dtype=np.int64)
     body = [row for row in body if len(row) == width]
     positions = [header.index(col) for col in wanted]
     cells = np.array([[row[p] for p in positions] for row in body], dtype=str).reshape(len(body), len(wanted))
@@ -88,7 +91,7 @@ def read_columns(path: Path, wanted: list[str], label: str | None = None) -> Tab
         raise DataFileError(
             f"{name}: line {line + 2}, column '{column}': {text!r} is not a finite number"
         )
-    return Table(header, values, tuple(wanted))
+    return Table(header, values, tuple(wanted), lines)
 
 
 def _shown(cell: str, quote: bool = True) -> str:
@@ -126,6 +129,8 @@ class Dataset:
         mean, scale: standardization applied to inputs, ``(n_inputs,)``
             (zeros and ones when inputs are not standardized).
         source: path of the CSV file.
+        train_lines, val_lines: the file line of each training and validation row
+            (the header is line 1), ``(n_train,)`` and ``(n_val,)``.
     """
 
     X: Array
@@ -137,6 +142,8 @@ class Dataset:
     mean: Array
     scale: Array
     source: str
+    train_lines: NDArray[np.int64] = field(default_factory=lambda: np.empty(0, dtype=np.int64))
+    val_lines: NDArray[np.int64] = field(default_factory=lambda: np.empty(0, dtype=np.int64))
 
     @property
     def n_train(self) -> int:
@@ -164,6 +171,7 @@ def build_dataset(
     standardization statistics come from the training rows only.
     """
     order = {name: i for i, name in enumerate(table.columns)}
+    lines = table.lines if table.lines is not None else np.arange(table.values.shape[0], dtype=np.int64) + 2
     X_all = table.values[:, [order[c] for c in inputs]]
     Y_all = table.values[:, [order[c] for c in targets]]
     n = X_all.shape[0]
@@ -196,4 +204,6 @@ def build_dataset(
         mean,
         scale,
         source,
+        lines[train_rows],
+        lines[val_rows],
     )

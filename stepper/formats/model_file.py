@@ -33,6 +33,15 @@ Schema (every key is checked; unknown keys are refused so typos surface)::
     units = 3                             # optional when the class sets n_out
     options = { gate_shift = 1.0 }        # optional, passed to the class
 
+    [training]                            # optional: how steps are made besides rate and rule
+    l2 = 1e-4                             # L2 term (l2/2) sum w^2 over the weights, in the cost
+    weight_decay = 0.01                   # decoupled weight decay per step (AdamW with adam)
+    clip_norm = 1.0                       # clip the slopes to this global norm
+    [training.schedule]                   # the rate schedule (stepper.core.schedules)
+    kind = "cosine"                       # constant | step | exponential | cosine
+    steps = 1000                          # cosine: steps, warmup, floor, restart
+    warmup = 50                           # step, exponential: every, factor
+
 Instead of ``[[layers]]`` and ``[init]``, ``network = "net.onnx"`` (relative
 to the model file) takes the layers and their weights from an ONNX graph
 (:mod:`stepper.formats.onnx_import`).
@@ -57,10 +66,13 @@ import numpy as np
 from numpy.typing import NDArray
 
 from stepper.core.activations import ACTIVATIONS
+from stepper.core.descent import Descent
 from stepper.core.init import SCHEMES, initial_params
 from stepper.core.layers import Dense, Layer
 from stepper.core.losses import LOSSES
 from stepper.core.network import Network
+from stepper.core.schedules import CONSTANT, ScheduleError
+from stepper.core.schedules import from_dict as schedule_from_dict
 from stepper.errors import ModelFileError
 from stepper.formats.data_options import DATA_KEYS, fit_data, load_data
 from stepper.formats.dataset import Dataset
@@ -71,7 +83,8 @@ if TYPE_CHECKING:
 
 Array = NDArray[np.float64]
 
-TOP_KEYS = {"name", "loss", "data", "init", "layers", "network"}
+TOP_KEYS = {"name", "loss", "data", "init", "layers", "network", "training"}
+TRAINING_KEYS = {"l2", "weight_decay", "clip_norm", "schedule"}
 INIT_KEYS = {"scheme", "seed", "range", "file", "names", "layout"}
 LAYER_KEYS = {"units", "activation", "bias", "weights", "biases", "type", "file", "class", "options"}
 
@@ -98,6 +111,7 @@ class Setup:
         document: the model document when it was built from command-line
             options rather than read from a model file (a journal records it,
             so a replay can build it again), else None.
+        descent: decay, clipping and schedule from ``[training]`` (the L2 term is ``network.l2``).
     """
 
     path: Path
@@ -108,6 +122,7 @@ class Setup:
     digest: str
     origin: WeightOrigin | None = None
     document: dict[str, Any] | None = None
+    descent: Descent = Descent()
 
 
 _LAYER_PATH = re.compile(r"^layers\[(\d+)\]")
@@ -270,7 +285,8 @@ def setup_from_doc(doc: Any, path: Path, raw: bytes, data: Dataset | None = None
         network, theta0, origin = _described_network(label, top, path, data, loss)
         digest = hashlib.sha256(raw).hexdigest()
     data = fit_data(top, network, data)
-    return Setup(path, name, network, theta0, data, digest, origin)
+    network.l2, descent = _training(label, top)
+    return Setup(path, name, network, theta0, data, digest, origin, descent=descent)
 
 
 def _described_network(label: str, top: _Keys, path: Path, data: Dataset,
@@ -299,6 +315,26 @@ def _described_network(label: str, top: _Keys, path: Path, data: Dataset,
     network = Network(len(data.input_names), layers, loss)
     theta0, origin = _initial_values(label, top, network, inline, torch)
     return network, theta0, origin
+
+
+def _training(label: str, top: _Keys) -> tuple[float, Descent]:
+    """The L2 strength and the other settings of ``[training]`` (defaults without the table)."""
+    if not top.has("training"):
+        return 0.0, Descent()
+    keys = _Keys(label, "training", top.get("training", dict), TRAINING_KEYS)
+    values = {}
+    for key in ("l2", "weight_decay", "clip_norm"):
+        value = keys.get(key, float, None)
+        if value is not None and not (math.isfinite(value) and (value > 0 if key == "clip_norm" else value >= 0)):
+            keys.fail(key, f"{value} must be a {'positive number' if key == 'clip_norm' else 'number, 0 or more'}")
+        values[key] = value
+    schedule = CONSTANT
+    if keys.has("schedule"):
+        try:
+            schedule = schedule_from_dict(keys.get("schedule", dict))
+        except ScheduleError as exc:
+            keys.fail("schedule", str(exc))
+    return values["l2"] or 0.0, Descent(values["weight_decay"] or 0.0, values["clip_norm"], schedule)
 
 
 def _torch_state(label: str, top: _Keys, n_layers: int) -> TorchState | None:

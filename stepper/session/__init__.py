@@ -17,9 +17,12 @@ bar) decides how to show and cancel them. The session knows nothing of threads.
 The class is put together from small modules: :mod:`.core` (state, derived
 values, undo and journal machinery), :mod:`.edits` (settings, freezing,
 values), :mod:`.stepping` (updates and the rate preview; how a job ends and
-what it says), :mod:`.runaway` (when a job stops a running-away cost), :mod:`.files`
-(checkpoints) and :mod:`.folders` (default paths); replay of a journal entry
-is here, since it calls on all of them.
+what it says), :mod:`.runaway` (when a job stops a running-away cost),
+:mod:`.training` (the L2 term, weight decay, clipping, the schedule),
+:mod:`.rates` (the rate range test), :mod:`.measures` (row losses, metrics,
+histograms, comparison with a checkpoint), :mod:`.files` (checkpoints) and
+:mod:`.folders` (default paths); replay of a journal entry is here, since it
+calls on all of them.
 """
 
 from __future__ import annotations
@@ -33,11 +36,16 @@ from stepper.session.undo import undo_budget
 from stepper.session.edits import Edits
 from stepper.session.files import Files
 from stepper.session.folders import default_journal_for, session_folder_for
+from stepper.session.measures import Measures, RowTable, SetMetrics
+from stepper.session.rates import Rates
 from stepper.session.runaway import RUN_ON, RunawayRule
 from stepper.session.stepping import Stepping
+from stepper.session.training import Training
 
 __all__ = [
     "RUN_ON",
+    "RowTable",
+    "SetMetrics",
     "SLOPE_SOURCES",
     "UNDO_BYTES",
     "HistoryEntry",
@@ -50,7 +58,7 @@ __all__ = [
 ]
 
 
-class Session(Stepping, Edits, Files):
+class Session(Stepping, Edits, Files, Training, Rates, Measures):
     """State of one debugging session over one model.
 
     Attributes (read them, never assign or mutate them from outside):
@@ -62,6 +70,11 @@ class Session(Stepping, Edits, Files):
         rate: learning rate.
         slope_source: ``"analytic"`` (backpropagation) or ``"numeric"``.
         batch_size: samples per update, or None for the full training set.
+        l2: strength of the L2 term in the cost (it lives on :attr:`net`).
+        weight_decay: decoupled weight decay per step (AdamW with the adam rule).
+        clip_norm: the global slope norm steps clip to, or None.
+        schedule: the rate schedule (:mod:`stepper.core.schedules`).
+        last_update: the change the last step made, ``(n_params,)``.
         history: cost after every step, entry 0 at the start.
         check: the last numeric comparison, or None.
         runaway: the rule that stops a job of steps whose cost runs away (see :mod:`.runaway`).
@@ -112,6 +125,8 @@ class Session(Stepping, Edits, Files):
                 self.load_checkpoint(Path(entry["path"]), None if force or digest is None else str(digest))
             elif op == "save":
                 self.dirty = False
+            elif self.apply_training(str(op), entry):
+                pass
             else:
                 raise CheckpointError(f"unknown journal operation {op!r}")
         except (KeyError, TypeError, ValueError) as exc:

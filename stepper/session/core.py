@@ -8,6 +8,7 @@ change the model live in sibling modules (:mod:`.edits`, :mod:`.stepping`,
 
 from __future__ import annotations
 
+import copy
 import math
 from dataclasses import dataclass
 from pathlib import Path
@@ -16,6 +17,7 @@ from typing import Any, Callable, Iterable
 import numpy as np
 from numpy.typing import NDArray
 
+from stepper.core.descent import Descent
 from stepper.core.gradcheck import CheckResult, iter_check
 from stepper.core.numeric import Progress, run_to_end
 from stepper.core.optimizers import RULES, RuleState, fresh_state
@@ -83,7 +85,8 @@ class SessionCore:
         batch_size: int | None = None,
     ) -> None:
         self.setup = setup
-        self.net = setup.network
+        # A copy of its own: the L2 term is a setting of this session (net.l2).
+        self.net = copy.copy(setup.network)
         n = self.net.n_params
         self.theta: Array = setup.theta0.copy()
         self.frozen: NDArray[np.bool_] = np.zeros(n, dtype=bool)
@@ -94,6 +97,10 @@ class SessionCore:
         self.rate = _check_rate(rate)
         self.slope_source = _check_slope_source(slope_source)
         self.batch_size: int | None = _check_batch_size(batch_size, setup.data.n_train)
+        self.weight_decay = setup.descent.weight_decay
+        self.clip_norm = setup.descent.clip_norm
+        self.schedule = setup.descent.schedule
+        self.last_update: Array = np.zeros(n)
         self.seed = seed
         self.batch_rng = np.random.default_rng(seed)
         self.noise_rng = np.random.default_rng(seed + 1)
@@ -109,6 +116,7 @@ class SessionCore:
         #: Bytes of saved arrays the undo levels may keep (stepper.session.undo).
         self.undo_budget = undo_budget(n)
         self._version = 0
+        self._changes = 0  # operations committed, undone or redone (any change of state)
         self._check_version = -1
         self._cache: dict[str, tuple[int, Any]] = {}
         self.history: list[HistoryEntry] = [self._entry()]
@@ -125,6 +133,24 @@ class SessionCore:
     @property
     def rule(self) -> str:
         return self.rule_state.rule
+
+    @property
+    def l2(self) -> float:
+        """Strength of the L2 term in the cost (0: none)."""
+        return self.net.l2
+
+    @property
+    def descent(self) -> Descent:
+        """Clipping, decoupled decay and schedule, as the update uses them."""
+        return Descent(self.weight_decay, self.clip_norm, self.schedule)
+
+    def scheduled_rate(self) -> float:
+        """The rate the next step will use: the rate times the schedule's factor."""
+        return self.rate * self.schedule.factor_at(self.step_count)
+
+    def penalty(self) -> float:
+        """The L2 term's part of the training cost."""
+        return self.net.penalty(self.theta)
 
     @property
     def names(self) -> tuple[str, ...]:
@@ -227,6 +253,8 @@ class SessionCore:
                 out[name] = self.batch_rng.bit_generator.state
             elif name == "noise_rng":
                 out[name] = self.noise_rng.bit_generator.state
+            elif name == "last_update":
+                out[name] = self.last_update.copy()
             else:
                 out[name] = getattr(self, name)
         return out
@@ -257,6 +285,13 @@ class SessionCore:
                 self.batch_rng.bit_generator.state = value
             elif name == "noise_rng":
                 self.noise_rng.bit_generator.state = value
+            elif name == "l2":
+                self.net.l2 = float(value)
+                self._version += 1  # the cost changes with it
+            elif name == "last_update":
+                self.last_update = value.copy()
+            elif name == "last_update_bits":
+                flip(self.last_update, value)
             elif name == "history":
                 start, entries = value
                 del self.history[start:]
@@ -270,8 +305,14 @@ class SessionCore:
         assert state.rule == side.rule, "an undo level applied out of order"
         return RuleState(state.rule, {k: flipped(state.arrays[k], bits) for k, bits in side.bits.items()}, side.t)
 
+    @property
+    def changes(self) -> int:
+        """Counter that changes with every operation, undo and redo (any change of state)."""
+        return self._changes
+
     def _commit(self, change: _Change, journal: dict[str, Any] | None) -> None:
         """Record ``change`` (state now on its ``after`` side) as the newest undo level, within the budget."""
+        self._changes += 1
         change.before, change.after = compact(change.before, change.after)
         self._undo.append(change)
         self._undo_bytes += change.nbytes()
@@ -293,6 +334,7 @@ class SessionCore:
         change = self._undo.pop()
         self._undo_bytes -= change.nbytes()
         cost = self.history[-1].train_cost
+        self._changes += 1
         self._restore(change.before)
         self._redo.append(change)
         self.dirty = True
@@ -307,6 +349,7 @@ class SessionCore:
             return None
         change = self._redo.pop()
         cost = self.history[-1].train_cost
+        self._changes += 1
         self._restore(change.after)
         self._undo.append(change)
         self._undo_bytes += change.nbytes()
@@ -320,6 +363,23 @@ class SessionCore:
         if "history" not in change.before:
             return ""
         return f": cost {before:.6g} -> {self.history[-1].train_cost:.6g}"
+    def _manual_change(self, name: str, before: dict[str, Any], after: dict[str, Any],
+                       journal: dict[str, Any]) -> None:
+        """Apply ``after``, add the new cost to the history as a point of its own, and commit.
+
+        If the new cost cannot be computed (a custom layer raising on the new
+        values), ``before`` is put back and the error passes on: nothing changed.
+        """
+        start = len(self.history)
+        self._restore(after)
+        try:
+            entry = self._entry()
+        except BaseException:
+            self._restore(before)
+            raise
+        self.history.append(entry)
+        self._commit(_Change(name, {**before, "history": (start, [])}, {**after, "history": (start, [entry])}),
+                     journal)
 
     def _setting(self, name: str, field: str, value: Any, journal: dict[str, Any]) -> None:
         before = self._snapshot([field])

@@ -3,10 +3,14 @@
 from __future__ import annotations
 
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 
+from stepper.core.descent import check_setting
 from stepper.core.optimizers import fresh_state
+from stepper.core.schedules import ScheduleError
+from stepper.core.schedules import from_dict as schedule_from_dict
 from stepper.errors import CheckpointError, UsageError
 from stepper.formats.checkpoint import CheckpointData, load_checkpoint, save_checkpoint
 from stepper.session.core import SLOPE_SOURCES, HistoryEntry, SessionCore, _Change, _check_rate
@@ -33,8 +37,13 @@ class Files(SessionCore):
             "history": [[h.step, h.train_cost, h.val_cost, h.rate, h.rule] for h in self.history],
             "batch_rng": self.batch_rng.bit_generator.state,
             "noise_rng": self.noise_rng.bit_generator.state,
+            "l2": self.l2,
+            "weight_decay": self.weight_decay,
+            "clip_norm": self.clip_norm,
+            "schedule": self.schedule.as_dict(),
         }
-        save_checkpoint(target, self.net.layout, CheckpointData(self.theta, self.rule_state.arrays, meta))
+        save_checkpoint(target, self.net.layout,
+                        CheckpointData(self.theta, self.rule_state.arrays, meta, last_update=self.last_update))
         self.dirty = False
         self.last_checkpoint = target
         self.last_action = f"saved {target}"
@@ -84,7 +93,9 @@ class Files(SessionCore):
                 "batch_size": None if meta["batch_size"] is None else int(meta["batch_size"]),
             }
             rng_states = {name: meta[name] for name in ("batch_rng", "noise_rng") if meta.get(name) is not None}
-        except (KeyError, TypeError, ValueError, UsageError) as exc:
+            values.update(self._saved_training(meta))
+            values["last_update"] = data.last_update if data.last_update is not None else np.zeros(self.net.n_params)
+        except (KeyError, TypeError, ValueError, UsageError, ScheduleError) as exc:
             raise CheckpointError(f"{path}: the checkpoint's metadata is incomplete or wrong ({exc})") from None
         if values["slope_source"] not in SLOPE_SOURCES:
             raise CheckpointError(f"{path}: unknown slope source {values['slope_source']!r}")
@@ -105,3 +116,18 @@ class Files(SessionCore):
         self.last_checkpoint = path
         note = "" if meta.get("model_digest") == self.setup.digest else " (the model file has changed since it was saved)"
         self.last_action = f"loaded {path} at step {self.step_count}{note}"
+
+    def _saved_training(self, meta: dict[str, Any]) -> dict[str, Any]:
+        """The training settings a checkpoint holds (those it lacks stay as they are); ValueError if wrong."""
+        out: dict[str, Any] = {}
+        for key in ("l2", "weight_decay"):
+            if key in meta:
+                out[key] = check_setting(key, meta[key])
+        if "clip_norm" in meta:
+            norm = meta["clip_norm"]
+            out["clip_norm"] = None if norm is None else check_setting("clip_norm", norm)
+            if out["clip_norm"] == 0.0:
+                raise ValueError("clip_norm 0 must be positive")
+        if "schedule" in meta:
+            out["schedule"] = schedule_from_dict(meta["schedule"])
+        return out

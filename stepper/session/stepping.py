@@ -25,8 +25,9 @@ from typing import Iterable, Iterator
 
 import numpy as np
 
+from stepper.core.descent import Update, descent_update, draw_batch
 from stepper.core.numeric import Progress, numeric_slopes, run_to_end
-from stepper.core.optimizers import RuleState, compute_update
+from stepper.core.optimizers import RuleState
 from stepper.errors import DivergenceError, RunawayError, StepperError, UsageError
 from stepper.session.core import Array, SessionCore, StepReport, _Change
 from stepper.session.runaway import RunawayRule
@@ -41,8 +42,7 @@ class Stepping(SessionCore):
         data = self.setup.data
         if self.batch_size is None:
             return data.X, data.Y
-        pick = self.batch_rng.choice(data.n_train, size=self.batch_size, replace=False)
-        pick.sort()
+        pick = draw_batch(self.batch_rng, data.n_train, self.batch_size)
         return data.X[pick], data.Y[pick]
 
     def _slopes(self, X: Array, Y: Array) -> Array:
@@ -64,6 +64,7 @@ class Stepping(SessionCore):
         except BaseException:
             self.batch_rng.bit_generator.state = rng_state
             raise
+        np.subtract(theta, self.theta, out=self.last_update)
         self.theta[...] = theta
         self.rule_state = state
         self.step_count += 1
@@ -89,7 +90,8 @@ class Stepping(SessionCore):
         with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
             # Overflow is expected on the way to divergence; it is caught just below.
             slopes = self._slopes(X, Y)
-            delta, state = compute_update(self.rule_state, slopes, self.rate, self.frozen)
+            update = self._update(slopes, self.rate)
+            delta, state = update.delta, update.state
             theta = self.theta + delta
             bad = ~np.isfinite(theta)
             if bad.any():
@@ -106,7 +108,7 @@ class Stepping(SessionCore):
                 order = np.argsort(-np.abs(delta))[:3]
                 culprits = tuple(self.names[i] for i in order)
                 what = f"the cost would become non-finite (largest moves: {', '.join(culprits)})"
-            raise DivergenceError(f"step refused at rate {self.rate:g}: {what}", culprits)
+            raise DivergenceError(f"step refused at rate {update.rate:g}: {what}", culprits)
         return theta, state, float(cost), next_slopes
 
     def _cost_and_slopes_at(self, theta: Array) -> tuple[float, Array | None]:
@@ -120,8 +122,13 @@ class Stepping(SessionCore):
         try:
             cost, slopes, _ = self.net.backward(theta, trace, data.Y)
         except StepperError:
-            return float(self.net.output_cost(trace[-1][0], trace[-1][1], data.Y)), None
+            return float(self.net.output_cost(trace[-1][0], trace[-1][1], data.Y)) + self.net.penalty(theta), None
         return cost, slopes
+
+    def _update(self, slopes: Array, rate: float) -> Update:
+        """The next step's update at base rate ``rate`` (clipping, rule, schedule, decay); nothing changes."""
+        return descent_update(self.rule_state, slopes, self.theta, rate, self.step_count, self.descent,
+                              self.frozen, self.net.penalized)
 
     def iter_steps(self, n: int, watch: bool = True) -> Progress[StepReport]:
         """Make ``n`` updates as one undoable operation, yielding ``(done, n)`` after each.
@@ -134,7 +141,7 @@ class Stepping(SessionCore):
         """
         if n < 1:
             raise UsageError(f"number of steps {n} must be at least 1")
-        fields = ["theta", "rule_state", "step_count", "batch_rng"]
+        fields = ["theta", "rule_state", "step_count", "batch_rng", "last_update"]
         before = self._snapshot(fields)
         start = len(self.history)
         cost_before = self.train_cost()
@@ -239,9 +246,8 @@ class Stepping(SessionCore):
             slopes = self._slopes(data.X, data.Y)
         out: list[tuple[float, float]] = []
         for rate in (self.candidate_rates() if rates is None else rates):
-            delta, _ = compute_update(self.rule_state, slopes, float(rate), self.frozen)
             with np.errstate(all="ignore"):
-                theta = self.theta + delta
+                theta = self.theta + self._update(slopes, float(rate)).delta
                 cost = self.net.cost(theta, data.X, data.Y) if np.all(np.isfinite(theta)) else math.inf
             out.append((float(rate), cost if math.isfinite(cost) else math.inf))
         return out

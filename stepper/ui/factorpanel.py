@@ -43,7 +43,8 @@ def factor_lines(f: FactorFigures, width: int) -> list[str]:
         _row(f"sample {b.sample}" + (" (most)" if b.sample == f.largest else ""), b.at(b.sample)),
     ]
     verdict = "matches" if f.mismatch <= MATCH else f"DIFFERS (relative error {f.mismatch:.1e})"
-    lines += textwrap.wrap(f"sum of products {b.total: .6e}, table's slope {f.table_slope: .6e}: {verdict}",
+    l2 = f" + L2 term {b.penalty: .3e}" if b.penalty else ""
+    lines += textwrap.wrap(f"sum of products{l2} {b.total: .6e}, table's slope {f.table_slope: .6e}: {verdict}",
                            wrap, subsequent_indent="  ")
     if f.at_z is not None:
         lines += textwrap.wrap(f"error signal taken at Z, activation factor 1: {f.at_z}", wrap,

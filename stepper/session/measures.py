@@ -1,0 +1,118 @@
+"""Read-only figures of a session's current state: row losses, metrics, histograms, comparison with a checkpoint.
+
+None of these changes anything; the row losses and metrics are cached
+against the parameters' version, like the costs.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+from numpy.typing import NDArray
+
+from stepper.core.histograms import DEFAULT_BINS, LayerSpread, layer_spreads
+from stepper.core.metrics import THRESHOLD, Metrics, metrics, task_of
+from stepper.core.rows import RowLosses, row_losses
+from stepper.core.weightdiff import WeightDiff, compare_weights
+from stepper.formats.checkpoint import load_checkpoint
+from stepper.session.core import SessionCore
+
+
+SPLITS = ("both", "train", "validation")
+
+
+@dataclass(frozen=True)
+class RowTable:
+    """Rows of the training set, the validation set or both, training rows first.
+
+    Attributes:
+        loss: each row's loss, ``(n,)``.
+        output, target: ``(n, n_outputs)``.
+        validation: True for a validation row, ``(n,)``.
+        index: the row's number within its own set (training rows are the samples the slopes sum over), ``(n,)``.
+        line: the row's line in the data file (the header is line 1), ``(n,)``.
+    """
+
+    loss: NDArray[np.float64]
+    output: NDArray[np.float64]
+    target: NDArray[np.float64]
+    validation: NDArray[np.bool_]
+    index: NDArray[np.int64]
+    line: NDArray[np.int64]
+
+    @property
+    def n(self) -> int:
+        return int(self.loss.size)
+
+
+@dataclass(frozen=True)
+class SetMetrics:
+    """Metrics of the training rows and, when there are any, of the validation rows."""
+
+    train: Metrics
+    validation: Metrics | None
+
+
+class Measures(SessionCore):
+    """Row losses, metrics, layer histograms, and the comparison with a checkpoint."""
+
+    @property
+    def task(self) -> str:
+        """``classes``, ``binary`` or ``regression`` (:func:`stepper.core.metrics.task_of`)."""
+        return task_of(self.net)
+
+    def rows(self, validation: bool = False) -> RowLosses:
+        """Loss, output and target of every training (or validation) row."""
+        data = self.setup.data
+        X, Y = (data.X_val, data.Y_val) if validation else (data.X, data.Y)
+        result: RowLosses = self._cached("rows-val" if validation else "rows",
+                                         lambda: row_losses(self.net, self.theta, X, Y))
+        return result
+
+    def row_table(self, split: str = "both") -> RowTable:
+        """Every row of ``split`` (one of :data:`SPLITS`) with its loss, output, target and place."""
+        if split not in SPLITS:
+            raise ValueError(split)
+        data = self.setup.data
+        parts = []
+        if split in ("both", "train"):
+            parts.append((self.rows(), False, data.train_lines))
+        if split in ("both", "validation") and data.n_val:
+            parts.append((self.rows(validation=True), True, data.val_lines))
+        m = self.net.n_outputs
+        if not parts:
+            return RowTable(np.empty(0), np.empty((0, m)), np.empty((0, m)), np.empty(0, dtype=bool),
+                            np.empty(0, dtype=np.int64), np.empty(0, dtype=np.int64))
+        return RowTable(
+            np.concatenate([r.loss for r, _, _ in parts]),
+            np.concatenate([r.output for r, _, _ in parts]),
+            np.concatenate([r.target for r, _, _ in parts]),
+            np.concatenate([np.full(r.n, v) for r, v, _ in parts]),
+            np.concatenate([np.arange(r.n, dtype=np.int64) for r, _, _ in parts]),
+            np.concatenate([np.asarray(lines, dtype=np.int64) for _, _, lines in parts]),
+        )
+
+    def metrics(self, threshold: float = THRESHOLD) -> SetMetrics:
+        """Task metrics on the training and validation rows."""
+        def compute() -> SetMetrics:
+            train = self.rows()
+            val = self.rows(validation=True) if self.setup.data.n_val else None
+            return SetMetrics(metrics(self.task, train.output, train.target, threshold),
+                              None if val is None else metrics(self.task, val.output, val.target, threshold))
+
+        result: SetMetrics = self._cached(f"metrics-{threshold!r}", compute)
+        return result
+
+    def spreads(self, bins: int = DEFAULT_BINS) -> list[LayerSpread]:
+        """Histograms of each layer's weights, slopes, last updates and activations (training rows)."""
+        return layer_spreads(self.net, self.theta, self.analytic_slopes(), self.last_update, self.setup.data.X,
+                             bins)
+
+    def compare_with(self, path: Path | str, top: int = 10) -> WeightDiff:
+        """The checkpoint at ``path`` (as ``a``) against the current weights (as ``b``)."""
+        other = load_checkpoint(Path(path), self.net.layout)
+        data = self.setup.data
+        return compare_weights(self.net, other.theta, self.theta.copy(), data.X, data.Y, data.X_val, data.Y_val,
+                               top)
