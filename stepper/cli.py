@@ -35,7 +35,7 @@ from stepper import __version__
 from stepper.errors import StepperError, UsageError
 
 #: Subcommand modules, in the order ``--help`` lists them.
-COMMANDS = ("open", "check", "run", "replay", "slice", "explain", "export")
+COMMANDS = ("open", "check", "run", "replay", "slice", "explain", "export", "samples", "rates", "diff")
 
 #: The subcommand that runs when the first argument is a model or an option of its own.
 DEFAULT_COMMAND = "open"

@@ -33,6 +33,7 @@ KILN = ROOT / "kiln-tiny" / "model.toml"
 JSON_FIELDS = {
     "model", "steps_requested", "steps_done", "stopped_early", "refused", "runaway", "rate", "rule", "slope_source",
     "batch_size", "cost_before", "cost_after", "validation_before", "validation_after", "moved_most", "checkpoint",
+    "l2_term_after", "settings", "rate_used_next", "metrics",
 }
 
 
@@ -135,8 +136,10 @@ def test_text_report(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None
     assert lines[0] == "10 of 10 steps: gd, rate 0.05, analytic slopes, batches of 40"
     assert lines[1].startswith("train cost  ") and " -> " in lines[1]
     assert lines[2].startswith("validation  ")
-    assert lines[3] == "moved most:"
-    assert len(lines[4:9]) == 5 and all(line.startswith("  L") for line in lines[4:9])
+    assert lines[3].startswith("train       R2 ") and " -> R2 " in lines[3]
+    assert lines[4].startswith("validation  R2 ") and "MAE" in lines[4]
+    assert lines[5] == "moved most:"
+    assert len(lines[6:11]) == 5 and all(line.startswith("  L") for line in lines[6:11])
     assert lines[-1] == f"saved {save}"
     assert "step 10/10" in err  # progress lines when stderr is not a terminal
 
@@ -144,7 +147,12 @@ def test_text_report(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None
 @pytest.mark.parametrize("argv, message", [
     (["--rate", "-1"], "'-1' must be a positive number"),
     (["--rate", "fast"], "'fast' is not a number"),
-    (["--steps", "0"], "'0' must be at least 1"),
+    (["--steps", "-1"], "'-1' must be 0 or more"),
+    (["--l2", "-0.1"], "'-0.1' must be a number, 0 or more"),
+    (["--weight-decay", "much"], "'much' is not a number"),
+    (["--clip-norm", "0"], "'0' must be a positive number"),
+    (["--schedule", "cosine"], "'cosine': a cosine schedule needs steps"),
+    (["--schedule", "cosine:steps=10,tilt=2"], "tilt: a cosine schedule takes no such key"),
     (["--rule", "newton"], "invalid choice: 'newton'"),
     (["--slopes", "guessed"], "invalid choice: 'guessed'"),
     (["--freeze", "L9.*"], "no parameter name matches 'L9.*'"),

@@ -10,15 +10,17 @@ from __future__ import annotations
 
 import argparse
 import math
+import os
 import sys
 from pathlib import Path
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING, Any, Sequence
 
 import numpy as np
 
 from stepper.commands.graph_data import add_graph_data_options, load_graph_setup, wants_graph
 from stepper.core.numeric import METHODS
 from stepper.errors import UsageError
+from stepper.formats.atomic import write_atomic
 from stepper.formats.model_file import Setup, load_setup
 from stepper.scenarios import resolve_model
 from stepper.session.runaway import GROWTH, RISES, RUN_ON, RunawayRule
@@ -207,3 +209,41 @@ def progress_printer(label: str) -> Any:
         stream.flush()
 
     return show
+
+
+def write_plot(target: str, text: str, *, json_output: bool, inputs: Sequence[Path | None] = ()) -> None:
+    """Write a plot's text to the file ``target``, or to standard output for ``-``.
+
+    ``-`` with ``json_output`` is refused (both would go to standard output), and
+    so is a file that is one of ``inputs`` (an output never overwrites an input).
+    The file is replaced atomically.
+    """
+    if target == "-":
+        if json_output:
+            raise UsageError("--plot - and --json both write to standard output; give --plot a file name")
+        sys.stdout.write("\n" + text + "\n")
+        return
+    check_plot_target(target, inputs)
+    path = Path(target)
+    try:
+        write_atomic(path, (text + "\n").encode("utf-8"))
+    except OSError as exc:
+        raise UsageError(f"--plot {target}: cannot be written ({exc.strerror or exc})") from None
+
+
+def check_plot_target(target: str | None, inputs: Sequence[Path | None]) -> None:
+    """Refuse a ``--plot`` file that is one of ``inputs`` (or another output); call it before long work."""
+    if target is None or target == "-":
+        return
+    for source in inputs:
+        if source is not None and _same_file(Path(target), Path(source)):
+            raise UsageError(f"--plot {target}: is also an input ({source}); choose another file")
+        if source is not None and Path(target).resolve() == Path(source).resolve():
+            raise UsageError(f"--plot {target}: is also an output ({source}); choose another file")
+
+
+def _same_file(a: Path, b: Path) -> bool:
+    try:
+        return a.exists() and b.exists() and os.path.samefile(a, b)
+    except OSError:
+        return False

@@ -11,17 +11,15 @@ from typing import Any
 
 import numpy as np
 
-from stepper.commands.common import (
-    add_model_argument,
-    add_resume_option,
-    add_step_options,
-    apply_step_options,
-    load,
-    positive_int,
-)
+from stepper.charts import spreads_text
+from stepper.commands.common import add_model_argument, check_plot_target, write_plot
+from stepper.commands.session_options import add_session_options, open_session, settings_document
+from stepper.core.metrics import metrics_document
 from stepper.core.numeric import run_to_end
 from stepper.errors import DivergenceError, RunawayError
-from stepper.session import Session
+from stepper.scenarios import resolve_model
+from stepper.session import Session, SetMetrics
+from stepper.training_report import metric_words, settings_words
 
 
 def add_parser(subs: Any) -> None:
@@ -34,14 +32,15 @@ def add_parser(subs: Any) -> None:
         "as divergent or the cost ran away, 2 bad input.",
     )
     add_model_argument(p)
-    p.add_argument("--steps", type=positive_int, default=100, metavar="N", help="number of updates (default 100)")
-    add_step_options(p, "for the run")
-    p.add_argument("--freeze", action="append", default=[], metavar="PATTERN",
-                   help="freeze parameters whose names match, e.g. 'L1.b[*]' (repeatable)")
-    add_resume_option(p, help="start from a checkpoint (its weights, settings and cost history)")
+    p.add_argument("--steps", type=_steps, default=100, metavar="N",
+                   help="number of updates (default 100; 0 makes none and reports the state)")
+    add_session_options(p, "for the run")
     p.add_argument("--save", type=Path, default=None, metavar="PATH", help="write a checkpoint at the end")
     p.add_argument("--journal", type=Path, default=None, metavar="PATH",
                    help="append every operation to this journal file (for stepper replay)")
+    p.add_argument("--plot", default=None, metavar="FILE",
+                   help="write histograms of each layer's weights, slopes, last updates and activations "
+                   "at the end, as plain text ('-' for standard output)")
     p.add_argument("--json", action="store_true", help="print one JSON document at the end")
     p.set_defaults(handler=handle)
 
@@ -59,9 +58,19 @@ class _StopFlag:
         print("\nstopping after the current step (Ctrl-C again to stop at once)", file=sys.stderr)
 
 
+def _steps(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a whole number") from None
+    if value < 0:
+        raise argparse.ArgumentTypeError(f"{text!r} must be 0 or more")
+    return value
+
+
 def handle(args: argparse.Namespace) -> int:
-    setup = load(args)
-    session = Session(setup, journal=args.journal, seed=args.seed)
+    check_plot_target(args.plot, _plot_inputs(args, resolve_model(args.model)) + [args.save, args.journal])
+    session = open_session(args, journal=args.journal)
     try:
         return _run(session, args)
     finally:
@@ -69,22 +78,19 @@ def handle(args: argparse.Namespace) -> int:
 
 
 def _run(session: Session, args: argparse.Namespace) -> int:
-    if args.resume is not None:
-        session.load_checkpoint(args.resume)
-    apply_step_options(session, args)
-    for pattern in args.freeze:
-        session.freeze_matching(pattern)
     start_theta = session.theta.copy()
     start_cost = session.train_cost()
     start_val = session.val_cost()
     start_step = session.step_count
+    start_metrics = session.metrics()
 
     stop = _StopFlag()
     previous = signal.signal(signal.SIGINT, stop)
     refused: DivergenceError | None = None
     runaway: RunawayError | None = None
     try:
-        run_to_end(session.iter_steps(args.steps), _progress(args.steps), lambda: stop.requested)
+        if args.steps:
+            run_to_end(session.iter_steps(args.steps), _progress(args.steps), lambda: stop.requested)
     except RunawayError as exc:
         runaway = exc
     except DivergenceError as exc:
@@ -93,6 +99,7 @@ def _run(session: Session, args: argparse.Namespace) -> int:
         signal.signal(signal.SIGINT, previous)
 
     saved = session.save_checkpoint(args.save) if args.save is not None else None
+    end_metrics = session.metrics()
     moved = np.abs(session.theta - start_theta)
     top = np.argsort(-moved, kind="stable")[:5]
     steps_done = session.step_count - start_step
@@ -112,6 +119,11 @@ def _run(session: Session, args: argparse.Namespace) -> int:
             "cost_after": session.train_cost(),
             "validation_before": start_val,
             "validation_after": session.val_cost(),
+            "l2_term_after": session.penalty(),
+            "settings": settings_document(session),
+            "rate_used_next": session.scheduled_rate(),
+            "metrics": {"task": session.task,
+                        "before": _metrics_document(start_metrics), "after": _metrics_document(end_metrics)},
             "moved_most": [{"name": session.names[i], "before": float(start_theta[i]),
                             "after": float(session.theta[i])} for i in top],
             "checkpoint": None if saved is None else str(saved),
@@ -125,15 +137,27 @@ def _run(session: Session, args: argparse.Namespace) -> int:
         out.write(f"{steps_done} of {args.steps} steps{note}: {session.rule}, rate {session.rate:g}, "
                   f"{session.slope_source} slopes, "
                   f"{'full batch' if session.batch_size is None else f'batches of {session.batch_size}'}\n")
-        out.write(f"train cost  {start_cost:.10g} -> {session.train_cost():.10g}\n")
+        settings = settings_words(session.l2, session.descent, session.rate, session.step_count)
+        if settings:
+            out.write(f"settings    {settings}\n")
+        penalty = session.penalty()
+        share = f"  (L2 term {penalty:.4g} of it)" if penalty else ""
+        out.write(f"train cost  {start_cost:.10g} -> {session.train_cost():.10g}{share}\n")
         val = session.val_cost()
         if val is not None:
             out.write(f"validation  {start_val:.10g} -> {val:.10g}\n")
+        out.write(f"train       {metric_words(start_metrics.train)} -> {metric_words(end_metrics.train)}\n")
+        if end_metrics.validation is not None:
+            out.write(f"validation  {metric_words(start_metrics.validation)} -> "
+                      f"{metric_words(end_metrics.validation)}\n")
         out.write("moved most:\n")
         for i in top:
             out.write(f"  {session.names[i]:<16} {start_theta[i]: .6g} -> {session.theta[i]: .6g}\n")
         if saved is not None:
             out.write(f"saved {saved}\n")
+    if args.plot is not None:
+        inputs = _plot_inputs(args, session.setup.path) + [Path(session.setup.data.source), args.save, args.journal]
+        write_plot(args.plot, spreads_text(session.spreads()), json_output=args.json, inputs=inputs)
     if runaway is not None:
         print(f"stepper: {runaway.what}; try a smaller --rate (the app's rate preview compares rates), "
               "or --run-on to let it run on", file=sys.stderr)
@@ -143,6 +167,15 @@ def _run(session: Session, args: argparse.Namespace) -> int:
               file=sys.stderr)
         return 1
     return 0
+
+
+def _plot_inputs(args: argparse.Namespace, model: Path) -> list[Path | None]:
+    return [model, args.resume]
+
+
+def _metrics_document(found: SetMetrics) -> dict[str, Any]:
+    return {"train": metrics_document(found.train),
+            "validation": None if found.validation is None else metrics_document(found.validation)}
 
 
 def _progress(total: int) -> Any:

@@ -20,6 +20,7 @@ from stepper.commands.common import (
     positive_int,
     resumed_weights,
     sample_limit,
+    write_plot,
 )
 from stepper.core.nearest import unknown_name
 from stepper.core.slice import DEFAULT_POINTS, CostSlice, cost_slice
@@ -85,15 +86,8 @@ def handle(args: argparse.Namespace) -> int:
     else:
         sys.stdout.write(report(setup, name, result, X.shape[0]))
     if plot is not None:
-        if args.plot == "-":
-            if args.json:
-                raise UsageError("--plot - and --json both write to standard output; give --plot a file name")
-            sys.stdout.write("\n" + plot + "\n")
-        else:
-            try:
-                Path(args.plot).write_text(plot + "\n", encoding="utf-8")
-            except OSError as exc:
-                raise UsageError(f"--plot {args.plot}: cannot be written ({exc.strerror})") from None
+        inputs = [setup.path, Path(setup.data.source), args.resume]
+        write_plot(args.plot, plot, json_output=args.json, inputs=inputs)
     return 0
 
 

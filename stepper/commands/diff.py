@@ -1,0 +1,109 @@
+"""``stepper diff A B``: two checkpoints of one model compared (costs, each layer's change, direction)."""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+import tomllib
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from stepper.commands.common import positive_int
+from stepper.core.weightdiff import WeightDiff, compare_weights
+from stepper.errors import UsageError
+from stepper.formats.checkpoint import load_checkpoint, read_meta
+from stepper.formats.model_file import Setup, load_setup
+from stepper.scenarios import resolve_model
+from stepper.session import Session
+from stepper.training_report import diff_lines, finite_or_none
+
+
+def add_parser(subs: Any) -> None:
+    p = subs.add_parser(
+        "diff",
+        help="compare two checkpoints: costs, each layer's change, the weights that moved most",
+        description="Compare the weights of A and B (checkpoints of one model; a model file, folder or "
+        "bundled name stands for its starting weights): the cost of each, each layer's norm of change, "
+        "the weights that moved most, and the cosine between the change and the slope.",
+    )
+    p.add_argument("a", help="the earlier checkpoint (or a model, for its starting weights)")
+    p.add_argument("b", help="the later checkpoint (or a model, for its starting weights)")
+    p.add_argument("--model", default=None, metavar="MODEL",
+                   help="the model both belong to (default: the one the checkpoints name)")
+    p.add_argument("--top", type=positive_int, default=10, metavar="N", help="list the N weights that moved most")
+    p.add_argument("--json", action="store_true", help="print one JSON document instead of text")
+    p.set_defaults(handler=handle)
+
+
+def _is_checkpoint(text: str) -> bool:
+    return text.endswith(".safetensors")
+
+
+def _model_for(args: argparse.Namespace) -> Setup:
+    """The model: --model, else A or B when one is a model, else the model file B (then A) was saved from."""
+    if args.model is not None:
+        return load_setup(resolve_model(args.model))
+    for text in (args.a, args.b):
+        if not _is_checkpoint(text):
+            return load_setup(resolve_model(text))
+    saved = read_meta(Path(args.b)).get("model_file")
+    if not (isinstance(saved, str) and Path(saved).is_file()):
+        raise UsageError(f"{args.b}: the model file it was saved from cannot be found; name it with --model MODEL")
+    if _names_code(Path(saved)):
+        # A checkpoint never decides which Python code runs: the user names such a model.
+        raise UsageError(f"{args.b} was saved from {saved}, whose custom layers run Python code; "
+                         "name the model yourself with --model MODEL")
+    return load_setup(Path(saved))
+
+
+def _names_code(path: Path) -> bool:
+    """True when the model file at ``path`` has a custom layer (or cannot be read to tell)."""
+    try:
+        doc = tomllib.loads(path.read_text(encoding="utf-8"))
+    except (OSError, UnicodeDecodeError, tomllib.TOMLDecodeError, RecursionError):
+        return True
+    layers = doc.get("layers")
+    return not isinstance(layers, list) or any(not isinstance(l, dict) or l.get("type", "dense") != "dense"
+                                               for l in layers)
+
+
+def handle(args: argparse.Namespace) -> int:
+    setup = _model_for(args)
+    session = Session(setup)
+    if _is_checkpoint(args.b):
+        session.load_checkpoint(Path(args.b))  # its L2 strength sets the costs' L2 term
+    a = load_checkpoint(Path(args.a), setup.network.layout).theta if _is_checkpoint(args.a) else setup.theta0
+    data = setup.data
+    result = compare_weights(session.net, a, session.theta.copy(), data.X, data.Y, data.X_val, data.Y_val, args.top)
+    label_a = args.a if _is_checkpoint(args.a) else f"{args.a} (starting weights)"
+    label_b = args.b if _is_checkpoint(args.b) else f"{args.b} (starting weights)"
+    if args.json:
+        json.dump(document(setup, result, label_a, label_b), sys.stdout, indent=1)
+        sys.stdout.write("\n")
+    else:
+        lines = [f"{setup.name}: {data.n_train} training and {data.n_val} validation samples"]
+        lines += diff_lines(result, setup.network.layout.names, label_a, label_b)
+        sys.stdout.write("\n".join(lines) + "\n")
+    return 0
+
+
+def document(setup: Setup, d: WeightDiff, label_a: str, label_b: str) -> dict[str, Any]:
+    names = setup.network.layout.names
+    return {
+        "schema_version": 1,
+        "model": {"name": setup.name, "path": str(setup.path), "sha256": setup.digest},
+        "a": label_a,
+        "b": label_b,
+        "train_cost": {"a": d.cost_a, "b": d.cost_b},
+        "validation_cost": None if d.val_a is None else {"a": d.val_a, "b": d.val_b},
+        "change_norm": d.change_norm,
+        "layers": [{"layer": f"L{m.index + 1}", "label": m.label, "change_norm": m.change, "norm_a": m.before,
+                    "norm_b": m.after, "relative_change": finite_or_none(m.relative)} for m in d.layers],
+        "cosine_with_slope_at_b": finite_or_none(d.cosine_b),
+        "cosine_with_slope_at_a": finite_or_none(d.cosine_a),
+        "moved_most": [{"name": names[i], "a": float(d.a[i]), "b": float(d.b[i])} for i in d.moved],
+        "unchanged": int(np.count_nonzero(d.a == d.b)),
+    }

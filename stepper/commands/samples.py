@@ -1,0 +1,152 @@
+"""``stepper samples``: the loss of every data row, the worst ones first, with prediction, target and metrics."""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from stepper.commands.common import add_model_argument, load, positive_int
+from stepper.core.metrics import THRESHOLD, Metrics, metrics_document, predicted_labels, true_labels
+from stepper.core.rows import worst_rows
+from stepper.session.measures import SPLITS
+from stepper.session import RowTable, Session
+from stepper.training_report import confusion_lines, finite_or_none, metric_words, number
+
+ORDERS = ("loss", "line")
+
+
+def add_parser(subs: Any) -> None:
+    p = subs.add_parser(
+        "samples",
+        help="the loss of every data row (sample), worst first, with prediction, target and metrics",
+        description="List the rows of the data with their loss, the network's output and the target, "
+        "the worst first; then the task's metrics (accuracy and confusion matrix, precision and recall, "
+        "or R2 and mean absolute error) on the training and validation rows.",
+    )
+    add_model_argument(p)
+    p.add_argument("--resume", type=Path, default=None, metavar="CK", help="take the weights from a checkpoint")
+    p.add_argument("--worst", type=positive_int, default=10, metavar="N", help="list the N worst rows (default 10)")
+    p.add_argument("--all", action="store_true", help="list every row")
+    p.add_argument("--split", choices=SPLITS, default="both",
+                   help="training rows, validation rows or both (default both)")
+    p.add_argument("--sort", choices=ORDERS, default="loss",
+                   help="order of the listed rows: largest loss first (default) or file line")
+    p.add_argument("--threshold", type=_threshold, default=THRESHOLD, metavar="T",
+                   help=f"for yes/no outputs: an output at or above T says yes (default {THRESHOLD})")
+    p.add_argument("--json", action="store_true", help="print one JSON document instead of text")
+    p.set_defaults(handler=handle)
+
+
+def _threshold(text: str) -> float:
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a number") from None
+    if not 0.0 < value < 1.0:
+        raise argparse.ArgumentTypeError(f"{text!r} must be between 0 and 1")
+    return value
+
+
+def handle(args: argparse.Namespace) -> int:
+    session = Session(load(args))
+    if args.resume is not None:
+        session.load_checkpoint(args.resume)
+    table = session.row_table(args.split)
+    if args.all:
+        chosen = np.arange(table.n)
+        if args.sort == "loss":
+            chosen = worst_rows(table.loss, table.n)
+    else:
+        chosen = worst_rows(table.loss, args.worst)
+    if args.sort == "line":
+        chosen = chosen[np.argsort(table.line[chosen], kind="stable")]
+    found = session.metrics(args.threshold)
+    if args.json:
+        json.dump(document(session, table, chosen, found.train, found.validation), sys.stdout, indent=1)
+        sys.stdout.write("\n")
+    else:
+        sys.stdout.write(report(session, table, chosen, found.train, found.validation))
+    return 0
+
+
+def _labels(session: Session, output: np.ndarray[Any, Any], target: np.ndarray[Any, Any]) -> tuple[str, str]:
+    """The prediction and target of one row in words."""
+    names = session.setup.data.target_names
+    task = session.task
+    if task == "classes":
+        said = int(predicted_labels(task, output[None, :])[0])
+        true = int(true_labels(task, target[None, :])[0])
+        return f"{names[said]} ({output[said]:.3f})", names[true]
+    if task == "binary":
+        yes = predicted_labels(task, output[None, :])[0]
+        truth = true_labels(task, target[None, :])[0]
+        pred = " ".join(f"{v:.3f}{'+' if y else '-'}" for v, y in zip(output, yes))
+        return pred, " ".join("yes" if t else "no" for t in truth)
+    return " ".join(f"{v:.4g}" for v in output), " ".join(f"{v:.4g}" for v in target)
+
+
+def report(session: Session, table: RowTable, chosen: np.ndarray[Any, Any],
+           train: Metrics, validation: Metrics | None) -> str:
+    data = session.setup.data
+    names = data.target_names
+    n_rows = table.n
+    lines = [f"{session.setup.name}: {data.n_train} training and {data.n_val} validation samples, "
+             f"loss {session.net.loss} (per row; the mean of the training rows is the cost's data term)",
+             f"outputs: {', '.join(names)}", ""]
+    if chosen.size:
+        lines.append(f"{chosen.size} of {n_rows} rows" + (", largest loss first" if chosen.size < n_rows else ""))
+        lines.append(f"{'set':<6}{'line':>6}{'sample':>7}{'loss':>13}  {'prediction':<24}target")
+        for i in chosen:
+            pred, target = _labels(session, table.output[i], table.target[i])
+            split = "val" if table.validation[i] else "train"
+            lines.append(f"{split:<6}{int(table.line[i]):>6}{int(table.index[i]):>7}"
+                         f"{number(float(table.loss[i]), 6):>13}  {pred:<24}{target}")
+    else:
+        lines.append("no rows in this set")
+    lines += ["", f"metrics ({session.task})"]
+    for label, m in (("train", train), ("validation", validation)):
+        if m is None:
+            continue
+        lines.append(f"  {label:<11}{metric_words(m)}")
+        for row in confusion_lines(m, names):
+            lines.append("    " + row)
+    if session.task == "binary":
+        lines.append(f"  an output at or above {train.threshold:g} says yes (+), below says no (-)")
+    lines.append("")
+    return "\n".join(lines)
+
+
+def document(session: Session, table: RowTable, chosen: np.ndarray[Any, Any],
+             train: Metrics, validation: Metrics | None) -> dict[str, Any]:
+    setup = session.setup
+    rows = []
+    for i in chosen:
+        row: dict[str, Any] = {
+            "set": "validation" if table.validation[i] else "train",
+            "line": int(table.line[i]),
+            "index": int(table.index[i]),
+            "loss": finite_or_none(float(table.loss[i])),
+            "prediction": [finite_or_none(float(v)) for v in table.output[i]],
+            "target": [float(v) for v in table.target[i]],
+        }
+        if session.task == "classes":
+            row["predicted_class"] = setup.data.target_names[int(np.argmax(table.output[i]))]
+            row["true_class"] = setup.data.target_names[int(np.argmax(table.target[i]))]
+        rows.append(row)
+    return {
+        "schema_version": 1,
+        "model": {"name": setup.name, "path": str(setup.path), "sha256": setup.digest},
+        "loss": setup.network.loss,
+        "task": session.task,
+        "outputs": list(setup.data.target_names),
+        "rows_listed": len(rows),
+        "rows_total": int(table.n),
+        "samples": rows,
+        "metrics": {"train": metrics_document(train),
+                    "validation": None if validation is None else metrics_document(validation)},
+    }
