@@ -114,6 +114,7 @@ def test_diff_of_two_checkpoints(tmp_path: Path, capsys: pytest.CaptureFixture[s
     s.step(20)
     b = s.save_checkpoint(tmp_path / "b.safetensors")
     doc = main_json(capsys, "diff", str(a), str(b), "--top", "4")  # the model comes from b's metadata
+    assert main_json(capsys, "diff", str(b), "--resume", str(a), "--top", "4") == doc
     before, after = Session(load_setup(SORTER)), s
     before.load_checkpoint(a)
     assert doc["train_cost"] == {"a": before.train_cost(), "b": after.train_cost()}
@@ -139,6 +140,13 @@ def test_diff_will_not_run_code_a_checkpoint_names(tmp_path: Path, capsys: pytes
     assert "custom layers run Python code; name the model yourself with --model MODEL" in message
     doc = main_json(capsys, "diff", str(a), str(b), "--model", str(gate))
     assert doc["train_cost"]["b"] < doc["train_cost"]["a"]
+
+
+def test_diff_needs_two_points(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    a = trained(tmp_path, "a.safetensors", model=BAKERY, steps=1)
+    message = "diff compares two points: give A and B, or --resume A and B"
+    assert message in bad_input(capsys, "diff", str(a))
+    assert message in bad_input(capsys, "diff", str(a), str(a), "--resume", str(a))
 
 
 def test_diff_of_checkpoints_of_other_models_is_refused(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:

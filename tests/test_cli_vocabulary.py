@@ -98,7 +98,8 @@ def test_unknown_commands_get_the_nearest(capsys: pytest.CaptureFixture[str], wo
 def test_an_unknown_word_far_from_everything_lists_what_exists(capsys: pytest.CaptureFixture[str]) -> None:
     code, err = said(capsys, "zzz")
     assert code == 2 and err.count("\n") == 1
-    assert err.startswith("stepper: 'zzz' is neither a command (open, check, run, replay, slice, explain, export) nor a "
+    assert err.startswith("stepper: 'zzz' is neither a command (open, check, run, replay, slice, explain, export, "
+                          "samples, rates, diff) nor a "
                           "model file, a scenario folder or a bundled scenario (bakery-demand, ")
 
 

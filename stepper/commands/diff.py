@@ -29,8 +29,10 @@ def add_parser(subs: Any) -> None:
         "bundled name stands for its starting weights): the cost of each, each layer's norm of change, "
         "the weights that moved most, and the cosine between the change and the slope.",
     )
-    p.add_argument("a", help="the earlier checkpoint (or a model, for its starting weights)")
-    p.add_argument("b", help="the later checkpoint (or a model, for its starting weights)")
+    p.add_argument("points", nargs="+", metavar="A B",
+                   help="the earlier and the later checkpoint (a model stands for its starting weights); "
+                   "with --resume A, only B")
+    p.add_argument("--resume", default=None, metavar="CK", help="the earlier checkpoint A (then give only B)")
     p.add_argument("--model", default=None, metavar="MODEL",
                    help="the model both belong to (default: the one the checkpoints name)")
     p.add_argument("--top", type=positive_int, default=10, metavar="N", help="list the N weights that moved most")
@@ -71,6 +73,10 @@ def _names_code(path: Path) -> bool:
 
 
 def handle(args: argparse.Namespace) -> int:
+    points = ([args.resume] if args.resume is not None else []) + list(args.points)
+    if len(points) != 2:
+        raise UsageError("diff compares two points: give A and B, or --resume A and B")
+    args.a, args.b = points
     setup = _model_for(args)
     session = Session(setup)
     if _is_checkpoint(args.b):
