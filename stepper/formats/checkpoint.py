@@ -168,24 +168,22 @@ def load_checkpoint(path: Path, layout: ParamLayout) -> CheckpointData:
     theta = np.empty(layout.size)
     for name, block in expected.items():
         theta[block.start : block.stop] = _fit(path, name, weights[name], block.shape)
-    rule_arrays: dict[str, Array] = {}
-    for key in sorted({k.split(".")[1] for k in tensors if k.startswith("rule.")}):
-        flat = np.empty(layout.size)
-        for name, block in expected.items():
-            tensor_name = f"rule.{key}.{name}"
-            if tensor_name not in tensors:
-                raise CheckpointError(f"{path}: does not fit the model: missing {tensor_name}")
-            flat[block.start : block.stop] = _fit(path, tensor_name, tensors[tensor_name], block.shape)
-        rule_arrays[key] = flat
-    last_update: Array | None = None
-    if any(k.startswith(LAST_UPDATE) for k in tensors):
-        last_update = np.empty(layout.size)
-        for name, block in expected.items():
-            tensor_name = f"{LAST_UPDATE}{name}"
-            if tensor_name not in tensors:
-                raise CheckpointError(f"{path}: does not fit the model: missing {tensor_name}")
-            last_update[block.start : block.stop] = _fit(path, tensor_name, tensors[tensor_name], block.shape)
+    rule_arrays = {key: _flat_group(path, tensors, layout, f"rule.{key}.")
+                   for key in sorted({k.split(".")[1] for k in tensors if k.startswith("rule.")})}
+    last_update = (_flat_group(path, tensors, layout, LAST_UPDATE)
+                   if any(k.startswith(LAST_UPDATE) for k in tensors) else None)
     return CheckpointData(theta, rule_arrays, meta, hashlib.sha256(raw).hexdigest(), last_update)
+
+
+def _flat_group(path: Path, tensors: dict[str, Array], layout: ParamLayout, prefix: str) -> Array:
+    """The tensors ``<prefix><L1.W>``, one per layer array, as one flat array ``(n_params,)``."""
+    flat = np.empty(layout.size)
+    for block in layout.blocks:
+        tensor_name = f"{prefix}{block.prefix}"
+        if tensor_name not in tensors:
+            raise CheckpointError(f"{path}: does not fit the model: missing {tensor_name}")
+        flat[block.start : block.stop] = _fit(path, tensor_name, tensors[tensor_name], block.shape)
+    return flat
 
 
 def _fit(path: Path, name: str, array: Array, shape: tuple[int, ...]) -> Array:

@@ -12,19 +12,16 @@ from __future__ import annotations
 
 from typing import Any, ClassVar
 
-import plotext  # type: ignore[import-untyped]
 from rich.style import Style
 from textual.strip import Strip
 from textual.widget import Widget
 
+from stepper.charts import figure
+
 
 def plotext_figure(width: int, height: int) -> Any:
     """plotext's figure, cleared, colourless, without legend and ``width`` x ``height`` cells."""
-    fig: Any = plotext.figure
-    plotext.terminal.limit(False, False)
-    fig.clear()
-    fig.theme("colorless")
-    fig.plot_size(width, height)
+    fig: Any = figure(width, height)
     fig.legend(False)
     return fig
 
