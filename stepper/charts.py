@@ -94,7 +94,8 @@ def spreads_text(spreads: Sequence[LayerSpread], width: int = 76, height: int = 
             hist = spread.hists[quantity]
             draw_histogram(fig, hist, f"L{spread.index + 1} {quantity} ({spread.label})")
             summary = (f"  mean {hist.mean:.4g}, spread (std) {hist.std:.4g}, exactly 0: {hist.zeros}"
-                       if hist.n else "  (nothing to count)")
+                       if hist.n else "  (nothing to count: no step since the start, a load or an undo)"
+                       if quantity == "updates" else "  (nothing to count)")
             parts.append(text_of(fig) + "\n" + summary)
     return "\n\n".join(parts)
 

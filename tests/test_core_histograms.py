@@ -76,3 +76,10 @@ def test_layer_spreads_count_each_layers_own_numbers(dense_net: Callable[..., An
             got = spread.hists[quantity]
             np.testing.assert_array_equal(got.counts, counts, err_msg=f"L{i + 1} {quantity}")
             np.testing.assert_allclose(got.edges, edges, rtol=1e-12, err_msg=f"L{i + 1} {quantity}")
+
+
+def test_without_a_last_step_no_update_is_counted(dense_net: Callable[..., Any]) -> None:
+    net, theta = dense_net(2, [(3, "tanh"), (1, "identity")], "mean_squared_error", seed=1)
+    spreads = layer_spreads(net, theta, np.ones(theta.size), None, np.ones((4, 2)), bins=5)
+    assert all(s.hists["updates"].n == 0 for s in spreads)
+    assert spreads[0].hists["weights"].n == 6  # 2 x 3 weights, the 3 biases left out

@@ -48,7 +48,7 @@ def fingerprint(s: Session) -> tuple[Any, ...]:
         s.weight_decay,
         s.clip_norm,
         s.schedule,
-        s.last_update.tobytes(),
+        None if s.last_update is None else s.last_update.tobytes(),
     )
 
 

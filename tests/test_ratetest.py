@@ -28,7 +28,7 @@ def fingerprint(s: Session) -> tuple[Any, ...]:
     return (s.theta.tobytes(), s.frozen.tobytes(), s.rule, s.rule_state.t,
             tuple((k, v.tobytes()) for k, v in sorted(s.rule_state.arrays.items())), s.step_count, s.rate,
             s.batch_size, tuple(s.history), json.dumps(s.batch_rng.bit_generator.state, sort_keys=True),
-            s.last_update.tobytes(), s.can_undo, s.can_redo, s.l2, s.weight_decay, s.clip_norm, s.schedule)
+            None if s.last_update is None else s.last_update.tobytes(), s.can_undo, s.can_redo, s.l2, s.weight_decay, s.clip_norm, s.schedule)
 
 
 def busy(name: str, journal: Path | None = None) -> Session:

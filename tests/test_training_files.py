@@ -78,13 +78,14 @@ def test_checkpoint_keeps_every_setting_and_the_last_update(write_model: WriteMo
     other = Session(setup)
     other.load_checkpoint(path)
     assert (other.l2, other.weight_decay, other.clip_norm, other.schedule) == (0.003, 0.01, 0.7, s.schedule)
+    assert other.last_update is not None and s.last_update is not None
     assert other.last_update.tobytes() == s.last_update.tobytes()
     assert other.train_cost() == s.train_cost()  # the L2 term came back with the weights
     np.testing.assert_array_equal(load_checkpoint(path, setup.network.layout).last_update, s.last_update)
-    # Undoing the load takes the settings back too.
+    # Undoing the load takes the settings back too; the fresh session had made no step.
     other.undo()
     assert (other.l2, other.weight_decay, other.clip_norm, other.schedule) == (0.0, 0.0, None, Schedule())
-    assert not other.last_update.any()
+    assert other.last_update is None
 
 
 def test_an_older_checkpoint_keeps_the_model_files_settings(write_model: WriteModel, tmp_path: Path) -> None:
@@ -103,5 +104,5 @@ def test_an_older_checkpoint_keeps_the_model_files_settings(write_model: WriteMo
     with_training.load_checkpoint(older)
     assert (with_training.l2, with_training.weight_decay, with_training.clip_norm) == (0.001, 0.02, 1.5)
     assert with_training.schedule == Schedule("cosine", steps=200, warmup=10)
-    assert not with_training.last_update.any()
+    assert with_training.last_update is None
     np.testing.assert_array_equal(with_training.theta, s.theta)

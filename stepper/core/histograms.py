@@ -6,7 +6,8 @@ Per layer, four sets of numbers:
   out, as in the layer health figures: they start at zero and say little about
   the spread);
 - ``slopes``: the slopes of those weights;
-- ``updates``: the change the last step made to them;
+- ``updates``: the change the last step made to them (none counted when there
+  is no last step to speak of);
 - ``activations``: the layer's outputs over the rows given, ``n_samples x n_out``
   numbers.
 
@@ -91,14 +92,14 @@ def weight_entries(net: Network, layer: int) -> NDArray[np.int64]:
 
 
 def layer_spreads(
-    net: Network, theta: Array, slopes: Array, update: Array, X: Array, bins: int = DEFAULT_BINS
+    net: Network, theta: Array, slopes: Array, update: Array | None, X: Array, bins: int = DEFAULT_BINS
 ) -> list[LayerSpread]:
     """Histograms of every layer.
 
     Args:
         net: the network; theta: parameters ``(n_params,)``.
         slopes: slopes of the cost ``(n_params,)``.
-        update: the last step's change ``(n_params,)`` (zeros before any step).
+        update: the last step's change ``(n_params,)``, or None when there is none.
         X: rows whose activations to count, ``(n_samples, n_inputs)``.
         bins: bins per histogram.
     """
@@ -109,7 +110,7 @@ def layer_spreads(
         hists = {
             "weights": histogram(theta[idx], bins),
             "slopes": histogram(slopes[idx], bins),
-            "updates": histogram(update[idx], bins),
+            "updates": histogram(np.empty(0) if update is None else update[idx], bins),
             "activations": histogram(outputs[i], bins),
         }
         spreads.append(LayerSpread(i, layer.label, hists))

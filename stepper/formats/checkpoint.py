@@ -51,7 +51,7 @@ class CheckpointData:
         rule_arrays: the rule's memory, each ``(n_params,)``.
         meta: the JSON metadata (see module docstring).
         sha256: SHA-256 of the file's bytes, when read from a file (journals record it).
-        last_update: the last step's change ``(n_params,)``, or None when not saved.
+        last_update: the last step's change ``(n_params,)``, or None when there is none.
     """
 
     theta: Array

@@ -74,7 +74,8 @@ class Session(Stepping, Edits, Files, Training, Rates, Measures):
         weight_decay: decoupled weight decay per step (AdamW with the adam rule).
         clip_norm: the global slope norm steps clip to, or None.
         schedule: the rate schedule (:mod:`stepper.core.schedules`).
-        last_update: the change the last step made, ``(n_params,)``.
+        last_update: the change the last step made, ``(n_params,)``, or None (no step since
+            the start, a load or an undo or redo of weights; a figure to show, not undo state).
         history: cost after every step, entry 0 at the start.
         check: the last numeric comparison, or None.
         runaway: the rule that stops a job of steps whose cost runs away (see :mod:`.runaway`).

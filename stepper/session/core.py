@@ -100,7 +100,9 @@ class SessionCore:
         self.weight_decay = setup.descent.weight_decay
         self.clip_norm = setup.descent.clip_norm
         self.schedule = setup.descent.schedule
-        self.last_update: Array = np.zeros(n)
+        #: The change the last step made, ``(n_params,)``; None before any step and after an undo or
+        #: redo that moved the weights (a figure to show, like ``check``: not part of the undo state).
+        self.last_update: Array | None = None
         self.seed = seed
         self.batch_rng = np.random.default_rng(seed)
         self.noise_rng = np.random.default_rng(seed + 1)
@@ -253,8 +255,6 @@ class SessionCore:
                 out[name] = self.batch_rng.bit_generator.state
             elif name == "noise_rng":
                 out[name] = self.noise_rng.bit_generator.state
-            elif name == "last_update":
-                out[name] = self.last_update.copy()
             else:
                 out[name] = getattr(self, name)
         return out
@@ -289,15 +289,18 @@ class SessionCore:
                 self.net.l2 = float(value)
                 self._version += 1  # the cost changes with it
             elif name == "last_update":
-                self.last_update = value.copy()
-            elif name == "last_update_bits":
-                flip(self.last_update, value)
+                self.last_update = None if value is None else value.copy()
             elif name == "history":
                 start, entries = value
                 del self.history[start:]
                 self.history.extend(entries)
             else:
                 setattr(self, name, value)
+
+    def _forget_update(self, side: dict[str, Any]) -> None:
+        """After an undo or redo that moved the weights, no step made them: there is no last update."""
+        if "last_update" not in side and any(k.startswith("theta") for k in side):
+            self.last_update = None
 
     def _rule_flipped(self, side: RuleBits) -> RuleState:
         """The update rule's memory on the other side of a difference (new arrays)."""
@@ -336,6 +339,7 @@ class SessionCore:
         cost = self.history[-1].train_cost
         self._changes += 1
         self._restore(change.before)
+        self._forget_update(change.before)
         self._redo.append(change)
         self.dirty = True
         self.last_action = f"undid {change.name}{self._cost_change(change, cost)}"
@@ -351,6 +355,7 @@ class SessionCore:
         cost = self.history[-1].train_cost
         self._changes += 1
         self._restore(change.after)
+        self._forget_update(change.after)
         self._undo.append(change)
         self._undo_bytes += change.nbytes()
         self.dirty = True

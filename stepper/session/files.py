@@ -94,7 +94,7 @@ class Files(SessionCore):
             }
             rng_states = {name: meta[name] for name in ("batch_rng", "noise_rng") if meta.get(name) is not None}
             values.update(self._saved_training(meta))
-            values["last_update"] = data.last_update if data.last_update is not None else np.zeros(self.net.n_params)
+            values["last_update"] = data.last_update
         except (KeyError, TypeError, ValueError, UsageError, ScheduleError) as exc:
             raise CheckpointError(f"{path}: the checkpoint's metadata is incomplete or wrong ({exc})") from None
         if values["slope_source"] not in SLOPE_SOURCES:

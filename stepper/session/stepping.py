@@ -64,7 +64,7 @@ class Stepping(SessionCore):
         except BaseException:
             self.batch_rng.bit_generator.state = rng_state
             raise
-        np.subtract(theta, self.theta, out=self.last_update)
+        self.last_update = theta - self.theta
         self.theta[...] = theta
         self.rule_state = state
         self.step_count += 1
@@ -141,7 +141,7 @@ class Stepping(SessionCore):
         """
         if n < 1:
             raise UsageError(f"number of steps {n} must be at least 1")
-        fields = ["theta", "rule_state", "step_count", "batch_rng", "last_update"]
+        fields = ["theta", "rule_state", "step_count", "batch_rng"]
         before = self._snapshot(fields)
         start = len(self.history)
         cost_before = self.train_cost()

@@ -69,17 +69,15 @@ def flipped(values: Array, bits: Bits) -> Array:
 def compact(before: dict[str, Any], after: dict[str, Any]) -> tuple[dict[str, Any], dict[str, Any]]:
     """The two sides of a change with each pair of large arrays replaced by their shared XOR.
 
-    ``theta`` becomes ``theta_bits`` (and the last step's change ``last_update``,
-    ``last_update_bits``); ``theta_at`` (the same indices on both
+    ``theta`` becomes ``theta_bits``; ``theta_at`` (the same indices on both
     sides) becomes ``theta_at_bits``; a ``rule_state`` of the same rule and
     arrays on both sides becomes ``rule_bits``. Anything else is kept as it is.
     """
     before, after = dict(before), dict(after)
-    for name in ("theta", "last_update"):
-        side_b, side_a = before.get(name), after.get(name)
-        if isinstance(side_b, np.ndarray) and isinstance(side_a, np.ndarray) and side_b.shape == side_a.shape:
-            bits = _xor(side_b, side_a)
-            _swap(before, after, name, f"{name}_bits", bits, bits)
+    theta_b, theta_a = before.get("theta"), after.get("theta")
+    if isinstance(theta_b, np.ndarray) and isinstance(theta_a, np.ndarray) and theta_b.shape == theta_a.shape:
+        bits = _xor(theta_b, theta_a)
+        _swap(before, after, "theta", "theta_bits", bits, bits)
     at_b, at_a = before.get("theta_at"), after.get("theta_at")
     if (isinstance(at_b, tuple) and isinstance(at_a, tuple) and at_b[0] is at_a[0]
             and at_b[1].shape == at_a[1].shape):
