@@ -94,6 +94,12 @@ def test_rate_times_curvature_predicts_short_overshooting_and_diverging_steps() 
         assert crossed == (factor > 1.0)
         assert (s.landing_cost > s.cost) == (factor > 2.0)
     assert probe.best_rate == pytest.approx(1.0 / c)
+    # At r c = 1 the step lands on the minimum; within 1e-6 (the numeric curvature's
+    # accuracy, stepper.core.slice.LANDS_WITHIN) it is called so, beyond that it is not.
+    for factor, regime in [(1.0, "at the minimum"), (1.0 - 0.9e-6, "at the minimum"),
+                           (1.0 + 0.9e-6, "at the minimum"), (1.0 - 1.1e-6, "short"),
+                           (1.0 + 1.1e-6, "overshoots")]:
+        assert cost_slice(net, theta, X, Y, index, rate=factor / c).regime == regime, factor
 
 
 def test_negative_curvature_sets_no_limit() -> None:
@@ -167,6 +173,16 @@ def test_default_span_shows_the_landing_point() -> None:
     s = cost_slice(net, theta, X, Y, 0, rate=40.0)
     assert s.points[0] <= s.landing <= s.points[-1]
     assert s.points.size == 41 and s.points[20] == pytest.approx(s.value)
+    # README: the default span is max(1, |value|, 1.5 |rate x slope|); each term in turn wins.
+    for rate, value in [(40.0, None), (1e-6, None), (1e-6, 7.0)]:
+        moved = theta.copy()
+        if value is not None:
+            moved[0] = value
+        t = cost_slice(net, moved, X, Y, 0, rate=rate)
+        half = max(1.0, abs(t.value), 1.5 * abs(rate * t.slope))
+        assert t.points[-1] - t.value == pytest.approx(half, rel=1e-12)
+        assert t.value - t.points[0] == pytest.approx(half, rel=1e-12)
+    assert 1.5 * abs(40.0 * s.slope) > max(1.0, abs(s.value))   # the first case is the slope's
 
 
 # -- the command ---------------------------------------------------------------------------------
@@ -193,14 +209,44 @@ def test_slice_command_prints_the_figures_and_writes_the_plot(tmp_path: Path, ca
 
 
 def test_slice_command_json_agrees_with_the_core(capsys) -> None:
+    # The document must carry the core's own figures for the same weight, rate, span and
+    # points (the core is checked against autograd and worked cases above).
+    from stepper.formats.model_file import load_setup
+
     code = cli.main(["slice", str(SCENARIOS / "bakery-demand"), "L1.W[0,1]", "--json", "--points", "7",
                      "--span", "0.5"])
     doc = json.loads(capsys.readouterr().out)
     assert code == 0
-    assert len(doc["sweep"]["values"]) == 7
-    assert doc["sweep"]["values"][0] == pytest.approx(doc["value"] - 0.5)
-    assert doc["rate"] == 0.1
-    assert doc["rate_x_curvature"] == pytest.approx(0.1 * doc["curvature"])
+    setup = load_setup(SCENARIOS / "bakery-demand" / "model.toml")
+    index = setup.network.layout.lookup("L1.W[0,1]")
+    core = cost_slice(setup.network, setup.theta0, setup.data.X, setup.data.Y, index, rate=0.1, span=0.5,
+                      n_points=7)
+    assert doc["rate"] == 0.1   # the documented default rate
+    assert doc["weight"] == "L1.W[0,1]" and doc["samples"] == setup.data.n_train
+    for key, expected in [("value", core.value), ("cost", core.cost), ("slope", core.slope),
+                          ("curvature", core.curvature), ("curvature_step", core.curvature_step),
+                          ("rate_x_curvature", core.rate_curvature), ("regime", core.regime),
+                          ("best_rate", core.best_rate if np.isfinite(core.best_rate) else None)]:
+        assert doc[key] == expected, key
+    assert doc["step"] == {"to": core.landing, "cost": core.landing_cost, "model_cost": core.model_cost}
+    assert doc["lowest"] == {"value": core.lowest[0], "cost": core.lowest[1]}
+    assert doc["sweep"] == {"values": core.points.tolist(), "costs": core.costs.tolist()}
+
+
+def test_the_readme_example_lands_at_the_minimum(capsys) -> None:
+    # README, "Seeing why a slope is what it is": along the output bias of a mean squared
+    # error over one output the curvature is exactly 2 (d2/db2 of mean (b + r_s)^2), so at
+    # rate 0.5 one step lands at the minimum; the numeric curvature is off by rounding
+    # only, and the wording must say "lands at", not "overshoots".
+    code = cli.main(["slice", str(SCENARIOS / "bakery-demand"), "L2.b[0]", "--rate", "0.5", "--json"])
+    doc = json.loads(capsys.readouterr().out)
+    assert code == 0
+    assert doc["curvature"] == pytest.approx(2.0, rel=1e-7)
+    assert doc["rate_x_curvature"] == pytest.approx(1.0, abs=1e-6)
+    assert doc["regime"] == "at the minimum"
+    code = cli.main(["slice", str(SCENARIOS / "bakery-demand"), "L2.b[0]", "--rate", "0.5"])
+    out = capsys.readouterr().out
+    assert "one step lands at this weight's minimum" in out and "overshoot" not in out
 
 
 def test_slice_command_names_the_nearest_weights_when_the_weight_is_unknown(capsys) -> None:

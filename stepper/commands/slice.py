@@ -36,6 +36,8 @@ SOURCE = ('LeCun, Bottou, Orr & Mueller, "Efficient BackProp" (1998), section 5.
 
 _MEANING = {
     "short": "below 1: one step lands short of this weight's minimum (quadratic model)",
+    "at the minimum": "1 within the curvature's accuracy: one step lands at this weight's minimum "
+                      "(quadratic model); the rate is 1 / curvature, the best along this weight",
     "overshoots": "between 1 and 2: one step lands past this weight's minimum; repeated steps "
                   "oscillate around it, closing in only while rate x curvature stays below 2",
     "diverges": "above 2: one step lands farther from this weight's minimum than it started; "

@@ -14,7 +14,8 @@ of that one, ``C(w)``, around its current value ``w0``:
   One plain descent step ``w1 = w0 - r g`` at rate ``r`` multiplies the distance
   to the model's minimum by ``1 - r c``. With ``c > 0`` the step lands short of
   the minimum when ``r c < 1``, on it when ``r c = 1`` (the best rate along this
-  weight is ``1 / c``), beyond it (overshoots, oscillating steps) when
+  weight is ``1 / c``; "at the minimum" within :data:`LANDS_WITHIN`, the
+  curvature's own accuracy), beyond it (overshoots, oscillating steps) when
   ``1 < r c < 2``, and farther from it than it started (repeated steps diverge)
   when ``r c > 2``. (LeCun, Bottou, Orr & Mueller, "Efficient BackProp", 1998,
   section 5.1 on the optimal learning rate; recalled from memory.) With
@@ -46,7 +47,14 @@ CURVATURE_STEP = float(np.finfo(np.float64).eps) ** 0.25
 #: Bytes the stacked sweep copies may take at once.
 CHUNK_BYTES = 16 * 1024 * 1024
 
-REGIMES = ("short", "overshoots", "diverges", "no minimum")
+REGIMES = ("short", "at the minimum", "overshoots", "diverges", "no minimum")
+
+#: ``rate x curvature`` this close to 1 counts as landing at the minimum. The second
+#: difference's rounding error is about ``u |C| / h^2 = u^(1/2) |C|`` (about 1.5e-8 for a
+#: cost of order one, with ``h = u^(1/4)``), so a step at exactly ``1 / curvature`` shows
+#: as 1 plus a few 1e-9 (the README's own example gives 1.0000000075); 1e-6 leaves room
+#: for that (our choice, no published source).
+LANDS_WITHIN = 1e-6
 
 
 @dataclass(frozen=True)
@@ -95,11 +103,16 @@ class CostSlice:
 
     @property
     def regime(self) -> str:
-        """``short``, ``overshoots``, ``diverges`` or ``no minimum`` (see the module docstring)."""
+        """``short``, ``at the minimum``, ``overshoots``, ``diverges`` or ``no minimum``.
+
+        See the module docstring; ``at the minimum`` means within :data:`LANDS_WITHIN` of 1.
+        """
         if not self.curvature > 0:
             return "no minimum"
         rc = self.rate_curvature
-        if rc <= 1.0:
+        if abs(rc - 1.0) <= LANDS_WITHIN:
+            return "at the minimum"
+        if rc < 1.0:
             return "short"
         if rc <= 2.0:
             return "overshoots"

@@ -43,6 +43,7 @@ SHORT_SOURCE = "LeCun et al. 1998"
 #: One line per regime of :attr:`CostSlice.regime`: what ``rate x curvature`` says about one step.
 MEANING = {
     "short": "below 1: one step stops short of the minimum",
+    "at the minimum": "about 1: one step lands at the minimum",
     "overshoots": "over 1: one step overshoots; steps oscillate",
     "diverges": "over 2: steps along this weight diverge",
     "no minimum": "curvature <= 0: no minimum, no limit on the rate",
