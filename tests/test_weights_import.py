@@ -1,6 +1,8 @@
-"""Starting weights from a safetensors file written by a framework (PyTorch Linear layout).
+"""Starting weights from a safetensors file in a framework's layout (PyTorch Linear layout).
 
-Outside reference: PyTorch's documentation of ``torch.nn.Linear`` gives
+No PyTorch code runs here: the files are written from numpy, in the layout that
+PyTorch's documentation of ``torch.nn.Linear`` describes, and the outside reference
+is that documented layout and formula (recalled from memory). The documentation gives
 ``y = x A^T + b`` with ``weight`` A of shape ``(out_features, in_features)``
 and ``bias`` of shape ``(out_features,)``; an ``nn.Sequential`` names its
 parameters ``<index>.weight`` / ``<index>.bias``. Stepper's W is ``(n_in, n_out)``,
