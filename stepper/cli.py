@@ -176,9 +176,11 @@ def route(parser: argparse.ArgumentParser, argv: list[str]) -> list[str]:
     if not argv:
         return [DEFAULT_COMMAND]
     first = argv[0]
-    if first in COMMANDS or first in _TOP_OPTIONS or first == "--":
+    if first in COMMANDS or first in _TOP_OPTIONS:
         return argv
-    if first.startswith("-"):
+    if first == "--":  # the end of options: what follows is open's model
+        return [DEFAULT_COMMAND, *argv]
+    if first.startswith("-") and first != "-":
         word = first.split("=", 1)[0]
         opened = parser.subparsers[DEFAULT_COMMAND] if isinstance(parser, _TopParser) else None
         if opened is not None and word not in opened.option_names():

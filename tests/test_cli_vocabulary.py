@@ -104,7 +104,7 @@ def test_an_unknown_word_far_from_everything_lists_what_exists(capsys: pytest.Ca
 
 
 @pytest.mark.parametrize("argv", [[], ["kiln-tiny"], [str(KILN)], [str(KILN.parent)], ["missing/model.toml"],
-                                  ["--rate", "2"], ["--resume=k.safetensors"]])
+                                  ["--rate", "2"], ["--resume=k.safetensors"], ["--", "kiln-tiny"]])
 def test_a_model_or_an_option_alone_opens_the_app(capsys: pytest.CaptureFixture[str], argv: list[str]) -> None:
     # Under pytest stdin is not a terminal, so "open" answers that it needs one: that
     # line shows the words went to "open" and not to another command.

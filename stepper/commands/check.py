@@ -255,7 +255,7 @@ def print_report(setup: Setup, result: CheckResult | None, n_samples: int,
     if result is not None and choice is not None:
         width = max(12, name_width(layout, rows))
         header = (f"{'weight'.ljust(width)}  {'value':>12}  {'analytic':>12}  {'numeric':>12}  "
-                  f"{'rel. error':>10}  verdict")
+                  f"{'rel.err':>10}  verdict")
         if setup.origin is not None:
             header += f"        in {setup.origin.file.name}"
         out.write("\n" + header + "\n")
@@ -335,7 +335,7 @@ def print_directions(check: DirectionalCheck) -> None:
     out.write(f"\ndirectional check: each array along {check.k} random unit directions (seed {check.seed}), "
               f"{check.method} differences, h = {check.h:.3g}\n")
     width = max(8, max(len(a.block.prefix) for a in check.arrays))
-    header = (f"{'array'.ljust(width)}  {'entries':>9}  {'|analytic| max':>14}  {'worst rel. error':>16}  "
+    header = (f"{'array'.ljust(width)}  {'entries':>9}  {'|analytic| max':>14}  {'worst rel.err':>16}  "
               f"verdict")
     out.write(header + "\n" + "-" * len(header) + "\n")
     for a in check.arrays:
