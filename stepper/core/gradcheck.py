@@ -75,3 +75,24 @@ def iter_check(
     cost, analytic = net.cost_and_slopes(theta, X, Y)
     numeric = yield from iter_numeric_slopes(net, theta, X, Y, method, h, which)
     return compare(cost, analytic, numeric, limits)
+
+
+def merged(earlier: CheckResult, later: CheckResult) -> CheckResult:
+    """``later``, with ``earlier``'s numbers where ``later`` computed no numeric slope.
+
+    Both must be checks of the same weights (same analytic slopes) with the
+    same finite-difference settings; a parameter counts as computed where it
+    has a verdict.
+    """
+    if earlier.method != later.method or earlier.h != later.h or earlier.analytic.shape != later.analytic.shape:
+        raise ValueError("checks with different settings cannot be merged")
+    fill = (later.verdict == "") & (earlier.verdict != "")
+    return CheckResult(
+        later.cost,
+        later.analytic,
+        np.where(fill, earlier.numeric, later.numeric),
+        np.where(fill, earlier.rel_error, later.rel_error),
+        np.where(fill, earlier.verdict, later.verdict),
+        later.method,
+        later.h,
+    )

@@ -18,9 +18,10 @@ import numpy as np
 from numpy.typing import NDArray
 
 from stepper.core.descent import Descent
-from stepper.core.gradcheck import CheckResult, iter_check
+from stepper.core.gradcheck import CheckResult, iter_check, merged
 from stepper.core.numeric import Progress, run_to_end
 from stepper.core.optimizers import RULES, RuleState, fresh_state
+from stepper.core.selection import stratified
 from stepper.errors import UsageError
 from stepper.formats.journal import JournalWriter
 from stepper.formats.model_file import Setup
@@ -32,6 +33,11 @@ from stepper.session.undo import RuleBits, compact, flip, flipped, saved_bytes, 
 Array = NDArray[np.float64]
 
 SLOPE_SOURCES = ("analytic", "numeric")
+
+#: The app computes every numeric slope of a model up to this size at once; a larger
+#: one starts with a sample of CHECK_SAMPLE weights (about a second at a million).
+FULL_CHECK_UP_TO = 20_000
+CHECK_SAMPLE = 5_000
 
 
 
@@ -214,16 +220,40 @@ class SessionCore:
         result: Array = self._cached("slopes", compute)
         return result
 
-    def iter_refresh_check(self) -> Progress[CheckResult]:
-        """Numeric slopes of every parameter and their comparison; stored in :attr:`check`."""
+    def iter_refresh_check(self, which: NDArray[np.int64] | None = None) -> Progress[CheckResult]:
+        """Numeric slopes and their comparison, stored in :attr:`check`; of every parameter, or of ``which``.
+
+        When the last check is of the same weights, what it computed outside
+        ``which`` is kept, so a sample and then :meth:`unchecked` add up to all.
+        """
         data = self.setup.data
         version = self._version
         theta = self.theta.copy()
-        result = yield from iter_check(self.net, theta, data.X, data.Y)
+        earlier = self.check if not self.check_is_stale else None
+        result = yield from iter_check(self.net, theta, data.X, data.Y, which=which)
+        if which is not None and earlier is not None:
+            result = merged(earlier, result)
         if version == self._version:
             self.check = result
             self._check_version = version
         return result
+
+    def default_check(self) -> NDArray[np.int64] | None:
+        """What the app's numeric slopes cover at first: all (None) up to FULL_CHECK_UP_TO weights.
+
+        A larger model gets a seeded sample of CHECK_SAMPLE weights, drawn from
+        every array in proportion to its size (stepper.core.selection); a
+        second pass (:meth:`unchecked`) computes the rest.
+        """
+        if self.net.n_params <= FULL_CHECK_UP_TO:
+            return None
+        return stratified(self.net.layout, CHECK_SAMPLE, self.seed)
+
+    def unchecked(self) -> NDArray[np.int64] | None:
+        """The parameters the last check left out (None: all, when there is none or it is stale)."""
+        if self.check is None or self.check_is_stale:
+            return None
+        return np.flatnonzero(self.check.verdict == "").astype(np.int64)
 
     def refresh_check(self) -> CheckResult:
         result = run_to_end(self.iter_refresh_check())

@@ -167,8 +167,8 @@ class AppBase(App[None]):
         """Run ``n`` steps in a worker."""
         raise NotImplementedError
 
-    def start_check(self) -> None:
-        """Recompute the numeric slopes in a worker."""
+    def start_check(self, rest: bool = False) -> None:
+        """Recompute the numeric slopes in a worker (``rest``: those the last check left out)."""
         raise NotImplementedError
 
     def after_steps(self) -> None:

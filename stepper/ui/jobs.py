@@ -32,9 +32,11 @@ class Jobs(AppBase):
         self._begin("steps", n)
         self._worker = self._steps_worker(n)
 
-    def start_check(self) -> None:
-        self._begin("numeric slopes", self.session.net.n_params)
-        self._worker = self._check_worker()
+    def start_check(self, rest: bool = False) -> None:
+        """Numeric slopes in a worker: the session's default cover, or with ``rest`` what the last check left out."""
+        which = self.session.unchecked() if rest else self.session.default_check()
+        self._begin("numeric slopes", self.session.net.n_params if which is None else int(which.size))
+        self._worker = self._check_worker(which)
 
     def _begin(self, job: str, total: int) -> None:
         self.job = job
@@ -46,8 +48,8 @@ class Jobs(AppBase):
         self._run_job("steps", self.session.iter_steps(n), redraw=True)
 
     @work(thread=True, exclusive=True, group="session", exit_on_error=False)
-    def _check_worker(self) -> None:
-        self._run_job("numeric slopes", self.session.iter_refresh_check(), redraw=False,
+    def _check_worker(self, which: Any) -> None:
+        self._run_job("numeric slopes", self.session.iter_refresh_check(which), redraw=False,
                       then=self._check_input_slopes)
 
     def _run_job(self, name: str, job: Generator[tuple[int, int], None, object], redraw: bool,

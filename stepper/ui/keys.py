@@ -74,6 +74,8 @@ KEYS: tuple[Key, ...] = (
     # -- slopes ----------------------------------------------------------------------------
     Key("c", "compute_check", "check", "recompute the numeric slopes now (a job; x cancels)", "slopes",
         footer=True),
+    Key("C", "compute_rest", "check all", "compute the numeric slopes a check left out (a model over "
+        "20,000 weights is checked on a sample of 5,000 first), or all when the weights changed", "slopes"),
     Key("a", "toggle_auto_check", "auto check", "recompute the numeric slopes after every step: on/off",
         "slopes"),
     # -- weights ---------------------------------------------------------------------------

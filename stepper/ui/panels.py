@@ -33,6 +33,8 @@ def status_lines(snap: Snapshot, auto_check: bool, job: str | None = None) -> li
     if snap.has_check:
         c = snap.counts
         check = f"{c['agree']} agree {c['doubtful']} doubtful {c['disagree']} DISAGREE {c['kink']} kink"
+        if snap.n_checked < snap.n_params:
+            check += f" of {snap.n_checked:,} checked (C: all {snap.n_params:,})"
         if snap.stale:
             check += " (stale)"
     else:
@@ -40,6 +42,8 @@ def status_lines(snap: Snapshot, auto_check: bool, job: str | None = None) -> li
     flags = [check]
     if snap.dirty:
         flags.append("unsaved")
+    if snap.undo_levels:
+        flags.append(f"undo {snap.undo_levels}")
     if snap.batch_size is not None:
         flags.append(f"batch {snap.batch_size}")
     if auto_check:

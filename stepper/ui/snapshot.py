@@ -50,6 +50,7 @@ class Snapshot:
         verdict: verdict codes (:data:`VERDICT_CODE`, 0 when none), int8.
         frozen: True where the parameter is frozen.
         has_check: a numeric check has been run.
+        n_checked: how many parameters the last check computed (a large model's starts with a sample).
         stale: the weights changed since the last check.
         steps, train, val: the cost history; ``val`` is NaN where there is none.
         step_count, rate, rule, slope_source, batch_size: the descent settings.
@@ -57,6 +58,8 @@ class Snapshot:
         counts: number of parameters per verdict of the last check.
         last_action: the session's description of its last operation.
         dirty: changes since the last save or load.
+        can_undo, can_redo: whether undo and redo have a level to apply.
+        undo_levels: how many levels undo has (the oldest are dropped past the session's memory budget).
         version: the session's parameter version (changes whenever a weight does).
         problem: why the slopes or costs could not be computed (a custom layer raised, say);
             the missing numbers are NaN. None when all is well.
@@ -73,6 +76,7 @@ class Snapshot:
     verdict: NDArray[np.int8]
     frozen: NDArray[np.bool_]
     has_check: bool
+    n_checked: int
     stale: bool
     steps: NDArray[np.int64]
     train: Array
@@ -89,6 +93,7 @@ class Snapshot:
     dirty: bool
     can_undo: bool
     can_redo: bool
+    undo_levels: int
     version: int
     problem: str | None
 
@@ -154,7 +159,9 @@ def take(session: Session, history: HistoryArrays | None = None) -> Snapshot:
         rel = np.array(check.rel_error, dtype=np.float64)
         codes = verdict_codes(np.asarray(check.verdict))
         counts = {name: int(np.count_nonzero(codes == VERDICT_CODE[name])) for name in VERDICTS}
+        n_checked = int(np.count_nonzero(codes))
     else:
+        n_checked = 0
         numeric = np.full(n, np.nan)
         rel = np.full(n, np.nan)
         codes = np.zeros(n, dtype=np.int8)
@@ -178,6 +185,7 @@ def take(session: Session, history: HistoryArrays | None = None) -> Snapshot:
         verdict=codes,
         frozen=np.array(session.frozen, dtype=bool),
         has_check=check is not None,
+        n_checked=n_checked,
         stale=bool(check is not None and session.check_is_stale),
         steps=steps,
         train=train,
@@ -194,6 +202,7 @@ def take(session: Session, history: HistoryArrays | None = None) -> Snapshot:
         dirty=bool(session.dirty),
         can_undo=bool(session.can_undo),
         can_redo=bool(session.can_redo),
+        undo_levels=int(session.undo_levels),
         version=int(session.version),
         problem=problems[0] if problems else None,
     )

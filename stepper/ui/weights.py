@@ -382,7 +382,7 @@ class WeightTable(ScrollView, can_focus=True):
             _number(snap.analytic[index], widths[2]),
             _number(snap.numeric[index], widths[3]),
             ("-" if rel != rel else f"{rel:.1e}").rjust(widths[4]),
-            VERDICT_TEXT[int(snap.verdict[index])].ljust(widths[5]),
+            _verdict_text(snap, index).ljust(widths[5]),
             ("yes" if snap.frozen[index] else "").ljust(widths[6]),
         ]
 
@@ -457,6 +457,14 @@ class WeightTable(ScrollView, can_focus=True):
             else:
                 segments.append(Segment(text, style))
         return Strip(segments, self.line_width())
+
+
+def _verdict_text(snap: Snapshot, index: int) -> str:
+    """The verdict cell; ``skipped`` for a weight the last check left out (C computes it)."""
+    code = int(snap.verdict[index])
+    if code == 0 and snap.has_check and snap.n_checked < snap.n_params:
+        return "skipped"
+    return VERDICT_TEXT[code]
 
 
 def _number(value: float, width: int) -> str:
