@@ -636,13 +636,35 @@ def test_layout_stacks_on_narrow_terminals_and_sits_side_by_side_on_wide_ones(se
 
 
 def test_no_color_keeps_verdicts_readable(session: Session, monkeypatch: pytest.MonkeyPatch, drive) -> None:
+    # README: "Verdicts are words, so they read without colour (NO_COLOR is respected)".
+    # The first four weights are given one verdict each; with NO_COLOR set, each row must
+    # name its own verdict in a word of its own, and carry no colour.
+    import dataclasses
+
     monkeypatch.setenv("NO_COLOR", "1")
+    result = session.refresh_check()
+    verdict = result.verdict.copy()
+    verdict[:4] = ["agree", "doubtful", "disagree", "kink"]
+    session.check = dataclasses.replace(result, verdict=verdict)
+    words = ["agree", "doubtful", "DISAGREE", "kink~"]
 
     async def check(app: StepperApp, pilot: Pilot[Any], said: list[tuple[str, str]]) -> None:
         assert app.no_color
-        await press(app, pilot, "c")
-        assert " agree " in row_text(app, 1)
-        assert "agree" in status(app)
+        names = session.net.layout.names
+        for row, word in enumerate(words, start=1):
+            line = app.table.render_line(row)
+            text = line.text
+            assert names[row - 1] in text.split()[:2], text
+            assert f" {word}" in text, text
+            assert not [w for w in words if w != word and f" {w} " in f"{text} "], text
+            filtered = line
+            for line_filter in app.get_line_filters():
+                filtered = filtered.apply_filter(line_filter, app.background_colors[0])
+            assert all(seg.style is None or (seg.style.color is None and seg.style.bgcolor is None)
+                       for seg in filtered), text
+        shown = status(app)
+        for count, word in [(result.verdict.size - 3, "agree"), (1, "doubtful"), (1, "DISAGREE"), (1, "kink")]:
+            assert f"{count} {word}" in shown, shown
 
     drive(session, check, size=(80, 24))
 

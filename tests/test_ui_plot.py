@@ -53,10 +53,14 @@ def test_log_needs_positive_costs_that_vary() -> None:
     assert not log_possible(flat)
     zero = Curves(np.arange(3), np.array([1.0, 0.5, 0.0]), np.full(3, np.nan), 2)
     assert not log_possible(zero)
-    # Asking for log anyway draws a linear plot instead of failing.
-    assert len(build_plot(flat, 40, 8, log=True).splitlines()) == 8
-    assert len(build_plot(zero, 40, 8, log=True).splitlines()) == 8
+    # Asking for log anyway draws exactly the linear plot instead of failing.
+    for c in (flat, zero):
+        assert build_plot(c, 40, 8, log=True) == build_plot(c, 40, 8, log=False)
+    # A single step (train and validation costs differ) can be drawn on a log axis.
     assert len(build_plot(curves(1), 40, 8, log=True).splitlines()) == 8
+    # ...while where a log axis is possible, asking for it changes the picture.
+    assert log_possible(curves(30))
+    assert build_plot(curves(30), 40, 8, log=True) != build_plot(curves(30), 40, 8, log=False)
 
 
 def test_long_histories_are_thinned_keeping_both_ends() -> None:
