@@ -121,6 +121,11 @@ def test_open_takes_the_step_options_of_run() -> None:
     run_options = {o for a in subparsers()["run"]._actions for o in a.option_strings}
     open_options = {o for a in subparsers()["open"]._actions for o in a.option_strings}
     assert {"--rate", "--rule", "--slopes", "--batch", "--seed", "--resume"} <= run_options & open_options
+    runaway = {"--runaway-growth", "--runaway-rises", "--run-on"}
+    assert runaway <= run_options & open_options
+    # The rate range test makes every step it can: it offers no runaway options.
+    rates_options = {o for a in subparsers()["rates"]._actions for o in a.option_strings}
+    assert not runaway & rates_options
 
 
 @pytest.mark.parametrize("command", [c for c in cli.COMMANDS if c != "replay"])

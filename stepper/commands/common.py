@@ -57,8 +57,12 @@ def add_resume_option(parser: argparse.ArgumentParser, help: str = "start from a
     parser.add_argument("--resume", type=Path, default=None, metavar="CHECKPOINT", help=help)
 
 
-def add_step_options(parser: argparse.ArgumentParser, purpose: str) -> None:
-    """How steps are made, the same in ``open`` and ``run``: rate, rule, slopes, batch and its seed."""
+def add_step_options(parser: argparse.ArgumentParser, purpose: str, runaway: bool = True) -> None:
+    """How steps are made, the same in ``open`` and ``run``: rate, rule, slopes, batch and its seed.
+
+    With ``runaway``, also when a run of steps stops a runaway cost (leave it out
+    for a command whose steps no runaway rule stops).
+    """
     from stepper.core.optimizers import RULES
     from stepper.session import SLOPE_SOURCES
 
@@ -71,6 +75,8 @@ def add_step_options(parser: argparse.ArgumentParser, purpose: str) -> None:
     parser.add_argument("--batch", type=positive_int, default=None, metavar="N",
                         help="mini-batches of N samples, drawn with a seeded shuffle (default: full batch)")
     parser.add_argument("--seed", type=int, default=0, help="seed for mini-batch draws (default 0)")
+    if not runaway:
+        return
     parser.add_argument("--runaway-growth", type=_growth, default=GROWTH, metavar="F",
                         help=f"stop a run of steps once the cost exceeds F x its value at the run's start "
                         f"(default {GROWTH:g})")
@@ -94,7 +100,8 @@ def apply_step_options(session: Session, args: argparse.Namespace) -> None:
     A batch larger than the training set is the full batch. The runaway rule
     is a preference, set without a trace in undo or the journal.
     """
-    session.set_runaway(runaway_rule(args))
+    if hasattr(args, "run_on"):
+        session.set_runaway(runaway_rule(args))
     if args.rate is not None and args.rate != session.rate:
         session.set_rate(args.rate)
     if args.rule is not None and args.rule != session.rule:

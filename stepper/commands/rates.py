@@ -38,7 +38,7 @@ def add_parser(subs: Any) -> None:
     p.add_argument("--count", type=positive_int, default=None, metavar="N", help="how many rates (default 8)")
     p.add_argument("--steps", type=positive_int, default=DEFAULT_STEPS, metavar="K",
                    help=f"steps at each rate (default {DEFAULT_STEPS})")
-    add_session_options(p, "around which the rates are spread")
+    add_session_options(p, "around which the rates are spread", runaway=False)
     p.add_argument("--plot", default=None, metavar="FILE",
                    help="write the cost against the rate (log axis) as plain text ('-' for standard output)")
     p.add_argument("--json", action="store_true", help="print one JSON document instead of text")

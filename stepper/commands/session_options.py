@@ -31,9 +31,12 @@ def add_training_options(p: argparse.ArgumentParser) -> None:
                    "cosine:steps=N[,warmup=W][,floor=F][,restart=yes]")
 
 
-def add_session_options(p: argparse.ArgumentParser, purpose: str) -> None:
-    """Everything that sets up a session to step: step options, ``--freeze``, ``--resume``, training options."""
-    add_step_options(p, purpose)
+def add_session_options(p: argparse.ArgumentParser, purpose: str, runaway: bool = True) -> None:
+    """Everything that sets up a session to step: step options, ``--freeze``, ``--resume``, training options.
+
+    ``runaway``: whether the runaway rule's options are offered (see ``add_step_options``).
+    """
+    add_step_options(p, purpose, runaway)
     p.add_argument("--freeze", action="append", default=[], metavar="PATTERN",
                    help="freeze parameters whose names match, e.g. 'L1.b[*]' (repeatable)")
     add_resume_option(p, help="start from a checkpoint (its weights, settings and cost history)")
