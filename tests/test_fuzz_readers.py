@@ -7,10 +7,17 @@ a crash the user would see as a traceback.
 
 from __future__ import annotations
 
+import csv
+import datetime
+import io
+import json
+import tomllib
 from pathlib import Path
+from typing import Any
 
 import pytest
-from hypothesis import HealthCheck, given, settings
+from hypothesis import HealthCheck, event, given, settings
+from hypothesis.control import currently_in_test_context
 from hypothesis import strategies as st
 
 from stepper.errors import StepperError
@@ -96,9 +103,26 @@ def load(folder: Path, model: str | bytes, data: str | bytes = VALID_DATA) -> No
         setup = load_setup(model_path)
     except StepperError as exc:
         assert str(exc) and "\n" not in str(exc)
+        note_stage(stage(str(exc)))
         return
+    note_stage("loaded")
     assert isinstance(setup, Setup)
     assert setup.theta0.shape == (setup.network.n_params,)
+
+
+def note_stage(name: str) -> None:
+    if currently_in_test_context():
+        event(name)
+
+
+def stage(message: str) -> str:
+    """Where loading stopped, read from the message: for the statistics of how deep examples reach
+    (``pytest --hypothesis-show-statistics tests/test_fuzz_readers.py``)."""
+    if ": not valid TOML" in message or ": not UTF-8 text" in message:
+        return "stopped in the TOML parser"
+    if "data.csv: line 1:" in message or "the file is empty" in message or "cannot be read as CSV" in message:
+        return "stopped at the CSV header"
+    return "reached Stepper's own validation"
 
 
 def test_the_valid_file_loads(folder: Path) -> None:
@@ -202,3 +226,133 @@ def test_random_csv_read_directly(folder: Path, text: str, wanted: list[str]) ->
 def test_random_csv_rows(folder: Path, rows: list[list[str]]) -> None:
     text = "a,b,y\n" + "\n".join(",".join(row) for row in rows)
     load(folder, VALID_MODEL, text)
+
+
+# -- valid TOML and valid CSV headers with random values: examples that reach Stepper's checks ----
+#
+# Random text mostly stops in the standard library's TOML parser, and random CSV text at the
+# header. These properties write files that are valid TOML (and CSV files whose header holds the
+# named columns), with random values of every TOML type in the places a model file names, so
+# every example gets past the parser and the header and reaches Stepper's own checks.
+
+def toml_value(value: object) -> str:
+    """``value`` (str, bool, int, float, date, list or dict) as a TOML value."""
+    if isinstance(value, bool):
+        return "true" if value else "false"
+    if isinstance(value, int):
+        return str(value)
+    if isinstance(value, float):
+        if value != value:
+            return "nan"
+        if value in (float("inf"), float("-inf")):
+            return "inf" if value > 0 else "-inf"
+        return repr(value)
+    if isinstance(value, str):
+        # A TOML basic string: JSON's escapes are TOML's, except that DEL must be escaped too.
+        return json.dumps(value, ensure_ascii=False).replace("\x7f", "\\u007f")
+    if isinstance(value, list):
+        return "[" + ", ".join(toml_value(v) for v in value) + "]"
+    if isinstance(value, dict):
+        return "{ " + ", ".join(f"{toml_value(str(k))} = {toml_value(v)}" for k, v in value.items()) + " }"
+    if isinstance(value, (datetime.date, datetime.time)):
+        return value.isoformat()
+    raise TypeError(type(value))
+
+
+def toml_document(doc: dict[str, Any]) -> str:
+    """A model-file document (top-level values, [data], [init], [[layers]]) as TOML text."""
+    lines = [f"{toml_value(k)} = {toml_value(v)}" for k, v in doc.items() if k not in ("data", "init", "layers")]
+    for table in ("data", "init"):
+        if isinstance(doc.get(table), dict):
+            lines.append(f"[{table}]")
+            lines += [f"{toml_value(k)} = {toml_value(v)}" for k, v in doc[table].items()]
+    for layer in doc.get("layers", []):
+        lines.append("[[layers]]")
+        lines += [f"{toml_value(k)} = {toml_value(v)}" for k, v in layer.items()]
+    return "\n".join(lines) + "\n"
+
+
+SCALARS = st.one_of(
+    st.integers(min_value=-(2**63), max_value=2**63 - 1),
+    st.integers(min_value=-3, max_value=12),
+    st.floats(allow_nan=True, allow_infinity=True),
+    st.floats(min_value=-1.5, max_value=1.5),
+    st.booleans(),
+    st.text(max_size=10),
+    st.sampled_from(["relu", "tanh", "softmax", "sigmoid", "identity", "leaky_relu", "he_normal", "uniform",
+                     "glorot_normal", "binary_cross_entropy", "categorical_cross_entropy", "data.csv",
+                     "missing.csv", ".", "a", "b", "y", "custom"]),
+    st.dates(),
+)
+TOML_VALUES = st.recursive(SCALARS, lambda inner: st.one_of(
+    st.lists(inner, max_size=4), st.dictionaries(st.sampled_from(["x", "units", "file", "a"]), inner, max_size=2)),
+    max_leaves=8)
+
+#: Where a model file has values: (table, key); layer keys apply to a random layer.
+PLACES = [(None, k) for k in ("name", "loss", "colour")] + [("data", k) for k in (
+    "file", "inputs", "targets", "standardize", "validation_fraction", "seed", "sead")] + [
+    ("init", k) for k in ("scheme", "seed", "range", "names", "file")] + [
+    ("layers", k) for k in ("units", "activation", "bias", "weights", "biases", "type", "options", "width")]
+
+
+@st.composite
+def model_documents(draw: st.DrawFn) -> dict[str, Any]:
+    """The valid model's document with a few values replaced, removed or added, and 1 to 3 layers."""
+    doc: dict[str, Any] = tomllib.loads(VALID_MODEL)
+    n_layers = draw(st.integers(1, 3))
+    while len(doc["layers"]) < n_layers:
+        doc["layers"].insert(0, {"units": draw(st.integers(1, 4)), "activation": "tanh"})
+    doc["layers"] = doc["layers"][-n_layers:]
+    for _ in range(draw(st.integers(1, 4))):
+        table, key = draw(st.sampled_from(PLACES))
+        target = doc if table is None else doc.get(table)
+        if table == "layers":
+            target = doc["layers"][draw(st.integers(0, len(doc["layers"]) - 1))]
+        if not isinstance(target, dict):
+            continue
+        if draw(st.integers(0, 5)) == 0:
+            target.pop(key, None)
+        else:
+            target[key] = draw(TOML_VALUES)
+    return doc
+
+
+@SETTINGS
+@given(model_documents())
+def test_valid_toml_with_random_values(folder: Path, doc: dict[str, Any]) -> None:
+    text = toml_document(doc)
+    assert toml_document(tomllib.loads(text)) == text   # valid TOML, read back as written
+    load(folder, text)
+    # By construction no example may stop in the TOML parser.
+    try:
+        load_setup(folder / "model.toml")
+    except StepperError as exc:
+        assert stage(str(exc)) != "stopped in the TOML parser", str(exc)
+        assert str(exc).startswith(str(folder)), str(exc)   # the message names the file
+
+
+CELLS = st.one_of(st.floats(allow_nan=True, allow_infinity=True).map(repr), st.integers().map(str),
+                  st.sampled_from(["", " 1 ", "1e999", "-0", "nan", "x", "1,5", "0x10", "\u00a0"]),
+                  st.text(max_size=5))
+COLUMN_NAMES = st.text(alphabet=st.characters(blacklist_categories=("Cs",), blacklist_characters="\x00"),
+                       min_size=1, max_size=6).map(str.strip).filter(lambda c: c and c not in ("a", "b", "y"))
+
+
+@SETTINGS
+@given(st.lists(COLUMN_NAMES, max_size=3, unique=True), st.permutations([0, 1, 2, 3, 4, 5]),
+       st.lists(st.lists(CELLS, min_size=0, max_size=7), max_size=8))
+def test_valid_csv_header_with_random_cells(folder: Path, extra: list[str], order: list[int],
+                                            rows: list[list[str]]) -> None:
+    # The header always holds a, b and y once each (written by the csv module, so cells with
+    # commas, quotes or line breaks are quoted as RFC 4180 asks); the rows are random.
+    header = [name for name in [*["a", "b", "y"], *extra]]
+    header = [header[i] for i in order if i < len(header)]
+    buffer = io.StringIO()
+    writer = csv.writer(buffer, lineterminator="\n")
+    writer.writerow(header)
+    writer.writerows(rows)
+    load(folder, VALID_MODEL, buffer.getvalue())
+    try:
+        load_setup(folder / "model.toml")
+    except StepperError as exc:
+        assert stage(str(exc)) != "stopped at the CSV header", str(exc)
