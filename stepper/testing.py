@@ -49,6 +49,7 @@ def check_layer(layer: Any, n_in: int, *, n_samples: int = 8, seed: int = 0,
 
     Returns the report when every slope agrees.
     """
+    __tracebackhide__ = True  # pytest shows the user's test line and the message, not this helper's code
     cls = type(layer).__name__
     try:
         source = inspect.getsourcefile(type(layer))

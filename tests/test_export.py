@@ -208,3 +208,15 @@ def test_a_custom_layer_has_no_onnx_operator(tmp_path: Path, capsys: pytest.Capt
     assert "has no ONNX operator; export its weights to a .safetensors file instead" in capsys.readouterr().err
     export([str(model), "--to", str(tmp_path / "gate.safetensors"), "--layout", "stepper"], capsys)
     assert "L2.V" in load_file(str(tmp_path / "gate.safetensors"))
+
+
+def test_an_export_gets_the_usual_file_mode(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    import os
+    import stat
+
+    old = os.umask(0o022)
+    try:
+        export([str(ROOT / "kiln-tiny"), "--to", str(tmp_path / "kiln.onnx")], capsys)
+    finally:
+        os.umask(old)
+    assert stat.S_IMODE((tmp_path / "kiln.onnx").stat().st_mode) == 0o644

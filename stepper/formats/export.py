@@ -78,11 +78,25 @@ def export_weights(setup: Setup, theta: Array, target: Path, layout: str | None 
         data = safetensors_bytes(net, theta, setup.origin, layout, dtype)
     try:
         write_atomic(target, data)
+        # The temporary file was private (0600); a file for another program gets the usual mode.
+        os.chmod(target, 0o666 & ~_umask())
     except OSError as exc:
         raise UsageError(f"{target}: cannot be written ({exc.strerror or exc})") from None
     rounded = theta.astype(np.float32).astype(np.float64) if dtype == "float32" else theta
     X, Y = setup.data.X, setup.data.Y
     return Exported(target, suffix[1:], layout, dtype, net.cost(theta, X, Y), net.cost(rounded, X, Y))
+
+
+def _umask() -> int:
+    """The process's file-creation mask (read from /proc where it can be, without changing it)."""
+    try:
+        with open("/proc/self/status", encoding="ascii") as handle:
+            for line in handle:
+                if line.startswith("Umask:"):
+                    return int(line.split()[1], 8)
+    except (OSError, ValueError):
+        pass
+    return 0o022  # common practice
 
 
 def _refuse_inputs(setup: Setup, target: Path, inputs: tuple[Path, ...]) -> None:

@@ -59,9 +59,10 @@ class FileKeys(AppBase):
             else:
                 write(path, export)
 
+        # Two short lines: the dialog is narrower than an 80-column terminal.
         self.ask("Save checkpoint or export",
-                 "Path of the checkpoint (.safetensors), or to export the weights: a .onnx path, or a "
-                 ".safetensors path then torch or stepper (add float32 for that type):",
+                 "Checkpoint path (.safetensors); or export the weights:\n"
+                 "name.onnx, or name.safetensors torch|stepper (+ float32)",
                  str(self.session.default_checkpoint_path()), chosen)
 
     def _export(self, path: Path, layout: str | None, dtype: str | None) -> None:
