@@ -8,8 +8,9 @@ and the weights as ``initializer`` tensors. This module only reads and checks;
 Safety and limits:
 
 - only a regular file is read, at most :data:`MAX_BYTES` of it, and the
-  protobuf is parsed only by the ``onnx`` package (imported here, on first
-  use, so that starting Stepper never pays for it);
+  protobuf is parsed only by the ``onnx`` package's own message classes
+  (:func:`onnx_messages`, loaded on first use so that starting Stepper never
+  pays for them);
 - a tensor's dimensions are checked before its data is touched, and a tensor
   larger than the network limit is refused;
 - external data (a tensor whose values live in another file) is read only from
@@ -23,10 +24,12 @@ Every message is one line that names the file, and the node or tensor.
 
 from __future__ import annotations
 
+import importlib.util
 import os
 import stat
 from dataclasses import dataclass, field
 from pathlib import Path
+from types import ModuleType
 from typing import Any
 
 import numpy as np
@@ -123,14 +126,7 @@ class OnnxGraph:
         if tensor.data_location == 1:  # TensorProto.EXTERNAL
             values = _external(self, where, tensor, dtype, dims)
         else:
-            from onnx import numpy_helper
-
-            try:
-                values = numpy_helper.to_array(tensor)
-            except Exception as exc:  # the library's own errors for inconsistent tensors
-                raise self.fail(f"{where}: its data does not match its shape {dims} ({exc})") from None
-            if values.shape != dims:
-                raise self.fail(f"{where}: its data does not match its shape {dims}")
+            values = _inline(self, where, tensor, dtype, dims)
         array = np.array(values, dtype=np.float64)
         if not np.all(np.isfinite(array)):
             raise self.fail(f"{where} holds a value that is not a finite number")
@@ -141,9 +137,7 @@ def read_onnx(path: Path) -> OnnxGraph:
     """Read and check the ONNX file at ``path``; ModelFileError with one line if it cannot be used."""
     path = Path(path)
     raw = _read_bytes(path)
-    import onnx
-
-    model = onnx.ModelProto()
+    model = onnx_messages().ModelProto()
     try:
         model.ParseFromString(raw)
     except Exception as exc:  # protobuf's DecodeError, or a RecursionError for deep nesting
@@ -186,6 +180,37 @@ def read_onnx(path: Path) -> OnnxGraph:
     if not nodes:
         raise ModelFileError(f"{path}: the graph has no nodes")
     return OnnxGraph(path, raw, opset, nodes, inputs[0], outputs[0], tuple(tensors), tensors)
+
+
+_MESSAGES: ModuleType | None = None
+
+
+def onnx_messages() -> ModuleType:
+    """The ``onnx`` package's generated protobuf module (``onnx/onnx_ml_pb2.py``): ModelProto and the rest.
+
+    Loaded from the package's folder without running the package's
+    ``__init__``, which imports every helper and ``ml_dtypes`` and took 2 to 3
+    seconds on a busy 2-core machine (``python -X importtime -c "import onnx"``);
+    the generated module alone takes under 0.1 s. The message classes are the
+    same ones ``import onnx`` gives (protobuf keeps one class per message type),
+    so a later ``import onnx`` (export) works with them. If the file is not where
+    this version of onnx keeps it, the package is imported the ordinary way.
+    """
+    global _MESSAGES
+    if _MESSAGES is None:
+        spec = importlib.util.find_spec("onnx")
+        folders = list(spec.submodule_search_locations or []) if spec is not None else []
+        found = [Path(folder) / "onnx_ml_pb2.py" for folder in folders if (Path(folder) / "onnx_ml_pb2.py").is_file()]
+        module_spec = importlib.util.spec_from_file_location("onnx.onnx_ml_pb2", found[0]) if found else None
+        if module_spec is None or module_spec.loader is None:
+            import onnx
+
+            _MESSAGES = onnx.onnx_ml_pb2
+        else:
+            module = importlib.util.module_from_spec(module_spec)
+            module_spec.loader.exec_module(module)
+            _MESSAGES = module
+    return _MESSAGES
 
 
 def _read_bytes(path: Path) -> bytes:
@@ -234,8 +259,6 @@ def _info(path: Path, what: str, info: Any) -> TensorInfo:
 
 
 def _node(path: Path, index: int, proto: Any) -> Node:
-    from onnx import helper
-
     label = f"node {proto.name!r} ({proto.op_type})" if proto.name else f"node {index} ({proto.op_type})"
     if proto.domain not in ("", "ai.onnx"):
         raise ModelFileError(f"{path}: {label} is from the operator domain {proto.domain!r}; Stepper runs "
@@ -245,8 +268,7 @@ def _node(path: Path, index: int, proto: Any) -> Node:
         if attribute.ref_attr_name:
             raise ModelFileError(f"{path}: {label}: attribute {attribute.name!r} refers to a function's "
                                  "attribute, which Stepper does not resolve")
-        value = helper.get_attribute_value(attribute)
-        attributes[attribute.name] = value.decode("utf-8", "replace") if isinstance(value, bytes) else value
+        attributes[attribute.name] = _attribute_value(attribute)
     return Node(index, proto.name, proto.op_type, tuple(proto.input), tuple(proto.output), attributes)
 
 
@@ -301,9 +323,42 @@ def _external(graph: OnnxGraph, where: str, tensor: Any, dtype: str, dims: tuple
 
 
 def _type_name(code: int) -> str:
-    from onnx import TensorProto
-
     try:
-        return str(TensorProto.DataType.Name(int(code)))
+        return str(onnx_messages().TensorProto.DataType.Name(int(code)))
     except ValueError:
         return f"code {code}"
+
+
+#: AttributeProto.type codes (onnx.proto): FLOAT, INT, STRING, FLOATS, INTS, STRINGS.
+_ATTRIBUTE_FIELDS = {1: "f", 2: "i", 3: "s", 6: "floats", 7: "ints", 8: "strings"}
+
+
+def _attribute_value(attribute: Any) -> Any:
+    """A number, a string, or a list of them; other kinds (tensors, graphs) as a description."""
+    field = _ATTRIBUTE_FIELDS.get(int(attribute.type))
+    if field is None:
+        return f"<attribute of type {int(attribute.type)}>"  # no handler reads these
+    value = getattr(attribute, field)
+    if field in ("floats", "ints", "strings"):
+        value = list(value)
+    if field == "s":
+        return value.decode("utf-8", "replace")
+    if field == "strings":
+        return [v.decode("utf-8", "replace") for v in value]
+    return value
+
+
+def _inline(graph: OnnxGraph, where: str, tensor: Any, dtype: str, dims: tuple[int, ...]) -> Any:
+    """Values stored in the file: ``raw_data`` (little-endian), or the typed ``float_data``/``double_data``."""
+    count = 1
+    for d in dims:
+        count *= d
+    if tensor.raw_data:
+        width = 4 if dtype == "float32" else 8
+        if len(tensor.raw_data) != count * width:
+            raise graph.fail(f"{where}: its data ({len(tensor.raw_data)} bytes) does not match its shape {dims}")
+        return np.frombuffer(tensor.raw_data, dtype="<f4" if dtype == "float32" else "<f8").reshape(dims)
+    typed = tensor.float_data if dtype == "float32" else tensor.double_data
+    if len(typed) != count:
+        raise graph.fail(f"{where}: its data ({len(typed)} values) does not match its shape {dims}")
+    return np.array(typed, dtype=np.float32 if dtype == "float32" else np.float64).reshape(dims)
