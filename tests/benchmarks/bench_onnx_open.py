@@ -18,6 +18,7 @@ data. Measured in interleaved rounds on the same machine, medians reported:
 from __future__ import annotations
 
 import os
+import resource
 import statistics
 import subprocess
 import sys
@@ -63,6 +64,14 @@ def write_onnx(folder: Path) -> Path:
     return folder / "onnx.toml"
 
 
+def cpu_of(fn: object, *args: object) -> tuple[list[float], float]:
+    """``fn(*args)``'s result and the CPU seconds its child processes used (less sensitive to a busy machine)."""
+    before = resource.getrusage(resource.RUSAGE_CHILDREN)
+    result = fn(*args)  # type: ignore[operator]
+    after = resource.getrusage(resource.RUSAGE_CHILDREN)
+    return result, (after.ru_utime - before.ru_utime) + (after.ru_stime - before.ru_stime)
+
+
 def help_run() -> tuple[float, bool]:
     """Milliseconds of ``stepper --help`` in a fresh interpreter, and whether onnx got imported."""
     code = ("import time, sys\nt0 = time.perf_counter()\nfrom stepper import cli\n"
@@ -81,12 +90,15 @@ def main() -> None:
         print(f"model: {N_IN}-{N_HIDDEN}-{N_OUT}, 10,004 weights; OPENBLAS_NUM_THREADS="
               f"{os.environ.get('OPENBLAS_NUM_THREADS', 'unset')}, {os.cpu_count()} cores; {ROUNDS} interleaved rounds")
         head: dict[str, list[float]] = {"model file": [], "onnx": []}
+        cpu: dict[str, list[float]] = {"model file": [], "onnx": []}
         real: dict[str, list[float]] = {"model file": [], "onnx": []}
         helps: list[float] = []
         imported = False
         for _ in range(ROUNDS):
             for label, path in (("model file", toml), ("onnx", onnx_model)):
-                head[label] += startup_headless(path, runs=1)
+                wall, seconds = cpu_of(startup_headless, path, 1)
+                head[label] += wall
+                cpu[label].append(seconds * 1000)
                 terminal = startup_tmux(path, runs=1)
                 if terminal is not None:
                     real[label] += terminal
@@ -96,6 +108,9 @@ def main() -> None:
         h_toml, h_onnx = statistics.median(head["model file"]), statistics.median(head["onnx"])
         print(f"first screen, fresh interpreter, headless: ONNX {h_onnx:.0f} ms, model file {h_toml:.0f} ms, "
               f"ratio {h_onnx / h_toml:.2f} (goal for ONNX: < 1500 ms)")
+        c_toml, c_onnx = statistics.median(cpu["model file"]), statistics.median(cpu["onnx"])
+        print(f"  CPU time of those runs (user + system): ONNX {c_onnx:.0f} ms, model file {c_toml:.0f} ms, "
+              f"ratio {c_onnx / c_toml:.2f}; load average {os.getloadavg()[0]:.1f} on {os.cpu_count()} cores")
         if real["onnx"]:
             r_toml, r_onnx = statistics.median(real["model file"]), statistics.median(real["onnx"])
             print(f"first screen in tmux 80x24 (stepper open): ONNX {r_onnx:.0f} ms, model file {r_toml:.0f} ms, "
