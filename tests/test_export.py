@@ -220,3 +220,13 @@ def test_an_export_gets_the_usual_file_mode(tmp_path: Path, capsys: pytest.Captu
     finally:
         os.umask(old)
     assert stat.S_IMODE((tmp_path / "kiln.onnx").stat().st_mode) == 0o644
+
+
+def test_a_scaled_gemm_has_no_torch_layout(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    # Gemm's alpha and beta have no counterpart in PyTorch's Linear: refused rather than written wrong.
+    model, _ = onnx_model(tmp_path)
+    assert cli.main(["export", str(model), "--to", str(tmp_path / "w.safetensors")]) == 2
+    assert capsys.readouterr().err == (
+        "stepper: layer L1 (dense 4->5 leaky_relu(alpha=0.3) (alpha 0.5, beta 2)) scales its product by "
+        "constants that a PyTorch Linear does not have; export to .onnx, or use --layout stepper\n")
+    export([str(model), "--to", str(tmp_path / "w.safetensors"), "--layout", "stepper"], capsys)

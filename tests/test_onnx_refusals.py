@@ -36,6 +36,14 @@ def _w(name: str, shape: tuple[int, ...]) -> onnx.TensorProto:
     return numpy_helper.from_array(np.random.default_rng(0).normal(size=shape), name)
 
 
+def _bare(name: str, dims: list[int]) -> onnx.TensorProto:
+    """A float64 tensor that declares ``dims`` and holds no data."""
+    tensor = onnx.TensorProto()
+    tensor.name, tensor.data_type = name, TensorProto.DOUBLE
+    tensor.dims.extend(dims)
+    return tensor
+
+
 def run_check(tmp_path: Path, model_path: Path, capsys: pytest.CaptureFixture[str]) -> str:
     X = np.random.default_rng(1).normal(size=(6, 4))
     write_csv(tmp_path / "data.csv", X, X[:, :2])
@@ -106,6 +114,12 @@ GRAPHS: dict[str, tuple[Callable[[], onnx.ModelProto], str]] = {
                        [numpy_helper.from_array(np.ones((4, 2), np.int64), "w")]),
         "node 'mm' (MatMul): initializer 'w' is of ONNX element type INT64; Stepper reads float32 and float64 "
         "weights"),
+    "a huge count of weights, with no data behind it": (
+        lambda: _graph([helper.make_node("MatMul", ["x", "w"], ["y"], name="mm")], [_bare("w", [4, 10**10])]),
+        "node 'mm' (MatMul): initializer 'w' has 40,000,000,000 entries; Stepper reads at most 10,000,000"),
+    "a negative dimension": (
+        lambda: _graph([helper.make_node("MatMul", ["x", "w"], ["y"], name="mm")], [_bare("w", [4, -2])]),
+        "node 'mm' (MatMul): initializer 'w' has a negative dimension (4, -2)"),
     "weights that are not finite": (
         lambda: _graph([helper.make_node("MatMul", ["x", "w"], ["y"], name="mm")],
                        [numpy_helper.from_array(np.array([[1.0, np.inf]] * 4), "w")]),
@@ -209,3 +223,18 @@ def test_help_and_model_files_do_not_import_onnx() -> None:
     done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120,
                           cwd=Path(__file__).resolve().parents[1])
     assert done.stderr.strip().splitlines()[-2:] == ["False False", "False False"], done.stderr
+
+
+def test_data_columns_that_do_not_fit_the_graph_input(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    path = save(chain([("Gemm", {"units": 1})], n_in=3), tmp_path / "net.onnx")
+    X = np.random.default_rng(1).normal(size=(6, 4))
+    write_csv(tmp_path / "data.csv", X, X[:, :1])
+    code = cli.main(["check", str(path), "--data", str(tmp_path / "data.csv"), "--targets", "y0",
+                     "--loss", "mean_squared_error"])
+    assert code == 2
+    assert capsys.readouterr().err == (
+        f"stepper: {path} (with the data options): data.inputs: names 4 column(s) (x0, x1, x2, x3) but the "
+        "network's input takes 3 features; name the input columns (inputs = [...] in a model file, --inputs "
+        "on the command line)\n")
+    assert cli.main(["check", str(path), "--data", str(tmp_path / "data.csv"), "--targets", "y0",
+                     "--inputs", "x0,x2,x3", "--loss", "mean_squared_error"]) == 0

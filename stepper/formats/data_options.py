@@ -107,7 +107,8 @@ def fit_data(top: Any, network: Network, data: Dataset) -> Dataset:
         # Only a graph fixes its input width; [[layers]] take the width of the data.
         top.fail("data.inputs", f"names {len(data.input_names)} column(s) "
                                 f"({_listed(data.input_names)}) but the network's input takes "
-                                f"{network.n_inputs} features")
+                                f"{network.n_inputs} features; name the input columns "
+                                "(inputs = [...] in a model file, --inputs on the command line)")
     n_out, n_targets = network.n_outputs, len(data.target_names)
     if n_out == n_targets:
         return data

@@ -63,6 +63,9 @@ def _torch_source(network: Network, origin: WeightOrigin | None, index: int, key
         return known  # back as it came: the names and the arrangement of the file read
     if not isinstance(layer, (Dense, ScaledDense)):
         raise UsageError(f"layer L{index + 1} ({layer.label}) has no PyTorch counterpart; use --layout stepper")
+    if isinstance(layer, ScaledDense):
+        raise UsageError(f"layer L{index + 1} ({layer.label}) scales its product by constants that a PyTorch "
+                         "Linear does not have; export to .onnx, or use --layout stepper")
     if known is not None:
         # From ONNX: the initializer's name, in Linear's (out, in) arrangement.
         return TensorSource(known.tensor, (layer.n_out, layer.n_in) if key == "W" else (layer.n_out,),
