@@ -112,20 +112,20 @@ def test_a_correct_layer_gets_no_hint(broken: Callable[[str], Diagnosed]) -> Non
     ("bias averaged twice",
      f"L2.b: numeric / analytic = 30 (the number of samples) on every disagreeing entry (3): the analytic slope "
      f"was divided by the number of samples once too often, as if averaged over the samples twice; look at "
-     f"L2.b's slope in {LABEL}'s backward."),
+     f"L2.b's slope in the backward of {LABEL}."),
     ("weights not averaged",
      "L2.W: numeric / analytic = 1/30 (one over the number of samples) on every disagreeing entry (6): the "
      "analytic slope is summed over the samples without the 1/n of the average; look at L2.W's slope in "
-     f"{LABEL}'s backward."),
+     f"the backward of {LABEL}."),
     ("weights doubled",
      "L2.W: numeric / analytic = 1/2 on every disagreeing entry (6): the analytic slope has an extra factor of 2 "
-     f"(such as a one-half dropped from the cost); look at L2.W's slope in {LABEL}'s backward."),
+     f"(such as a one-half dropped from the cost); look at L2.W's slope in the backward of {LABEL}."),
     ("weights halved",
      "L2.W: numeric / analytic = 2 on every disagreeing entry (6): the analytic slope lost a factor of 2 (such as "
-     f"the 2 from squaring); look at L2.W's slope in {LABEL}'s backward."),
+     f"the 2 from squaring); look at L2.W's slope in the backward of {LABEL}."),
     ("bias sign",
      "L2.b: numeric / analytic = -1 on every disagreeing entry (3): the analytic slope has the wrong sign; look at "
-     f"L2.b's slope in {LABEL}'s backward."),
+     f"L2.b's slope in the backward of {LABEL}."),
 ])
 def test_a_shared_ratio_is_named(broken: Callable[[str], Diagnosed], bug: str, hint: str) -> None:
     hints, _ = broken(bug)
@@ -153,14 +153,14 @@ def test_only_the_weights(broken: Callable[[str], Diagnosed]) -> None:
 def test_a_wrong_dx_is_named_as_the_cause_of_the_earlier_layers(broken: Callable[[str], Diagnosed]) -> None:
     hints, _ = broken("dX forgets the squash")
     assert hints == [("input_slopes",
-                      f"{LABEL}'s backward returns a wrong input slope dX; L1 disagrees because of it (its own "
+                      f"The backward of {LABEL} returns a wrong input slope dX; L1 disagrees because of it (its own "
                       "parameters agree): fix the dX that L2's backward returns first.")]
 
 
 def test_a_wrong_dx_with_a_shared_ratio(broken: Callable[[str], Diagnosed]) -> None:
     hints, _ = broken("dX sign")
     assert hints == [("input_slopes",
-                      f"{LABEL}'s backward returns a wrong input slope dX (numeric / analytic = -1 on every "
+                      f"The backward of {LABEL} returns a wrong input slope dX (numeric / analytic = -1 on every "
                       "disagreeing entry: the analytic slope has the wrong sign); L1 disagrees because of it (its "
                       "own parameters agree): fix the dX that L2's backward returns first.")]
 
@@ -185,7 +185,7 @@ def test_check_text_gives_the_cause_instead_of_the_worst_weight(broken: Callable
     why = summary[summary.index("why"):summary.index("result")]
     assert " ".join(why.split()) == (
         "why L2.b: numeric / analytic = -1 on every disagreeing entry (3): the analytic slope has the wrong sign; "
-        "look at L2.b's slope in L2 (custom 2->3 squash.py:Squash)'s backward. why In L2 (custom 2->3 "
+        "look at L2.b's slope in the backward of L2 (custom 2->3 squash.py:Squash). why In L2 (custom 2->3 "
         "squash.py:Squash) only biases disagree (L2.b) and every weight agrees: look at the slope of L2.b in that "
         "layer's backward.")
     assert all(len(line) <= 79 for line in why.splitlines())

@@ -167,11 +167,11 @@ def _input_hint(net: Network, check: InputSlopeCheck, bad: NDArray[np.bool_], be
     earlier = sorted({f"L{int(i) + 1}" for i in net.layout.layer_index[before]})
     own_text = "its own parameters disagree too" if bool(np.any(bad & own)) else "its own parameters agree"
     if earlier:
-        text = (f"{where}'s backward returns a wrong input slope dX{clause}; {_and(earlier)} "
+        text = (f"The backward of {where} returns a wrong input slope dX{clause}; {_and(earlier)} "
                 f"{'disagrees' if len(earlier) == 1 else 'disagree'} because of it "
                 f"({own_text}): fix the dX that {name}'s backward returns first.")
     else:
-        text = f"{where}'s backward returns a wrong input slope dX{clause}; {own_text}."
+        text = f"The backward of {where} returns a wrong input slope dX{clause}; {own_text}."
     return Hint("input_slopes", text, check.layer, (f"{name}.dX",), ratio)
 
 
@@ -193,7 +193,7 @@ def _layer_hints(net: Network, result: CheckResult, bad: NDArray[np.bool_], laye
         hints.append(Hint(
             "ratio",
             f"{block.prefix}: numeric / analytic = {written} on {every}: {meaning}; "
-            f"look at {block.prefix}'s slope in {_layer_name(net, layer)}'s backward.",
+            f"look at {block.prefix}'s slope in the backward of {_layer_name(net, layer)}.",
             layer, (block.prefix,), ratio,
         ))
     kinds = {b.kind for b in blocks}
