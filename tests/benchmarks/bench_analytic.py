@@ -4,19 +4,29 @@ References, in the same process on the same data and weights, all float64 on
 the CPU, all taking the flat parameter vector and returning the flat slopes:
 - autograd (``autograd.value_and_grad`` of the same cost written with autograd.numpy);
 - PyTorch, if ``import torch`` works (reverse mode on a flat leaf tensor).
-Goal: Stepper no slower than either. Each figure is the best of several timed
-batches of calls (``time.perf_counter``); the implementations alternate so all
-see the same load on a shared machine. The slopes are compared too.
+Goal: Stepper no slower than either.
 
-Run: ``/tmp/v/bin/python tests/benchmarks/bench_analytic.py``; for a single-threaded
-comparison prefix ``OPENBLAS_NUM_THREADS=1 OMP_NUM_THREADS=1``. Most of the time
+Like with like (see rounds.py): every library runs with one thread (OpenBLAS,
+OpenMP and PyTorch's intra-op pool are pinned to 1 before anything is imported,
+unless OPENBLAS_NUM_THREADS is set by the caller, which then applies to all),
+in interleaved rounds of timed batches; each ratio is taken within a round and
+the median is printed with its distribution. The slopes of each reference are
+compared with Stepper's (Stepper is not compared with itself).
+
+Run: ``.venv/bin/python tests/benchmarks/bench_analytic.py``. Most of the time
 goes to matrix products, so the BLAS library matters: numpy's wheels bundle
-OpenBLAS, PyTorch's CPU wheels Intel MKL.
+OpenBLAS, PyTorch's CPU wheels Intel MKL. PyTorch is optional and never a
+dependency of the project.
 """
 
 from __future__ import annotations
 
-import time
+import os
+
+for _name in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
+    os.environ.setdefault(_name, os.environ.get("OPENBLAS_NUM_THREADS", "1"))
+
+import time  # noqa: E402
 from typing import Any, Callable
 
 import autograd
@@ -32,8 +42,12 @@ try:
     import torch
 except ImportError:  # optional reference
     torch = None
+else:
+    torch.set_num_threads(int(os.environ["OPENBLAS_NUM_THREADS"]))
 
-ROUNDS = 5
+from rounds import load_note, ratios, spread  # noqa: E402
+
+ROUNDS = 9
 PAUSE = 0.3  # seconds between timed batches
 
 # (label, inputs, [(units, activation)], loss, samples)
@@ -129,6 +143,8 @@ def main() -> None:
     else:
         mkl = "MKL" if torch.backends.mkl.is_available() else "no MKL"
         print(f"PyTorch {torch.__version__} ({mkl}), {torch.get_num_threads()} threads")
+    print(f"threads: OpenBLAS {os.environ['OPENBLAS_NUM_THREADS']}, OpenMP {os.environ['OMP_NUM_THREADS']}; "
+          f"{load_note()}")
     for label, n_in, spec, loss, n in CASES:
         net, theta, X, Y = problem(n_in, spec, loss, n)
         jobs: dict[str, Callable[[], Any]] = {"stepper": lambda: net.cost_and_slopes(theta, X, Y)[1]}
@@ -140,19 +156,21 @@ def main() -> None:
         ours = jobs["stepper"]()
         scale = float(np.max(np.abs(ours)))
         calls = max(3, int(0.05 / per_call(jobs["stepper"], 3)))
-        best = {name: float("inf") for name in jobs}
-        for _ in range(ROUNDS):
-            for name, job in jobs.items():
+        times: dict[str, list[float]] = {name: [] for name in jobs}
+        names = list(jobs)
+        for r in range(ROUNDS):
+            for name in names[r % len(names):] + names[: r % len(names)]:
                 # Idle BLAS / OpenMP worker threads of the previous library keep
-                # spinning for a while after its last call and would steal the
-                # cores from the next one; let them go to sleep first.
+                # spinning for a while after its last call; let them go to sleep first.
                 time.sleep(PAUSE)
-                best[name] = min(best[name], per_call(job, calls))
+                times[name].append(per_call(jobs[name], calls))
         print(f"{label}, {n} samples, {net.n_params} weights")
-        for name in jobs:
+        print(f"  stepper   {spread(times['stepper'], 1e3, ' ms per call')}")
+        for name in names[1:]:
             diff = float(np.max(np.abs(np.asarray(jobs[name]()) - ours))) / scale
-            ratio = "" if name == "stepper" else f"   {best[name] / best['stepper']:5.2f}x Stepper's time"
-            print(f"  {name:9s} {best[name] * 1e3:8.3f} ms per call   max |diff| / max |slope| {diff:.1e}{ratio}")
+            print(f"  {name:9s} {spread(times[name], 1e3, ' ms per call')}")
+            print(f"  {'':9s} its time / Stepper's {spread(ratios(times[name], times['stepper']), unit='x')}; "
+                  f"max |its slopes - Stepper's| / max |slope| {diff:.1e}")
 
 
 if __name__ == "__main__":

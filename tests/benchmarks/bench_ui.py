@@ -11,8 +11,10 @@ Measures, headless (Textual's run_test) on the same machine and model:
    also through a real terminal (tmux) when tmux is there;
 3. the reference: the stock DataTable filling the same 10,000 rows, and
    updating one column cell by cell, in the same process, against the line-API
-   table refreshing from a new snapshot (timed through the pilot like the stock
-   table, and once more directly: the new snapshot and one screen of lines).
+   table showing a snapshot and a new one. Both are timed the same way, through
+   the pilot's wait for an idle screen, in TABLE_ROUNDS interleaved rounds whose
+   order alternates (so neither is always first and cold); the ratio is taken
+   within each round and its median printed with the distribution (rounds.py).
 
 BLAS threads matter on a small, busy machine: with OpenBLAS's default of one
 thread per core, tiny matrix products can wait for each other when the other
@@ -40,10 +42,14 @@ import tempfile
 import textwrap
 import time
 from pathlib import Path
+from typing import Callable
 
 import numpy as np
 
+from rounds import load_note, ratios, spread
+
 N_IN, N_HIDDEN, N_OUT, N_SAMPLES = 20, 400, 4, 320
+TABLE_ROUNDS = 6
 
 
 def write_model(folder: Path) -> Path:
@@ -113,7 +119,7 @@ async def step_latency(model: Path, presses: int = 30) -> list[float]:
     return times
 
 
-async def table_reference(model: Path) -> dict[str, float]:
+async def table_reference(model: Path) -> dict[str, list[float]]:
     """Stock DataTable against the line-API table on the same 10,004 rows (milliseconds)."""
     from textual.app import App, ComposeResult
     from textual.widgets import DataTable
@@ -134,7 +140,8 @@ async def table_reference(model: Path) -> dict[str, float]:
             yield DataTable(id="stock")
             yield WeightTable(id="ours")
 
-    out: dict[str, float] = {}
+    out: dict[str, list[float]] = {name: [] for name in ("stock fill", "line-API fill", "stock one column",
+                                                         "line-API new snapshot")}
     app = Both()
     async with app.run_test(size=(120, 40)) as pilot:
         stock = app.query_one(DataTable)
@@ -144,40 +151,33 @@ async def table_reference(model: Path) -> dict[str, float]:
         rows = [table.row_cells(i) for i in range(snap.n_params)]
         keys = stock.add_columns("weight", "value", "analytic", "numeric", "rel.err", "verdict", "frozen")
 
-        t0 = time.perf_counter()
-        stock.add_rows(rows)
-        await pilot.pause()
-        out["stock fill"] = (time.perf_counter() - t0) * 1000
+        async def timed(name: str, job: Callable[[], object]) -> None:
+            t0 = time.perf_counter()
+            job()
+            await pilot.pause()
+            out[name].append((time.perf_counter() - t0) * 1000)
 
-        row_keys = list(stock.rows)
-        new_values = [f"{v: .3e}" for v in snap.value + 1.0]
-        t0 = time.perf_counter()
-        for key, text in zip(row_keys, new_values):
-            stock.update_cell(key, keys[1], text)
-        await pilot.pause()
-        out["stock one column"] = (time.perf_counter() - t0) * 1000
+        def stock_fill() -> None:
+            stock.clear()
+            stock.add_rows(rows)
 
-        t0 = time.perf_counter()
-        ours.show(snap)
-        await pilot.pause()
-        out["line-API fill"] = (time.perf_counter() - t0) * 1000
+        def stock_column() -> None:
+            new_values = [f"{v: .3e}" for v in snap.value + 1.0 + len(out["stock one column"])]
+            for key, text in zip(list(stock.rows), new_values):
+                stock.update_cell(key, keys[1], text)
 
-        session.step(1)
-        newer = take(session)
-        t0 = time.perf_counter()
-        ours.show(newer)
-        await pilot.pause()
-        out["line-API new snapshot"] = (time.perf_counter() - t0) * 1000
+        def ours_new() -> None:
+            ours.show(take(session))
 
-        # The same without the pilot's wait for an idle process (which busy BLAS threads
-        # can stretch): the new snapshot and every line on screen drawn, nothing else.
-        session.step(1)
-        newest = take(session)
-        t0 = time.perf_counter()
-        ours.show(newest)
-        lines = [ours.render_line(y) for y in range(ours.size.height)]
-        out["line-API, direct"] = (time.perf_counter() - t0) * 1000
-        assert lines[1].text.strip()
+        for r in range(TABLE_ROUNDS):
+            pairs = [("stock fill", stock_fill), ("line-API fill", lambda: ours.show(snap))]
+            for name, job in pairs if r % 2 == 0 else pairs[::-1]:
+                await timed(name, job)
+            session.step(1)   # outside the timing: the new weights the new snapshot shows
+            pairs = [("stock one column", stock_column), ("line-API new snapshot", ours_new)]
+            for name, job in pairs if r % 2 == 0 else pairs[::-1]:
+                await timed(name, job)
+        assert ours.render_line(1).text.strip()
     return out
 
 
@@ -259,13 +259,12 @@ def main() -> None:
               f"max {max(times):.1f} ms over {len(times)} presses (goal: median < 100 ms)")
 
         ref = asyncio.run(table_reference(model))
-        print("table, same rows, same process (ms):")
+        print(f"table, same rows, same process, both through the pilot's wait ({load_note()}):")
         for label, ms in ref.items():
-            print(f"  {label:<24} {ms:8.1f}")
-        print(f"  stock fill / line-API fill: {ref['stock fill'] / ref['line-API fill']:.0f}x; "
-              f"stock one column / line-API new snapshot: "
-              f"{ref['stock one column'] / ref['line-API new snapshot']:.0f}x "
-              f"(drawn directly: {ref['stock one column'] / ref['line-API, direct']:.0f}x)")
+            print(f"  {label:<24} {spread(ms, unit=' ms')}")
+        print(f"  stock fill / line-API fill: {spread(ratios(ref['stock fill'], ref['line-API fill']), unit='x')}")
+        print(f"  stock one column / line-API new snapshot: "
+              f"{spread(ratios(ref['stock one column'], ref['line-API new snapshot']), unit='x')}")
 
         head = startup_headless(model)
         print(f"start-up to first screen, fresh interpreter, headless: median {statistics.median(head):.0f} ms "
