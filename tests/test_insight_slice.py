@@ -15,6 +15,8 @@ from stepper.core.activations import ACTIVATIONS
 from stepper.core.layers import Dense
 from stepper.core.network import Network
 from stepper.core.slice import cost_slice, costs_at_offsets
+from stepper.formats.model_file import load_setup
+from stepper.session import Session
 
 IDENTITY = ACTIVATIONS["identity"]
 
@@ -273,3 +275,29 @@ def test_batched_sweep_through_a_custom_layer_matches_one_run_per_point() -> Non
             direct.append(net.cost(moved, X, Y))
         np.testing.assert_allclose(costs_at_offsets(net, theta, X, Y, index, offsets), direct,
                                    rtol=1e-12, atol=1e-15)
+
+
+def test_slice_plot_keeps_the_one_step_mark_in_sight() -> None:
+    from stepper.plots import NOW_MARK, STEP_MARK, slice_plot_text
+
+    session = Session(load_setup(SCENARIOS / "bakery-demand" / "model.toml"))
+    data = session.setup.data
+    index = session.net.layout.index_of["L2.b[0]"]
+    # A tiny rate: the step does not leave the current point's cell. A huge one: it lands beyond the span.
+    for rate in (1e-9, 0.5, 5.0):
+        result = cost_slice(session.net, session.theta, data.X, data.Y, index, rate)
+        text = slice_plot_text(result, 60, 16)
+        assert STEP_MARK in text and NOW_MARK in text, (rate, text)
+
+
+def test_slice_command_plot_draws_cost_and_tangent_with_their_own_glyphs(capsys) -> None:
+    from stepper.plots import COST_MARK, TANGENT_MARK
+
+    code = cli.main(["slice", str(SCENARIOS / "bakery-demand"), "L2.b[0]", "--rate", "0.5", "--plot", "-",
+                     "--size", "70x20"])
+    out = capsys.readouterr().out
+    assert code == 0
+    plot = out[out.index("cost along L2.b[0]"):]
+    body = "".join(line.split("│")[1] if line.count("│") >= 2 else "" for line in plot.splitlines())
+    assert body.count(COST_MARK) > 10 and body.count(TANGENT_MARK) > 5
+    assert f"{COST_MARK} cost" in plot and f"{TANGENT_MARK} tangent" in plot

@@ -71,3 +71,58 @@ def test_long_histories_are_thinned_keeping_both_ends() -> None:
     assert np.array_equal(thin(10, 200), np.arange(10))
     text = build_plot(curves(100_000), 80, 12, log=True)
     assert len(text.splitlines()) == 12
+
+
+# -- reading right (each check below is about drawing, so its reference is the data drawn) ----
+
+
+def _canvas(text: str) -> str:
+    """The plot's inside, between the frame's left and right edges (no tick labels)."""
+    rows = []
+    for line in text.splitlines():
+        left = line.find("┤") if "┤" in line else line.find("│")
+        right = line.rfind("│")
+        if 0 <= left < right:
+            rows.append(line[left + 1 : right])
+    return "\n".join(rows)
+
+
+def test_two_steps_draw_two_marks_per_curve() -> None:
+    c = Curves(np.arange(2), np.array([1.27, 0.58]), np.array([1.41, 0.67]), 1)
+    body = _canvas(build_plot(c, 70, 10, log=False))
+    assert body.count(TRAIN_MARK) == 2 and body.count(VAL_MARK) == 2
+
+
+def test_validation_never_hides_training() -> None:
+    # Both curves in the same cells: the training mark is the one seen.
+    steps = np.arange(20)
+    train = 1.0 / (1.0 + steps)
+    body = _canvas(build_plot(Curves(steps, train, train.copy(), 19), 60, 10, log=False))
+    assert body.count(TRAIN_MARK) >= 19 and VAL_MARK not in body
+
+
+@pytest.mark.parametrize("n", [2, 8, 11, 23, 101, 997])
+def test_the_last_step_has_its_tick(n: int) -> None:
+    last_line = build_plot(curves(n), 70, 10, log=False).splitlines()[-1]
+    assert last_line.split()[-1] == str(n - 1)
+    assert last_line.split()[0] == "0"
+
+
+def test_axis_labels_stay_short_after_a_blow_up() -> None:
+    steps = np.arange(21)
+    train = 1.27 * np.exp(7.0 * steps)  # 1.3 to 1.3e60, as after a runaway rate
+    for log in (False, True):
+        labels = [line.split("┤")[0].strip() for line in build_plot(Curves(steps, train, train * 1.1, 20), 70, 12,
+                                                                      log).splitlines() if "┤" in line]
+        assert labels and all(len(label) <= 8 for label in labels), labels
+        assert all(float(label) >= 0 or not log for label in labels)
+
+
+def test_short_numbers() -> None:
+    from stepper.plots import short_number, whole_ticks
+
+    assert short_number(1.342027465817828e60) == "1.34e60"
+    assert short_number(1e-5) == "1e-5"
+    assert short_number(0.25) == "0.25"
+    assert whole_ticks(0, 7, 5)[-1] == 7 and whole_ticks(0, 7, 5)[0] == 0
+    assert whole_ticks(3, 3, 5) == [3]

@@ -160,34 +160,17 @@ def slice_document(setup: Setup, name: str, s: CostSlice, n_samples: int) -> dic
 
 
 def render_plot(s: CostSlice, name: str, width: int = PLOT_SIZE[0], height: int = PLOT_SIZE[1]) -> str:
-    """The slice as plain text: the cost curve, the tangent, the current point and the step's landing.
+    """The slice as plain text, ``width`` x ``height`` cells: a title, the plot and a line saying its glyphs.
 
-    The tangent is drawn only where it stays within the cost curve's range, so
-    a steep tangent does not squash the curve.
+    The plot is the app's slice plot (:func:`stepper.plots.slice_plot_text`):
+    the cost curve ``*``, the tangent ``.``, the current point ``O`` and the
+    step's landing ``X``, each with a glyph of its own.
     """
-    import plotext  # type: ignore[import-untyped]
+    from stepper.plots import slice_legend, slice_plot_text
 
-    fig = plotext.figure
-    # The size asked for, not the terminal's: the text may go to a file.
-    plotext.terminal.limit(False, False)
-    fig.clear()
-    fig.plot_size(width, height)
-    fig.title(f"cost along {name}")
-    fig.label(name, axis="x")
-    lo, hi = float(np.min(s.costs)), float(np.max(s.costs))
-    pad = 0.05 * (hi - lo) if hi > lo else max(abs(hi), 1.0) * 1e-3
-    fig.draw(fig.signal(s.points.tolist(), s.costs.tolist()).lines().label("cost"))
-    keep = (s.tangent >= lo - pad) & (s.tangent <= hi + pad)
-    if np.count_nonzero(keep) >= 2:
-        fig.draw(fig.signal(s.points[keep].tolist(), s.tangent[keep].tolist()).lines().label("tangent"))
-    if s.points[0] <= s.landing <= s.points[-1]:
-        fig.draw(fig.signal([s.landing], [s.landing_cost], marker="x").label(f"step, rate {s.rate:g}"))
-    fig.draw(fig.signal([s.value], [s.cost], marker="o").label("now"))
-    fig.ruler("y").lim(lo - pad, hi + pad)
-    fig.legend(x=width // 2, y=0, ha="center", va="top")
-    text: str = fig.build().string(colorless=True)
-    fig.clear()
-    return text.rstrip()
+    plot = slice_plot_text(s, width, height - 2).splitlines()
+    lines = [f"cost along {name}".center(width), *plot, slice_legend(s.rate)[:width]]
+    return "\n".join(line.ljust(width) for line in lines).rstrip()
 
 
 def _at_least_two(text: str) -> int:

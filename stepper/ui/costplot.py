@@ -7,12 +7,12 @@ data, the size or the scale change, so repaints cost nothing.
 
 Training cost is drawn with ``*`` and validation cost with ``o``, so the two
 read apart without colour (the marks get colours from the stylesheet, which
-Textual drops under NO_COLOR); a vertical line marks the current step.
+are dropped under NO_COLOR), joined by dotted lines; a vertical line marks the
+current step. Axis labels are short, on a log axis too.
 """
 
 from __future__ import annotations
 
-import math
 import re
 from dataclasses import dataclass
 from typing import Any, ClassVar
@@ -24,13 +24,16 @@ from rich.style import Style
 from textual.reactive import reactive
 from textual.strip import Strip
 
-from stepper.ui.plotwidget import PlotWidget, plotext_figure
+from stepper.plots import even_ticks, plotext_figure, tick_labels, whole_ticks
+from stepper.ui.plotwidget import PlotWidget
 from stepper.ui.snapshot import Snapshot
 
 Array = NDArray[np.float64]
 
 TRAIN_MARK = "*"
 VAL_MARK = "o"
+#: The dotted line between two marks of a curve.
+LINE_MARK = "\u00b7"
 #: At most this many points per curve and column of plot; longer histories are thinned.
 POINTS_PER_COLUMN = 2
 
@@ -77,38 +80,46 @@ def log_possible(curves: Curves) -> bool:
 def build_plot(curves: Curves, width: int, height: int, log: bool) -> str:
     """The plot as plain text, ``width`` x ``height`` cells.
 
-    ``log`` asks for a logarithmic y axis; it is used only where
-    :func:`log_possible` allows it.
+    Each cost is a mark at its step (train ``*`` drawn over validation ``o``),
+    joined to the next by a dotted line, so two steps draw two marks. ``log``
+    asks for a logarithmic y axis (plotted as log10 of the cost, labelled with
+    the cost itself); it is used only where :func:`log_possible` allows it.
     """
     fig = plotext_figure(width, height)
     keep = thin(curves.steps.size, max(2, POINTS_PER_COLUMN * width))
     x = curves.steps[keep].astype(np.float64)
-    series = [(curves.train[keep], TRAIN_MARK), (curves.val[keep], VAL_MARK)]
-    lo, hi = cost_range(curves)
     use_log = log and log_possible(curves)
-    for y, mark in series:
-        ok = np.isfinite(y)
-        if not ok.any():
-            continue
-        signal = fig.signal(x[ok].tolist(), y[ok].tolist(), marker=mark)
-        signal.lines()
-        fig.draw(signal)
-    fig.line(float(curves.current), orientation="v")
+    series = [(curves.val[keep], VAL_MARK), (curves.train[keep], TRAIN_MARK)]
     if use_log:
-        fig.ruler("y").scale("log")
-    else:
-        pad = 0.05 * (hi - lo) if hi > lo else max(abs(hi) * 0.1, 1e-12)
-        # Costs are never negative here; keep the axis from showing negative values for them.
-        bottom = max(lo - pad, 0.0) if lo >= 0.0 else lo - pad
-        fig.ruler("y").lim(bottom, hi + pad)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            series = [(np.log10(y), mark) for y, mark in series]
+    shown = [(y, np.isfinite(y), mark) for y, mark in series]
+    for y, ok, _ in shown:
+        if np.count_nonzero(ok) >= 2:
+            line = fig.signal(x[ok].tolist(), y[ok].tolist(), marker=LINE_MARK)
+            line.lines()
+            fig.draw(line)
+    for y, ok, mark in shown:
+        if ok.any():
+            fig.draw(fig.signal(x[ok].tolist(), y[ok].tolist(), marker=mark))
+    fig.line(float(curves.current), orientation="v")
+    values = np.concatenate([y[ok] for y, ok, _ in shown])
+    lo, hi = (float(values.min()), float(values.max())) if values.size else (0.0, 1.0)
+    pad = 0.05 * (hi - lo) if hi > lo else max(abs(hi) * 0.1, 1e-12)
+    # Costs are never negative: keep a linear axis from showing negative values for them.
+    bottom = lo - pad if use_log or lo < 0.0 else max(lo - pad, 0.0)
+    top = hi + pad
+    fig.ruler("y").lim(bottom, top)
+    ticks = even_ticks(bottom, top, 3 if height < 10 else 5)
+    labels = tick_labels([10.0**t for t in ticks] if use_log else ticks)
+    fig.ruler("y").ticks(ticks, labels)
     first = int(min(curves.steps[0], curves.current)) if curves.steps.size else 0
     last = int(max(curves.steps[-1], curves.current)) if curves.steps.size else 0
     if last == first:
         last = first + 1
     fig.ruler("x").lim(first, last)
-    spacing = max(1, math.ceil((last - first) / max(1, min(5, width // 10))))
-    ticks = np.arange(first, last + 1, spacing)
-    fig.ruler("x").ticks([float(t) for t in ticks], [str(int(t)) for t in ticks])
+    x_ticks = whole_ticks(first, last, max(2, min(6, width // 10)))
+    fig.ruler("x").ticks([float(t) for t in x_ticks], [str(t) for t in x_ticks])
     return str(fig.build().string(colorless=True))
 
 

@@ -1,10 +1,8 @@
-"""A base for widgets that show a plotext plot, and the plotext figure they draw into.
+"""A base for widgets that show a plotext plot.
 
-plotext draws into one module-wide figure and, left alone, sizes it from the
-terminal it finds on stdout. :func:`plotext_figure` clears that figure and sizes
-it to a widget's content area with plotext's own terminal limits off; call it
-(and build) on the app's thread only, which :class:`PlotWidget` does by building
-in ``render_line``. A built plot is kept as strips until the size, the style or
+plotext draws into one module-wide figure (see :mod:`stepper.plots`): build on
+the app's thread only, which :class:`PlotWidget` does by building in
+``render_line``. A built plot is kept as strips until the size, the style or
 what the subclass adds to the key change, so repaints cost nothing.
 """
 
@@ -15,15 +13,6 @@ from typing import Any, ClassVar
 from rich.style import Style
 from textual.strip import Strip
 from textual.widget import Widget
-
-from stepper.charts import figure
-
-
-def plotext_figure(width: int, height: int) -> Any:
-    """plotext's figure, cleared, colourless, without legend and ``width`` x ``height`` cells."""
-    fig: Any = figure(width, height)
-    fig.legend(False)
-    return fig
 
 
 class PlotWidget(Widget):

@@ -1,8 +1,9 @@
 """The slice panel: the cost along the selected weight, with every other weight held fixed.
 
-Left, a plotext plot of the swept cost (``*``), the tangent whose slope is the
-analytic slope (``.``), the current point (``O``) and where one plain step at
-the current rate lands (``X``); right, the figures: slope, curvature,
+Left, the plot of :func:`stepper.plots.slice_plot_text`: the swept cost
+(``*``), the tangent whose slope is the analytic slope (``.``), the current
+point (``O``) and where one plain step at the current rate lands (``X``);
+right, the figures: slope, curvature,
 ``rate x curvature`` and what it means for the rate, the step, the span.
 
 The numbers come from :func:`stepper.core.slice.cost_slice` through
@@ -13,12 +14,10 @@ plot is), sized to the widget's content area each time that size changes.
 
 from __future__ import annotations
 
-import math
 import re
 import textwrap
 from typing import ClassVar
 
-import numpy as np
 from rich.segment import Segment
 from rich.style import Style
 from rich.text import Text
@@ -27,14 +26,9 @@ from textual.containers import Horizontal
 from textual.strip import Strip
 from textual.widgets import Static
 
-from stepper.core.slice import CostSlice
+from stepper.plots import COST_MARK, NOW_MARK, STEP_MARK, TANGENT_MARK, slice_plot_text
 from stepper.ui.insight import SliceFigures
-from stepper.ui.plotwidget import PlotWidget, plotext_figure
-
-COST_MARK = "*"
-TANGENT_MARK = "."
-NOW_MARK = "O"
-STEP_MARK = "X"
+from stepper.ui.plotwidget import PlotWidget
 
 #: Where the verdict on ``rate x curvature`` comes from, short beside the verdict (the help
 #: screen names it in full, as stepper.core.slice does).
@@ -48,51 +42,6 @@ MEANING = {
     "diverges": "over 2: steps along this weight diverge",
     "no minimum": "curvature <= 0: no minimum, no limit on the rate",
 }
-
-
-def slice_plot_text(result: CostSlice, width: int, height: int) -> str:
-    """The slice as plain text, ``width`` x ``height`` cells. Call on the app's thread only.
-
-    The tangent is drawn only where it stays inside the cost curve's range, so a
-    steep tangent does not flatten the curve.
-    """
-    fig = plotext_figure(width, height)
-    costs = result.costs
-    finite = np.isfinite(costs)
-    lo = float(np.min(costs[finite])) if finite.any() else 0.0
-    hi = float(np.max(costs[finite])) if finite.any() else 1.0
-    pad = 0.05 * (hi - lo) if hi > lo else max(abs(hi), 1.0) * 1e-3
-    # The tangent first: where it runs along the curve the curve shows, where it parts the tangent does.
-    keep = np.isfinite(result.tangent) & (result.tangent >= lo - pad) & (result.tangent <= hi + pad)
-    if np.count_nonzero(keep) >= 2:
-        tangent = fig.signal(result.points[keep].tolist(), result.tangent[keep].tolist(), marker=TANGENT_MARK)
-        tangent.lines()
-        fig.draw(tangent)
-    if np.count_nonzero(finite) >= 2:
-        curve = fig.signal(result.points[finite].tolist(), costs[finite].tolist(), marker=COST_MARK)
-        curve.lines()
-        fig.draw(curve)
-    landing_shown = (result.points[0] <= result.landing <= result.points[-1]
-                     and math.isfinite(result.landing_cost) and lo - pad <= result.landing_cost <= hi + pad)
-    if landing_shown:
-        fig.draw(fig.signal([result.landing], [result.landing_cost], marker=STEP_MARK))
-    # Drawn last: when the step is too small to leave the current point's cell, the point shows.
-    fig.draw(fig.signal([result.value], [result.cost], marker=NOW_MARK))
-    fig.ruler("y").lim(lo - pad, hi + pad)
-    first, last = float(result.points[0]), float(result.points[-1])
-    fig.ruler("x").lim(first, last)
-    ticks = np.linspace(first, last, 3 if width < 50 else 5)
-    fig.ruler("x").ticks(ticks.tolist(), tick_labels(ticks.tolist()))
-    return str(fig.build().string(colorless=True))
-
-
-def tick_labels(ticks: list[float]) -> list[str]:
-    """Labels with the fewest significant digits (3 or more) that tell every tick apart."""
-    for digits in range(3, 16):
-        labels = [f"{t:.{digits}g}" for t in ticks]
-        if len(set(labels)) == len(labels):
-            return labels
-    return labels
 
 
 def slice_lines(figures: SliceFigures, width: int = 37) -> list[str]:
@@ -109,7 +58,8 @@ def slice_lines(figures: SliceFigures, width: int = 37) -> list[str]:
         lines.append(f"best rate 1/curv. {s.best_rate:.3g}, limit {2 * s.best_rate:.3g}")
     beyond = "" if s.points[0] <= s.landing <= s.points[-1] else " (beyond the span)"
     lines.append(f"one step {s.value:.4g} -> {s.landing:.4g}{beyond}")
-    lines.append(f"  cost {s.landing_cost:.6e} (model {s.model_cost:.4g})")
+    lines.append(f"  cost {s.landing_cost:.6e} (a parabola through the slope and curvature predicts "
+                 f"{s.model_cost:.4g})")
     lines.append(f"span +-{figures.span:.3g} {'automatic' if figures.automatic else 'set'}: < > T")
     return [piece for line in lines for piece in textwrap.wrap(line, width, subsequent_indent="  ")]
 
