@@ -223,3 +223,30 @@ def test_last_update_is_the_last_steps_change_until_an_undo_moves_the_weights(se
     assert s.last_update is None
     s.redo()
     assert s.last_update is None
+
+
+@pytest.mark.parametrize("name", list(OPERATIONS))
+def test_undo_back_to_the_saved_state_clears_unsaved(setup: Any, tmp_path: Path, name: str) -> None:
+    s = started(setup)
+    s.save_checkpoint(tmp_path / "saved.safetensors")
+    assert not s.dirty
+    OPERATIONS[name](s, tmp_path)
+    assert s.dirty or name == "load_checkpoint"  # a load is itself a saved state
+    s.undo()
+    assert not s.dirty, name  # back to exactly what the checkpoint holds
+    s.redo()
+    assert s.dirty or name == "load_checkpoint"
+    s.undo()
+    s.undo()  # one further back than the save: unsaved again
+    assert s.dirty
+
+
+def test_a_fresh_session_is_clean_again_after_undoing_everything(setup: Any) -> None:
+    s = Session(setup)
+    s.step(2)
+    s.set_rate(0.3)
+    assert s.dirty
+    s.undo()
+    s.undo()
+    assert not s.dirty
+    assert "step counter stays at 0" in (s.reset() or s.last_action or "")

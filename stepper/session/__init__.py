@@ -125,7 +125,7 @@ class Session(Stepping, Edits, Files, Training, Rates, Measures):
                 digest = entry.get("sha256")
                 self.load_checkpoint(Path(entry["path"]), None if force or digest is None else str(digest))
             elif op == "save":
-                self.dirty = False
+                self._mark_saved()
             elif self.apply_training(str(op), entry):
                 pass
             else:

@@ -9,8 +9,9 @@ change the model live in sibling modules (:mod:`.edits`, :mod:`.stepping`,
 from __future__ import annotations
 
 import copy
+import itertools
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Callable, Iterable
 
@@ -61,13 +62,18 @@ class StepReport:
     steps: int
 
 
+#: Numbers every operation made in this process, so that a saved state can be recognised again.
+_SERIALS = itertools.count(1)
+
+
 @dataclass
 class _Change:
-    """One undoable operation: the touched fields before and after it."""
+    """One undoable operation: the touched fields before and after it, and a number of its own."""
 
     name: str
     before: dict[str, Any]
     after: dict[str, Any]
+    serial: int = field(default_factory=lambda: next(_SERIALS))
 
     def nbytes(self) -> int:
         """Bytes of the arrays this change holds (an array both sides share counts once)."""
@@ -123,6 +129,9 @@ class SessionCore:
         self._undo_bytes = 0
         #: Bytes of saved arrays the undo levels may keep (stepper.session.undo).
         self.undo_budget = undo_budget(n)
+        #: The states written to or read from a checkpoint in this session, each known by the
+        #: serial of the last operation in effect then (0: the start, before any).
+        self._saved: set[int] = {0}
         self._version = 0
         self._changes = 0  # operations committed, undone or redone (any change of state)
         self._check_version = -1
@@ -355,6 +364,18 @@ class SessionCore:
         self.dirty = True
         self._log(journal)
 
+    def _top(self) -> int:
+        return self._undo[-1].serial if self._undo else 0
+
+    def _mark_saved(self) -> None:
+        """The state now is in a checkpoint (a save, or a load): nothing is unsaved."""
+        self._saved.add(self._top())
+        self.dirty = False
+
+    def _dirty_since_saved(self) -> None:
+        """After undo or redo: unsaved unless undo or redo came back to a state saved or loaded."""
+        self.dirty = self._top() not in self._saved
+
     def _log(self, entry: dict[str, Any] | None) -> None:
         if self.journal is not None and entry is not None:
             self.journal.append(entry)
@@ -371,7 +392,7 @@ class SessionCore:
         self._restore(change.before)
         self._forget_update(change.before)
         self._redo.append(change)
-        self.dirty = True
+        self._dirty_since_saved()
         self.last_action = f"undid {change.name}{self._cost_change(change, cost)}"
         self._log({"op": "undo"})
         return change.name
@@ -388,7 +409,7 @@ class SessionCore:
         self._forget_update(change.after)
         self._undo.append(change)
         self._undo_bytes += change.nbytes()
-        self.dirty = True
+        self._dirty_since_saved()
         self.last_action = f"redid {change.name}{self._cost_change(change, cost)}"
         self._log({"op": "redo"})
         return change.name

@@ -169,4 +169,5 @@ class Edits(SessionCore):
         before = self._snapshot(["theta", "rule_state"])
         after = {"theta": self.setup.theta0.copy(), "rule_state": fresh_state(self.rule, self.net.n_params)}
         self._manual_change("reset", before, after, {"op": "reset"})
-        self.last_action = f"reset to initial values: cost {before_cost:.6g} -> {self.train_cost():.6g}"
+        self.last_action = (f"reset every weight to its initial value (the step counter stays at {self.step_count} "
+                            f"and the cost history goes on): cost {before_cost:.6g} -> {self.train_cost():.6g}")

@@ -44,7 +44,7 @@ class Files(SessionCore):
         }
         save_checkpoint(target, self.net.layout,
                         CheckpointData(self.theta, self.rule_state.arrays, meta, last_update=self.last_update))
-        self.dirty = False
+        self._mark_saved()
         self.last_checkpoint = target
         self.last_action = f"saved {target}"
         self._log({"op": "save", "path": str(target)})
@@ -112,7 +112,7 @@ class Files(SessionCore):
         self.history[:] = history
         after = {**self._snapshot(fields), "history": (0, list(history))}
         self._commit(_Change(f"load {path.name}", before, after), {"op": "load", "path": str(path.resolve()), "sha256": data.sha256})
-        self.dirty = False
+        self._mark_saved()
         self.last_checkpoint = path
         note = "" if meta.get("model_digest") == self.setup.digest else " (the model file has changed since it was saved)"
         self.last_action = f"loaded {path} at step {self.step_count}{note}"
