@@ -76,14 +76,19 @@ AppCheck = Callable[[StepperApp, Pilot[Any], list[tuple[str, str]]], Awaitable[N
 def drive() -> Callable[..., StepperApp]:
     """Run the real app headless around one check; returns the app once it has closed.
 
-    Usage: ``drive(session, check, size=(100, 30))``. Animations are off (the
+    Usage: ``drive(session, check, size=(100, 30), numeric_budget=0.0)``; the
+    budget (seconds) is the app's for automatic numeric passes: off (0) unless
+    a test asks, so that no test depends on the speed of a shared machine
+    (tests of the automatic passes give a budget far above or below a pass's
+    time). Animations are off (the
     environment variable is read once, at import), the first screen settles
     (one pilot pause) before ``check(app, pilot, said)`` runs, and ``said``
     collects every notification as ``(message, severity)``.
     """
 
-    def run(session: Session, check: AppCheck, size: tuple[int, int] = (100, 30)) -> StepperApp:
-        app = StepperApp(session)
+    def run(session: Session, check: AppCheck, size: tuple[int, int] = (100, 30),
+            numeric_budget: float = 0.0) -> StepperApp:
+        app = StepperApp(session, numeric_budget=numeric_budget)
         app.animation_level = "none"
         said: list[tuple[str, str]] = []
         original = app.notify

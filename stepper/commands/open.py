@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import argparse
 import dataclasses
+import math
 import os
 import sys
 from pathlib import Path
@@ -50,9 +51,23 @@ def add_parser(subs: Any) -> None:
                    help="standard deviation of the noise the perturb keys add (default 0.01)")
     p.add_argument("--check-every-step", action="store_true",
                    help="recompute the numeric slopes after every step (a key turns it on and off)")
+    p.add_argument("--numeric-budget", type=_budget, default=50.0, metavar="MS",
+                   help="milliseconds a numeric pass may take to be redone by itself after every change "
+                   "(default 50; 0: only when asked, with #)")
     p.add_argument("--log", type=Path, default=None, metavar="PATH",
                    help=f"log file while the app runs (default {default_log_file()})")
     p.set_defaults(handler=handle)
+
+
+def _budget(text: str) -> float:
+    """A budget in milliseconds: a finite number, 0 or more."""
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a number of milliseconds") from None
+    if not (math.isfinite(value) and value >= 0):
+        raise argparse.ArgumentTypeError(f"{text!r} must be 0 or more milliseconds")
+    return value
 
 
 def cut_samples(setup: Setup, n: int) -> Setup:
@@ -96,6 +111,7 @@ def handle(args: argparse.Namespace) -> int:
             apply_step_options(session, args)
         session.set_runaway(runaway_rule(args))
         session.set_refresh_after_step(bool(args.check_every_step))
-        return run_app(session, args.log or default_log_file(), noise=args.noise)
+        return run_app(session, args.log or default_log_file(), noise=args.noise,
+                       numeric_budget=args.numeric_budget / 1000.0)
     finally:
         session.close()

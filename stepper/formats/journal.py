@@ -44,6 +44,8 @@ class JournalWriter:
         try:
             self.path.parent.mkdir(parents=True, exist_ok=True)
             cut = _ends_mid_line(self.path)
+            # Mode as for every file Stepper writes (see .atomic): 0666 less the umask when new;
+            # appending keeps the mode an existing journal has.
             self._handle: IO[str] = open(self.path, "a", encoding="utf-8")
         except OSError as exc:
             raise CheckpointError(f"{path}: cannot write the journal ({exc.strerror})") from None

@@ -28,11 +28,10 @@ from typing import ClassVar, Iterator
 from textual.app import ComposeResult
 from textual.binding import BindingType
 from textual.containers import Container
-from textual.widgets import Footer
 
 from stepper.errors import UsageError
 from stepper.session import Session
-from stepper.ui.base import DEFAULT_NOISE, log
+from stepper.ui.base import DEFAULT_BUDGET, DEFAULT_NOISE, log
 from stepper.ui.costplot import CostPlot
 from stepper.ui.descent import DescentKeys
 from stepper.ui.edits import EditKeys, ViewKeys
@@ -40,12 +39,18 @@ from stepper.ui.factorpanel import FactorPanel
 from stepper.ui.files import FileKeys
 from stepper.ui.healthpanel import HealthPanel
 from stepper.ui.jobs import Jobs
+from stepper.ui.keybar import KeyBar
 from stepper.ui.keys import bindings
-from stepper.ui.panels import JobBar, RatePanel, StatusLine
+from stepper.ui.panels import JobBar, StatusLine
+from stepper.ui.ratepanel import RatePanel
 from stepper.ui.slicepanel import SlicePanel
 from stepper.ui.slopes import SlopeKeys
 from stepper.ui.weights import WeightTable
 from stepper.ui.why import WhyKeys
+
+
+#: Columns from which the plot column sits beside the table instead of below it.
+WIDE = 140
 
 
 class StepperApp(DescentKeys, SlopeKeys, EditKeys, ViewKeys, WhyKeys, FileKeys, Jobs):
@@ -57,7 +62,7 @@ class StepperApp(DescentKeys, SlopeKeys, EditKeys, ViewKeys, WhyKeys, FileKeys, 
     CSS_PATH = "app.tcss"
     TITLE = "stepper"
     ENABLE_COMMAND_PALETTE = False
-    HORIZONTAL_BREAKPOINTS = [(0, "-narrow"), (140, "-wide")]
+    HORIZONTAL_BREAKPOINTS = [(0, "-narrow"), (WIDE, "-wide")]
     BINDINGS: ClassVar[list[BindingType]] = bindings("app")  # type: ignore[assignment]
 
     def compose(self) -> ComposeResult:
@@ -71,7 +76,9 @@ class StepperApp(DescentKeys, SlopeKeys, EditKeys, ViewKeys, WhyKeys, FileKeys, 
                 yield FactorPanel(id="factors", classes="why")
                 yield HealthPanel(id="health", classes="why")
         yield JobBar(id="job")
-        yield Footer()
+        yield KeyBar(id="keys")
+
+    _table_cap: int | None = None
 
     def on_mount(self) -> None:
         self.sub_title = self.session.setup.name
@@ -81,6 +88,17 @@ class StepperApp(DescentKeys, SlopeKeys, EditKeys, ViewKeys, WhyKeys, FileKeys, 
             self.table.source_file = origin.file.name
         self.refresh_view()
         self.table.focus()
+        self._fit_table()
+
+    def on_resize(self) -> None:
+        self._fit_table()
+
+    def _fit_table(self) -> None:
+        """Beside the plot (wide screens) the table takes no more columns than its lines need."""
+        width = self.table.natural_width() if self.size.width >= WIDE else None
+        if width != self._table_cap:
+            self._table_cap = width
+            self.table.styles.max_width = width
 
 
 @contextmanager
@@ -111,9 +129,13 @@ def log_to_file(log_file: Path) -> Iterator[None]:
         handler.close()
 
 
-def run_app(session: Session, log_file: Path, noise: float = DEFAULT_NOISE) -> int:
-    """Run the app on the terminal until the user quits; returns the exit code."""
+def run_app(session: Session, log_file: Path, noise: float = DEFAULT_NOISE,
+            numeric_budget: float = DEFAULT_BUDGET) -> int:
+    """Run the app on the terminal until the user quits; returns the exit code.
+
+    ``numeric_budget``: seconds a numeric pass may take to be redone by itself after every change.
+    """
     with log_to_file(log_file):
         log.info("open %s", session.setup.path)
-        StepperApp(session, noise=noise).run()
+        StepperApp(session, noise=noise, numeric_budget=numeric_budget).run()
     return 0

@@ -20,15 +20,18 @@ from typing import TYPE_CHECKING, Any, Callable, Sequence
 
 from textual.app import App
 from textual.filter import LineFilter
+from textual.notifications import SeverityLevel
 from textual.screen import ModalScreen
 from textual.worker import Worker
 
-from stepper.errors import StepperError, UsageError
+from stepper.errors import DivergenceError, StepperError, UsageError
 from stepper.ui.costplot import CostPlot
 from stepper.ui.dialogs import AskScreen
 from stepper.ui.insight import Figures, InputChecks, SliceFigures
 from stepper.ui.keys import KEYS
-from stepper.ui.panels import RatePanel, StatusLine
+from stepper.ui.keybar import KeyBar
+from stepper.ui.panels import Note, StatusInfo, StatusLine
+from stepper.ui.ratepanel import RatePanel, RateSearch, search_rates
 from stepper.ui.snapshot import HistoryArrays, Snapshot, take
 from stepper.ui.theme import THEME, AsciiOnly, NoColour, drawing_mode
 from stepper.ui.weights import WeightTable
@@ -43,6 +46,13 @@ _MAIN_ACTIONS = frozenset(k.action.split("(")[0] for k in KEYS if k.scope == "ap
 
 #: Standard deviation of the noise ``p`` and ``P`` add, unless the command line says otherwise.
 DEFAULT_NOISE = 0.01
+#: Seconds a numeric pass may take to be redone by itself after every change (``--numeric-budget``).
+DEFAULT_BUDGET = 0.05
+#: A pass over the budget by less than this factor is tried once more before the automatic passes stop.
+OVER_BUDGET_AGAIN = 4.0
+#: What the app adds to a refused or runaway step's message: the keys that lead back.
+BACK_KEYS = "Keys: v shows the rate preview, V adopts its best rate."
+BACK_KEYS_KEPT = "Keys: z takes the steps back, v shows the rate preview, V adopts its best rate."
 
 
 def parse_float(text: str, what: str) -> float:
@@ -67,10 +77,20 @@ def parse_count(text: str, what: str) -> int:
     return value
 
 
+def duration_text(seconds: float) -> str:
+    """``12 ms``, ``1.3 s``, ``4 min``: a duration as a person says it."""
+    if seconds < 1.0:
+        return f"{seconds * 1000:.0f} ms"
+    if seconds < 120.0:
+        return f"{seconds:.2g} s"
+    return f"{seconds / 60:.0f} min"
+
+
 class AppBase(App[None]):
     """The app's state and shared helpers; the handler modules add the keys."""
 
-    def __init__(self, session: Session, *, noise: float = DEFAULT_NOISE, default_steps: int = 100) -> None:
+    def __init__(self, session: Session, *, noise: float = DEFAULT_NOISE, default_steps: int = 100,
+                 numeric_budget: float = DEFAULT_BUDGET) -> None:
         super().__init__()
         self.register_theme(THEME)
         self.theme = THEME.name
@@ -103,6 +123,17 @@ class AppBase(App[None]):
         self._shown_index: int | None = None
         self._input_checks: InputChecks | None = None
         self._last_error: str | None = None
+        #: The app's last message, shown in the status line until the next operation.
+        self.note: Note | None = None
+        #: Why the numeric slopes are not recomputed by themselves (a pass costs too much), or None.
+        self.numeric_reason: str | None = None
+        #: Seconds a numeric pass may take to be redone by itself after every change (0: never).
+        self.numeric_budget = numeric_budget
+        #: Seconds the last whole numeric pass took (or would take, estimated), or None before the first.
+        self.numeric_seconds: float | None = None
+        self._numeric_failed_at: int | None = None
+        self._over_budget = 0
+        self._steps_at_start = 0
         self._snapshot_problem: str | None = None
         self._worker_waiting = False
 
@@ -121,7 +152,11 @@ class AppBase(App[None]):
     # -- drawing ---------------------------------------------------------------------------
 
     def refresh_view(self) -> None:
-        """Redraw every widget from a new snapshot of the session (on the app's thread only)."""
+        """Redraw every widget from a new snapshot of the session (on the app's thread only).
+
+        Numeric slopes that are out of date are first recomputed, when a pass fits the budget.
+        """
+        self.keep_numeric_current()
         snap = take(self.session, self._history)
         self.snapshot = snap
         self.table.show(snap)
@@ -138,28 +173,67 @@ class AppBase(App[None]):
 
     def _show_status(self) -> None:
         if self.snapshot is not None:
-            job = None if self.job is None else f"running: {self.job} (x cancels)"
-            self.query_one(StatusLine).show(self.snapshot, self.session.refresh_numeric_after_step, job)
+            why = None
+            if self.snapshot.has_check and not self.snapshot.stale and self.session.check is not None:
+                inputs = self._input_checks
+                current = inputs if inputs is not None and inputs.version == self.snapshot.version else None
+                hints = self.figures.hints(self.session.check, current)
+                why = hints[0] if hints else None
+            info = StatusInfo(self.session.refresh_numeric_after_step, self.job, self.note, self.numeric_reason,
+                              why)
+            self.query_one(StatusLine).show(self.snapshot, info)
+        context = {self.why} if self.why in ("slice", "factors") else set()
+        if self.job is not None:
+            context.add("job")
+        self.query_one(KeyBar).set_context(frozenset(c for c in context if c is not None))
 
     def _show_rates(self) -> None:
         try:
-            preview = self.session.preview_rates()
+            search = search_rates(self.session.preview_rates)
         except StepperError as exc:  # a custom layer's code raised
-            self.query_one(RatePanel).show([], self.session.rate, None)
+            self.query_one(RatePanel).show(RateSearch((), None, None, 0), self.session.rate)
             self._problem(exc.message)
             return
-        best = self.session.best_preview_rate(preview) if preview else None
-        self.query_one(RatePanel).show(preview, self.session.rate, best)
+        self.query_one(RatePanel).show(search, self.session.rate)
 
     def _show_why(self) -> None:
         """Draw the shown "why" panel (:mod:`stepper.ui.why` gives the body)."""
         raise NotImplementedError
+
+    def keep_numeric_current(self) -> None:
+        """Recompute out-of-date numeric slopes when a pass fits the budget (:mod:`stepper.ui.slopes`)."""
+        raise NotImplementedError
+
+    def _input_checks_done(self, checks: InputChecks) -> None:
+        """Keep the custom layers' input-slope checks (the health panel and the status line's hint read them)."""
+        self._input_checks = checks
 
     def check_action(self, action: str, parameters: tuple[object, ...]) -> bool | None:
         """The main screen's keys do nothing while a dialog is open (Textual would still run them)."""
         if action in _MAIN_ACTIONS and isinstance(self.screen, ModalScreen):
             return False
         return True
+
+    def numeric_pass_took(self, seconds: float, estimated: bool = False) -> None:
+        """Record how long a whole numeric pass takes (or would take), and say why if over the budget.
+
+        One pass over the budget by less than OVER_BUDGET_AGAIN times is tried once
+        more at the next change (a first pass also pays for warming up) before the
+        automatic passes stop.
+        """
+        if seconds <= self.numeric_budget:
+            self.numeric_seconds = seconds
+            self.numeric_reason = None
+            self._over_budget = 0
+            return
+        self._over_budget += 1
+        if self._over_budget < 2 and seconds < OVER_BUDGET_AGAIN * self.numeric_budget:
+            return
+        self.numeric_seconds = seconds
+        about = "about " if estimated else ""
+        budget = ("automatic passes are off (--numeric-budget 0)" if self.numeric_budget <= 0 else
+                  f"over the {duration_text(self.numeric_budget)} budget of --numeric-budget")
+        self.numeric_reason = f"a pass takes {about}{duration_text(seconds)}, {budget}"
 
     # -- jobs (bodies in stepper.ui.jobs and stepper.ui.descent) -----------------------------
 
@@ -178,11 +252,23 @@ class AppBase(App[None]):
     # -- helpers ---------------------------------------------------------------------------
 
     def say(self, message: str, error: bool = False) -> None:
-        """A notification; never markup, since weight names contain brackets."""
+        """A message in the status line (see :meth:`notify`); never markup, since weight names contain brackets."""
         if error:
             self._last_error = message
         self.notify(message, severity="error" if error else "information", markup=False,
                     timeout=8 if error else 4)
+
+    def notify(self, message: str, *, title: str = "", severity: SeverityLevel = "information",
+               timeout: float | None = None, markup: bool = True) -> None:
+        """Stepper's messages go to the status line's last lines, wrapped whole, not to pop-ups.
+
+        A pop-up would lie over the plot for seconds and cut paths mid-word at 80
+        columns; the status line keeps the message, and a word (``problem:``) says
+        it is one without colour. It stays until the next operation or message.
+        """
+        log.info("%s: %s", severity, message)
+        self.note = Note(f"{title}: {message}" if title else message, error=severity != "information")
+        self._show_status()
 
     def _problem(self, message: str) -> None:
         """An error found while drawing (not asked for by a key): said once, not on every redraw."""
@@ -205,11 +291,31 @@ class AppBase(App[None]):
             operation()
         except StepperError as exc:
             log.info("refused: %s", exc.message)
-            self.say(exc.message, error=True)
             self.refresh_view()
+            self.refused(exc)
             return False
+        self.note = None  # the session's own account of the operation shows now
         self.refresh_view()
         return True
+
+    def refused(self, exc: StepperError, kept: bool = False) -> None:
+        """Say why an operation or a job stopped; a step that blew up also gets the keys that lead back.
+
+        ``kept``: steps of the job were made and kept (undo takes them back). A
+        refused or runaway step opens the rate preview.
+        """
+        if not isinstance(exc, DivergenceError):
+            self.say(exc.message, error=True)
+            return
+        self.say(f"{exc.message} {BACK_KEYS_KEPT if kept else BACK_KEYS}", error=True)
+        self.show_preview()
+
+    def show_preview(self, shown: bool = True) -> None:
+        """Show (or hide) the rate preview beside the cost plot."""
+        self.show_rates = shown
+        self.query_one(RatePanel).set_class(shown, "-shown")
+        if shown and self.job is None:
+            self._show_rates()  # otherwise the end of the job fills it
 
     def selected(self) -> int | None:
         """Flat index of the selected weight, or None (and a message) when no row is shown."""

@@ -9,7 +9,7 @@ from stepper.errors import StepperError, UsageError
 from stepper.session import SLOPE_SOURCES
 from stepper.ui.base import AppBase, parse_count, parse_float
 from stepper.ui.dialogs import ChoiceScreen
-from stepper.ui.panels import RatePanel
+from stepper.ui.ratepanel import search_rates
 
 RULE_TEXT = {
     "gd": "plain gradient descent",
@@ -99,21 +99,22 @@ class DescentKeys(AppBase):
     # -- rate preview ----------------------------------------------------------------------
 
     def action_toggle_preview(self) -> None:
-        self.show_rates = not self.show_rates
-        self.query_one(RatePanel).set_class(self.show_rates, "-shown")
-        if self.show_rates and self.job is None:
-            self._show_rates()  # otherwise the end of the job fills it
+        self.show_preview(not self.show_rates)
 
     def action_adopt_best_rate(self) -> None:
         if self.busy():
             return
         try:
-            preview = self.session.preview_rates()
+            search = search_rates(self.session.preview_rates)
         except StepperError as exc:
             self.say(exc.message, error=True)
             return
-        best = self.session.best_preview_rate(preview)
+        best = search.best
+        if best is None:
+            self.say(search.note() or "no rate to adopt", error=True)
+            return
         if math.isclose(best, self.session.rate, rel_tol=1e-12):
             self.say(f"the current rate {best:g} is already the best of the preview")
             return
-        self.apply(lambda: self.session.set_rate(best))
+        if self.apply(lambda: self.session.set_rate(best)) and search.edge is not None:
+            self.say(f"rate {best:g} adopted; {search.note()}")

@@ -131,15 +131,24 @@ class QuitScreen(ModalScreen[str]):
 
 
 class ConfirmScreen(ModalScreen[bool]):
-    """A yes/no question: ``y`` answers yes, any other key no."""
+    """A yes/no question: ``y`` answers yes, any other key no.
 
-    def __init__(self, question: str) -> None:
+    ``question`` is the title, ``detail`` (wrapped at word boundaries, a long
+    path included) says what it is about, ``yes`` what ``y`` does.
+    """
+
+    def __init__(self, question: str, detail: str = "", yes: str = "yes") -> None:
         super().__init__()
         self.question = question
+        self.detail = detail
+        self.yes = yes
 
     def compose(self) -> ComposeResult:
         with Vertical(classes="dialog"):
-            yield Label(self.question)
+            yield Label(self.question, classes="dialog-title")
+            if self.detail:
+                yield Label(self.detail, id="detail")
+            yield Label(f"y  {self.yes}\nany other key  no", id="keys")
 
     def on_key(self, event: events.Key) -> None:
         event.stop()

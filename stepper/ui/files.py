@@ -54,7 +54,7 @@ class FileKeys(AppBase):
                 export = (next((w for w in options if w in LAYOUTS), None),
                           next((w for w in options if w in DTYPES), None))
             if path.exists():
-                self.push_screen(ConfirmScreen(f"{path} exists. Overwrite it? (y: yes, any other key: no)"),
+                self.push_screen(ConfirmScreen("Overwrite the file?", f"{path} exists.", "overwrite it"),
                                  lambda yes: write(path, export) if yes else self.say("nothing saved"))
             else:
                 write(path, export)

@@ -108,14 +108,14 @@ def _input_lines(f: HealthFigures) -> list[str]:
         return []
     if f.inputs is None:
         return [f"custom layer{'s' if len(f.custom) > 1 else ''} "
-                f"{', '.join('L' + str(i + 1) for i in f.custom)}: input slopes (dX) not checked yet (c checks)"]
-    stale = " (weights changed since; c again)" if f.inputs_stale else ""
+                f"{', '.join('L' + str(i + 1) for i in f.custom)}: input slopes (dX) not checked yet (# checks)"]
+    stale = " (weights changed since; # again)" if f.inputs_stale else ""
     out = []
     for c in f.inputs:
         counts = c.counts
-        verdict = "agrees" if c.passed else "DISAGREES"
+        verdict = "agree" if c.passed else "disagree"
         out.append(f"L{c.layer + 1} {f.kinds[c.layer]} input slopes (dX): {verdict}: {counts['agree']} agree "
-                   f"{counts['doubtful']} doubtful {counts['disagree']} DISAGREE {counts['kink']} kink~ on "
+                   f"{counts['doubtful']} doubtful {counts['disagree']} disagree {counts['kink']} kink on "
                    f"{c.samples.size} samples, worst {c.worst_error:.1e}{stale}")
     return out
 

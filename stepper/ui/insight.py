@@ -20,6 +20,8 @@ from numpy.typing import NDArray
 
 from stepper.core.breakdown import Breakdown, slope_breakdown
 from stepper.core.compare import relative_error
+from stepper.core.diagnosis import diagnose
+from stepper.core.gradcheck import CheckResult
 from stepper.core.health import HealthReport, layer_health
 from stepper.core.input_slopes import InputSlopeCheck, check_input_slopes
 from stepper.core.layers import Dense
@@ -122,6 +124,7 @@ class Figures:
             for layer in net.layers
         )
         self._last: dict[str, tuple[tuple[Any, ...], Any]] = {}
+        self._hints: tuple[CheckResult, InputChecks | None, list[str]] | None = None
 
     def _cached(self, panel: str, key: tuple[Any, ...], compute: Callable[[], Any]) -> Any:
         hit = self._last.get(panel)
@@ -172,6 +175,19 @@ class Figures:
         checks = None if inputs is None else inputs.checks
         stale = inputs is not None and inputs.version != snap.version
         return HealthFigures(report, self.kinds, self.custom, checks, stale)
+
+    def hints(self, check: CheckResult, inputs: InputChecks | None) -> list[str]:
+        """The likely causes of ``check``'s disagreements, one sentence each (empty when all agree).
+
+        ``inputs`` count only when they were taken at the check's weights.
+        """
+        last = self._hints
+        if last is not None and last[0] is check and last[1] is inputs:
+            return last[2]
+        checks = () if inputs is None else inputs.checks
+        hints = [h.text for h in diagnose(self.net, check, self.data.X.shape[0], checks)]
+        self._hints = (check, inputs, hints)
+        return hints
 
     def input_slopes(self, theta: Array, cancelled: Callable[[], bool]) -> tuple[InputSlopeCheck, ...] | None:
         """Input-slope checks of every custom layer at ``theta`` ``(n_params,)``; None if cancelled.

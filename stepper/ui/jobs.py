@@ -29,6 +29,7 @@ class Jobs(AppBase):
     """Start, drive and end the app's background jobs."""
 
     def start_steps(self, n: int) -> None:
+        self._steps_at_start = self.session.step_count
         self._begin("steps", n)
         self._worker = self._steps_worker(n)
 
@@ -65,7 +66,7 @@ class Jobs(AppBase):
         worker = get_current_worker()
         error: StepperError | None = None
         cancelled = False
-        last = time.monotonic()
+        start = last = time.monotonic()
         try:
             for done, total in job:
                 if worker.is_cancelled:
@@ -81,7 +82,7 @@ class Jobs(AppBase):
             error = exc
         finally:
             job.close()
-        self._from_worker(self._job_done, name, error, cancelled)
+        self._from_worker(self._job_done, name, error, cancelled, time.monotonic() - start)
 
     def _check_input_slopes(self, worker: Worker[None]) -> bool:
         """As `stepper check` does: the custom layers' dX against numeric input slopes; True if cancelled."""
@@ -93,15 +94,6 @@ class Jobs(AppBase):
             return True
         self._from_worker(self._input_checks_done, InputChecks(version, checks))
         return False
-
-    def _input_checks_done(self, checks: InputChecks) -> None:
-        self._input_checks = checks
-        for c in checks.checks:
-            if not c.passed:
-                bad = c.counts["disagree"]
-                self.say(f"custom layer L{c.layer + 1} ({c.label}): its backward pass's dX disagrees with "
-                         f"numeric input slopes on {bad} of {c.analytic.size} entries (h: layer health)",
-                         error=True)
 
     def _from_worker(self, callback: Callable[..., None], *args: Any) -> None:
         """``call_from_thread`` that gives up quietly when the app has already closed."""
@@ -120,14 +112,16 @@ class Jobs(AppBase):
             finally:
                 self._worker_waiting = False
 
-    def _job_done(self, job: str, error: StepperError | None, cancelled: bool) -> None:
+    def _job_done(self, job: str, error: StepperError | None, cancelled: bool, seconds: float) -> None:
         self.job = None
         self._worker = None
         self.query_one(JobBar).stop()
+        if job == "numeric slopes" and error is None and not cancelled:
+            self.numeric_pass_took(seconds)
         self.refresh_view()
         if error is not None:
             log.info("%s stopped: %s", job, error.message)
-            self.say(error.message, error=True)
+            self.refused(error, kept=job == "steps" and self.session.step_count > self._steps_at_start)
         elif cancelled:
             self.say(f"{job} cancelled" + (f"; kept: {self.session.last_action}" if job == "steps" else ""))
         elif job == "steps":

@@ -23,9 +23,12 @@ class Key:
         label: a word or two for the footer.
         help: one line for the help screen.
         group: heading on the help screen.
-        footer: shown in the footer.
+        footer: place in the key bar at the bottom (1 first); 0 keeps it off the bar. The bar
+            shows as many as fit the width, in this order, so a narrow screen keeps the first.
         display: how the key is written on screen.
         scope: ``app`` or ``table``.
+        when: the key bar shows it only then: ``job`` (a job runs), ``slice`` or ``factors``
+            (that panel is shown); it then comes first. Empty: always (if ``footer``).
     """
 
     keys: str
@@ -33,9 +36,10 @@ class Key:
     label: str
     help: str
     group: str
-    footer: bool = False
+    footer: int = 0
     display: str | None = None
     scope: str = "app"
+    when: str = ""
 
     @property
     def shown_as(self) -> str:
@@ -50,34 +54,35 @@ class Key:
 
 
 #: How a few key names are written on screen.
-_WRITTEN = {"equals_sign": "=", "escape": "esc", "question_mark": "?"}
+_WRITTEN = {"equals_sign": "=", "escape": "esc", "question_mark": "?", "number_sign": "#"}
 
 
 KEYS: tuple[Key, ...] = (
     # -- descent ---------------------------------------------------------------------------
-    Key("s", "step", "step", "take one step of the update rule", "descent", footer=True),
-    Key("n", "run_steps", "run", "run N steps (asks for N); the job bar shows progress", "descent",
-        footer=True),
+    Key("s", "step", "step", "take one step of the update rule", "descent", footer=1),
+    Key("S", "run_steps", "steps", "run many steps (asks how many); the job bar shows progress, x stops",
+        "descent", footer=2),
     Key("x,escape", "cancel_job", "cancel", "cancel the running job (steps or numeric slopes), keeping what is done",
-        "descent", display="x"),
-    Key("plus,equals_sign", "double_rate", "rate*2", "double the rate", "descent", footer=True,
+        "descent", display="x", footer=1, when="job"),
+    Key("plus,equals_sign", "double_rate", "rate*2", "double the rate", "descent", footer=5,
         display="+"),
-    Key("minus", "halve_rate", "rate/2", "halve the rate", "descent", footer=True, display="-"),
-    Key("r", "type_rate", "rate", "type a rate", "descent"),
+    Key("minus", "halve_rate", "rate/2", "halve the rate", "descent", footer=6, display="-"),
+    Key("r", "type_rate", "rate", "type a rate", "descent", footer=12),
     Key("u", "choose_rule", "rule", "choose the update rule (gd, momentum, adam)", "descent"),
     Key("g", "toggle_source", "slopes from", "switch the slopes a step follows: analytic or numeric",
         "descent"),
     Key("m", "type_batch", "batch", "type the mini-batch size (empty for the full batch)", "descent"),
     Key("v", "toggle_preview", "rates", "show or hide the rate preview: the cost after one step at each "
-        "candidate rate", "descent"),
-    Key("b", "adopt_best_rate", "best rate", "adopt the rate that the preview finds best", "descent"),
+        "candidate rate", "descent", footer=9),
+    Key("V", "adopt_best_rate", "best rate", "adopt the rate that the preview finds best", "descent",
+        footer=10),
     # -- slopes ----------------------------------------------------------------------------
-    Key("c", "compute_check", "check", "recompute the numeric slopes now (a job; x cancels)", "slopes",
-        footer=True),
-    Key("C", "compute_rest", "check all", "compute the numeric slopes a check left out (a model over "
-        "20,000 weights is checked on a sample of 5,000 first), or all when the weights changed", "slopes"),
-    Key("a", "toggle_auto_check", "auto check", "recompute the numeric slopes after every step: on/off",
-        "slopes"),
+    Key("number_sign", "compute_check", "numeric", "recompute the numeric slopes now (a job; x cancels; a model "
+        "over 20,000 weights is checked on a sample of 5,000 first)", "slopes", display="#", footer=4),
+    Key("C", "compute_rest", "numeric all", "compute the numeric slopes a pass left out, or all when the "
+        "weights changed", "slopes"),
+    Key("a", "toggle_auto_check", "auto numeric", "recompute the numeric slopes after every step, "
+        "whatever they cost: on/off", "slopes", footer=16),
     # -- weights ---------------------------------------------------------------------------
     Key("f", "freeze_weight", "freeze", "freeze or unfreeze the selected weight", "weights"),
     Key("F", "freeze_layer", "freeze layer", "freeze or unfreeze the whole layer of the selected weight",
@@ -86,7 +91,7 @@ KEYS: tuple[Key, ...] = (
     Key("P", "perturb_all", "nudge all", "perturb every unfrozen weight with Gaussian noise", "weights"),
     Key("e", "edit_value", "edit", "type a new value for the selected weight", "weights"),
     Key("R", "reset", "reset", "put every weight back to its initial value (undoable)", "weights"),
-    Key("z", "undo", "undo", "undo the last operation", "weights", footer=True),
+    Key("z", "undo", "undo", "undo the last operation", "weights", footer=7),
     Key("Z", "redo", "redo", "redo what was undone", "weights"),
     # -- table -----------------------------------------------------------------------------
     Key("up", "cursor(-1)", "up", "select the weight above", "table", display="up", scope="table"),
@@ -108,26 +113,29 @@ KEYS: tuple[Key, ...] = (
     # -- plot and files --------------------------------------------------------------------
     Key("y", "toggle_log", "log cost", "cost plot: log or linear y axis", "plot"),
     Key("w", "save", "save", "save a checkpoint, or export the weights (asks for the path)", "files",
-        footer=True),
+        footer=11),
     Key("l", "load", "load", "load a checkpoint (asks for the path)", "files"),
-    Key("question_mark,f1", "help", "help", "this list of keys", "app", footer=True, display="?"),
-    Key("q", "quit", "quit", "quit (asks first when there are unsaved changes)", "app", footer=True),
-    # -- why: last, so that a narrow footer drops these before ? and q (t and h fit in 100
-    # columns; each panel lists its own keys) ---------------------------------------------
+    Key("question_mark,f1", "help", "help", "this list of keys", "app", footer=-2, display="?"),
+    Key("q", "quit", "quit", "quit (asks first when there are unsaved changes)", "app", footer=-1),
+    # -- why ---------------------------------------------------------------------------------
     Key("t", "toggle_slice", "slice", "show or hide the cost along the selected weight: its tangent, "
-        "its curvature, and where one step at the current rate lands", "why", footer=True),
-    Key("greater_than_sign", "widen_span", "wider", "slice: sweep twice as wide", "why", display=">"),
-    Key("less_than_sign", "narrow_span", "narrower", "slice: sweep half as wide", "why", display="<"),
-    Key("T", "type_span", "span", "slice: type the half-width of the sweep (empty: automatic)", "why"),
+        "its curvature, and where one step at the current rate lands", "why", footer=13),
+    Key("greater_than_sign", "widen_span", "wider", "slice: sweep twice as wide", "why", display=">",
+        footer=1, when="slice"),
+    Key("less_than_sign", "narrow_span", "narrower", "slice: sweep half as wide", "why", display="<",
+        footer=2, when="slice"),
+    Key("T", "type_span", "span", "slice: type the half-width of the sweep (empty: automatic)", "why",
+        footer=3, when="slice"),
     Key("i", "toggle_factors", "factors", "show or hide the selected weight's slope taken apart: error "
-        "signal x activation slope x input, averaged and for one sample", "why"),
-    Key("full_stop", "next_sample", "next sample", "factors: show the next sample", "why", display="."),
+        "signal x activation slope x input, averaged and for one sample", "why", footer=14),
+    Key("full_stop", "next_sample", "next sample", "factors: show the next sample", "why", display=".",
+        footer=1, when="factors"),
     Key("comma", "previous_sample", "prev sample", "factors: show the previous sample", "why",
-        display=","),
+        display=",", footer=2, when="factors"),
     Key("I", "type_sample", "sample", "factors: type a sample number (empty: the one that contributes "
-        "most)", "why"),
+        "most)", "why", footer=3, when="factors"),
     Key("h", "toggle_health", "health", "show or hide layer health: sizes of weights and slopes, "
-        "update-to-weight ratio, saturated and dead units, slopes layer by layer", "why", footer=True),
+        "update-to-weight ratio, saturated and dead units, slopes layer by layer", "why", footer=15),
 )
 
 #: Help-screen headings in order.
@@ -135,9 +143,22 @@ GROUPS = ("descent", "slopes", "why", "weights", "table", "plot", "files", "app"
 
 
 def bindings(scope: str) -> list[Binding]:
-    """Textual bindings for the keys of one scope."""
+    """Textual bindings for the keys of one scope (the key bar, not Textual's footer, shows them)."""
     return [
-        Binding(k.keys, k.action, k.label, show=k.footer, key_display=k.display)
+        Binding(k.keys, k.action, k.label, show=False, key_display=k.display)
         for k in KEYS
         if k.scope == scope
     ]
+
+
+def bar_keys(context: frozenset[str] = frozenset()) -> tuple[list[Key], list[Key]]:
+    """The keys of the key bar: ``(in order of importance, the ones that end the bar)``.
+
+    First the keys whose ``when`` is in ``context`` (``job``, ``slice``,
+    ``factors``), then the other numbered keys; ``?`` and ``q`` carry negative
+    numbers and end the bar, which drops other keys before them.
+    """
+    shown = [k for k in KEYS if k.footer > 0 and (not k.when or k.when in context)]
+    first = sorted((k for k in shown if k.when), key=lambda k: k.footer)
+    rest = sorted((k for k in shown if not k.when), key=lambda k: k.footer)
+    return first + rest, sorted((k for k in KEYS if k.footer < 0), key=lambda k: k.footer)

@@ -4,7 +4,8 @@ from __future__ import annotations
 
 import math
 import textwrap
-from typing import Generic, Sequence, TypeVar
+from dataclasses import dataclass
+from typing import Generic, TypeVar
 
 from rich.text import Text
 from textual.app import ComposeResult
@@ -25,73 +26,161 @@ def cost_text(value: float | None) -> str:
     return f"{value:.6g}"
 
 
-def status_lines(snap: Snapshot, auto_check: bool, job: str | None = None) -> list[str]:
-    """The status line's text, one string per screen line (each fits 80 columns when it can)."""
-    val = "" if snap.val_cost is None else f"  val {cost_text(snap.val_cost)}"
-    first = (f"step {snap.step_count}  train {cost_text(snap.train_cost)}{val}  rate {snap.rate:.4g}  "
-             f"{snap.rule}  {snap.slope_source} slopes")
-    if snap.has_check:
-        c = snap.counts
-        check = f"{c['agree']} agree {c['doubtful']} doubtful {c['disagree']} DISAGREE {c['kink']} kink"
-        if snap.n_checked < snap.n_params:
-            check += f" of {snap.n_checked:,} checked (C: all {snap.n_params:,})"
-        if snap.stale:
-            check += " (stale)"
-    else:
-        check = "numeric slopes not computed (c)"
-    flags = [check]
-    if snap.dirty:
-        flags.append("unsaved")
-    if snap.undo_levels:
-        flags.append(f"undo {snap.undo_levels}")
+@dataclass(frozen=True)
+class Note:
+    """Something the app said: a refusal or an error (``error``), or a plain message."""
+
+    text: str
+    error: bool = False
+
+
+@dataclass(frozen=True)
+class StatusInfo:
+    """What the status line shows besides the snapshot.
+
+    Attributes:
+        auto_check: numeric slopes after every step, whatever they cost (the ``a`` key).
+        job: the running job's name, or None.
+        note: the app's last message; shown instead of the session's last action until the
+            next operation.
+        numeric: why the numeric slopes are not recomputed by themselves (a pass costs more
+            than the budget), or None.
+        why: the likely cause of the current disagreements (one sentence), or None.
+    """
+
+    auto_check: bool = False
+    job: str | None = None
+    note: Note | None = None
+    numeric: str | None = None
+    why: str | None = None
+
+
+#: Most lines the last action or message takes; a longer one ends with MORE.
+MESSAGE_LINES = 4
+MORE = " ... (the rest is in the log)"
+
+
+def check_field(snap: Snapshot, info: StatusInfo) -> str:
+    """What the status line says about the numeric slopes."""
+    if info.job == "numeric slopes":
+        return "numeric slopes: computing"
+    if not snap.has_check:
+        why = f": {info.numeric}" if info.numeric else ""
+        return f"numeric slopes not computed{why} (# computes)"
+    if snap.stale:
+        why = f"; {info.numeric}" if info.numeric else ""
+        return f"numeric slopes stale (weights changed since{why}; # recomputes)"
+    counts = [(n, snap.counts[name]) for name, n in
+              (("agree", "agree"), ("doubtful", "doubtful"), ("disagree", "disagree"), ("kink", "kink"))]
+    shown = [f"{count} {name}" for name, count in counts if count] or ["0 checked"]
+    part = f" of {snap.n_checked:,} checked (C: all {snap.n_params:,})" if snap.n_checked < snap.n_params else ""
+    return "numeric slopes: " + ", ".join(shown) + part
+
+
+def status_fields(snap: Snapshot, info: StatusInfo) -> list[str]:
+    """The pieces of the status line, in reading order; none is ever cut."""
+    fields = [f"{snap.name} ({snap.source})"]
+    if snap.code:
+        fields.append(f"runs the Python code of {', '.join(snap.code)}: open only files you trust")
+    fields += [f"step {snap.step_count}", f"train {cost_text(snap.train_cost)}"]
+    if snap.val_cost is not None:
+        fields.append(f"val {cost_text(snap.val_cost)}")
+    fields += [f"rate {snap.rate:.4g}", snap.rule, f"{snap.slope_source} slopes"]
     if snap.batch_size is not None:
-        flags.append(f"batch {snap.batch_size}")
-    if auto_check:
-        flags.append("auto-check")
-    second = " | ".join(flags)
-    third = f"last: {snap.last_action}" if snap.last_action else "last: nothing yet"
+        fields.append(f"batch {snap.batch_size}")
+    fields.append(check_field(snap, info))
+    if info.auto_check:
+        fields.append("numeric after every step")
+    if snap.dirty:
+        fields.append("unsaved")
+    if snap.undo_levels:
+        fields.append(f"undo {snap.undo_levels}")
+    if info.job:
+        fields.append(f"running: {info.job} (x stops)")
+    return fields
+
+
+def message_text(snap: Snapshot, info: StatusInfo) -> str:
+    """The last line's text: a problem drawing, the app's last message, or the session's last action."""
     if snap.problem:
-        third = f"PROBLEM: {snap.problem}"
-    if job:
-        third = f"{job} | {third}"
-    return [first, second, third]
+        return f"problem: {snap.problem}"
+    if info.note is not None:
+        return f"{'problem' if info.note.error else 'last'}: {info.note.text}"
+    return f"last: {snap.last_action}" if snap.last_action else "last: nothing yet"
 
 
-class StatusLine(Static):
-    """Step count, rate, rule, costs, verdict counts and the last action."""
-
-    def show(self, snap: Snapshot, auto_check: bool, job: str | None = None) -> None:
-        # The line count never changes, so no layout pass is needed (a layout redraws the whole screen).
-        self.update(Text("\n".join(status_lines(snap, auto_check, job)), no_wrap=True, overflow="ellipsis"),
-                    layout=False)
-
-
-def preview_lines(preview: Sequence[tuple[float, float]], current: float, best: float | None) -> list[str]:
-    """Rows of the rate preview: rate, cost after one step, and marks for the current and best rates."""
-    lines = []
-    for rate, cost in preview:
-        marks = []
-        if best is not None and rate == best:
-            marks.append("best")
-        if math.isclose(rate, current, rel_tol=1e-12):
-            marks.append("now")
-        lead = ">" if best is not None and rate == best else " "
-        lines.append(f"{lead}{rate:<10.4g} {cost_text(cost):>10} {' '.join(marks)}".rstrip())
+def pack(fields: list[str], width: int, sep: str = "  ") -> list[str]:
+    """``fields`` packed into lines of at most ``width`` cells, never breaking one (a field wider
+    than ``width`` is wrapped at its spaces)."""
+    lines: list[str] = []
+    line = ""
+    for field in fields:
+        if line and len(line) + len(sep) + len(field) <= width:
+            line += sep + field
+            continue
+        if line:
+            lines.append(line)
+        if len(field) <= width:
+            line = field
+        else:
+            *whole, line = textwrap.wrap(field, width, break_on_hyphens=False)
+            lines += whole
+    if line:
+        lines.append(line)
     return lines
 
 
-class RatePanel(Static):
-    """The cost after one step at each candidate rate (the session computes them)."""
+def status_lines(snap: Snapshot, info: StatusInfo, width: int = 78) -> list[str]:
+    """The status line's text for ``width`` cells, one string per screen line, every one whole.
+
+    The settings and counts are packed into as few lines as the width allows; the
+    last action (or message) starts a line of its own and wraps at word
+    boundaries, at most MESSAGE_LINES lines.
+    """
+    width = max(width, 20)
+    lines = pack(status_fields(snap, info), width)
+    if info.why:
+        lines += textwrap.wrap(f"why: {info.why}", width, break_on_hyphens=False, subsequent_indent="  ")
+    message = textwrap.wrap(message_text(snap, info), width, break_on_hyphens=False, subsequent_indent="  ")
+    if len(message) > MESSAGE_LINES:
+        message = message[:MESSAGE_LINES]
+        message[-1] = textwrap.shorten(message[-1], width - len(MORE), placeholder="") + MORE
+    return lines + message
+
+
+class StatusLine(Static):
+    """Model and file, step count, costs, settings, the numeric slopes' state and the last action.
+
+    Its height follows its text (every piece whole at any width); the app hands
+    it a snapshot and a :class:`StatusInfo`.
+    """
 
     _lines = 0
 
-    def on_mount(self) -> None:
-        self.border_title = "cost after 1 step | b: best"
+    def __init__(self, *, name: str | None = None, id: str | None = None, classes: str | None = None) -> None:
+        super().__init__("", name=name, id=id, classes=classes)
+        self._shown: tuple[Snapshot, StatusInfo] | None = None
 
-    def show(self, preview: Sequence[tuple[float, float]], current: float, best: float | None) -> None:
-        lines = preview_lines(preview, current, best)
-        self.update(Text("\n".join(lines), no_wrap=True), layout=len(lines) != self._lines)
+    def show(self, snap: Snapshot, info: StatusInfo) -> None:
+        self._shown = (snap, info)
+        self._draw()
+
+    def on_resize(self) -> None:
+        # After this resize is laid out: a change of height asked for during it would be lost.
+        self.call_after_refresh(self._draw)
+
+    def _draw(self) -> None:
+        if self._shown is None:
+            return
+        lines = status_lines(*self._shown, width=self.content_size.width or 78)
+        # A layout pass (which redraws the whole screen) only when the number of lines changes.
+        self.update(Text("\n".join(lines), no_wrap=True, overflow="ellipsis"), layout=len(lines) != self._lines)
         self._lines = len(lines)
+
+    @property
+    def text(self) -> str:
+        """The status as plain text."""
+        return str(self.content)
 
 
 class JobBar(Horizontal):

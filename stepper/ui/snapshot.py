@@ -14,6 +14,7 @@ the names and layer numbers are the layout's own (they never change).
 from __future__ import annotations
 
 from dataclasses import dataclass
+from pathlib import Path
 from typing import TYPE_CHECKING, Any, Callable, Sequence
 
 import numpy as np
@@ -21,6 +22,8 @@ from numpy.typing import NDArray
 
 from stepper.core.compare import VERDICTS
 from stepper.errors import StepperError
+from stepper.formats.custom_layer import CustomLayer
+from stepper.scenarios import scenarios_root
 
 if TYPE_CHECKING:
     from stepper.session import Session
@@ -30,8 +33,10 @@ Array = NDArray[np.float64]
 #: Verdict codes, ordered by severity so that sorting by code puts the worst first.
 NO_VERDICT = 0
 VERDICT_CODE = {"agree": 1, "kink": 2, "doubtful": 3, "disagree": 4}
-#: How each verdict reads in the table: a word, so it needs no colour.
-VERDICT_TEXT = {NO_VERDICT: "-", 1: "agree", 2: "kink~", 3: "doubtful", 4: "DISAGREE"}
+#: How each verdict reads in the table: a word, so it needs no colour (the same words as ``stepper check``).
+VERDICT_TEXT = {NO_VERDICT: "-", 1: "agree", 2: "kink", 3: "doubtful", 4: "disagree"}
+#: What the verdict column says for a numeric slope computed before the weights last changed.
+STALE_TEXT = "stale"
 VERDICT_NAME = {code: name for name, code in VERDICT_CODE.items()}
 
 
@@ -41,6 +46,8 @@ class Snapshot:
 
     Attributes:
         name: the model's label.
+        source: the model file as the screen names it (see :func:`shown_path`).
+        code: the Python files of the model's custom layers, whose code Stepper runs.
         names: parameter names in flat order.
         layer: 0-based layer of each parameter, int.
         value: current values.
@@ -66,6 +73,8 @@ class Snapshot:
     """
 
     name: str
+    source: str
+    code: tuple[str, ...]
     names: tuple[str, ...]
     layer: NDArray[np.int64]
     n_layers: int
@@ -175,6 +184,8 @@ def take(session: Session, history: HistoryArrays | None = None) -> Snapshot:
     val_cost = _or_nan(session.val_cost, np.nan, problems)
     return Snapshot(
         name=session.setup.name,
+        source=shown_path(session.setup.path),
+        code=tuple(dict.fromkeys(layer.path.name for layer in net.layers if isinstance(layer, CustomLayer))),
         names=layout.names,
         layer=layout.layer_index,
         n_layers=len(net.layers),
@@ -206,6 +217,25 @@ def take(session: Session, history: HistoryArrays | None = None) -> Snapshot:
         version=int(session.version),
         problem=problems[0] if problems else None,
     )
+
+
+def shown_path(path: Path, cwd: Path | None = None) -> str:
+    """A model file as the screen names it: a bundled scenario by its folder, a file under the
+    current folder relative to it, one under the home folder from ``~``, anything else in full."""
+    path = Path(path)
+    cwd = Path.cwd() if cwd is None else cwd
+    try:
+        path = path.resolve()
+        if path.is_relative_to(scenarios_root().resolve()):
+            return f"bundled {path.parent.name}/{path.name}"
+        if path.is_relative_to(cwd.resolve()):
+            return str(path.relative_to(cwd.resolve()))
+        home = Path.home().resolve()
+        if path.is_relative_to(home):
+            return "~/" + str(path.relative_to(home))
+    except (OSError, RuntimeError):
+        pass
+    return str(path)
 
 
 def _or_nan(compute: Callable[[], Any], missing: Any, problems: list[str]) -> Any:

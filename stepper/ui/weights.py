@@ -30,7 +30,7 @@ from textual.scroll_view import ScrollView
 from textual.strip import Strip
 
 from stepper.ui.keys import bindings
-from stepper.ui.snapshot import VERDICT_TEXT, Snapshot
+from stepper.ui.snapshot import STALE_TEXT, VERDICT_TEXT, Snapshot
 
 IntArray = NDArray[np.int64]
 
@@ -52,7 +52,9 @@ class Column:
     descending: bool
 
 
-NUMBER_WIDTH = 10
+#: Significant digits of the value and slope columns: 4 at the least, up to 10 when the table is wide.
+MIN_DIGITS, MAX_DIGITS = 4, 10
+NUMBER_WIDTH = MIN_DIGITS + 7  # sign, point, "e+00"
 COLUMNS: tuple[Column, ...] = (
     Column("name", "weight", 8, False),
     Column("value", "value", NUMBER_WIDTH, True),
@@ -151,6 +153,7 @@ class WeightTable(ScrollView, can_focus=True):
     WeightTable > .weights--disagree { color: $error; text-style: bold; }
     WeightTable > .weights--doubtful { color: $warning; }
     WeightTable > .weights--stale { color: $text-muted; text-style: dim; }
+    WeightTable:nocolor { scrollbar-size-vertical: 0; }
     WeightTable:nocolor > .weights--cursor { text-style: reverse bold; }
     WeightTable:nocolor > .weights--sorted { text-style: bold underline; }
     """
@@ -195,6 +198,8 @@ class WeightTable(ScrollView, can_focus=True):
         self._selected: int | None = None
         self._mask: NDArray[np.bool_] | None = None
         self._name_width = COLUMNS[0].width
+        #: Significant digits of the number columns, as many as the width holds (see MAX_DIGITS).
+        self.digits = MIN_DIGITS
 
     # -- what is shown ---------------------------------------------------------------------
 
@@ -210,6 +215,7 @@ class WeightTable(ScrollView, can_focus=True):
         if names_changed:
             self._mask = None
             self._name_width = max(COLUMNS[0].width, max((len(n) for n in snap.names), default=0))
+            self._fit_digits()
         self._rebuild()
 
     def set_order(self, key: str, descending: bool | None = None) -> None:
@@ -262,22 +268,71 @@ class WeightTable(ScrollView, can_focus=True):
             self.move_to(int(hits[0]))
 
     def describe(self) -> str:
-        """How rows are chosen and ordered, for the table's title."""
-        total = 0 if self.snapshot is None else self.snapshot.n_params
-        parts = [f"{self.rows.size} of {total} weights"]
+        """How rows are chosen and ordered, and which are on screen, for the table's title."""
+        snap = self.snapshot
+        total = 0 if snap is None else snap.n_params
+        shown = int(self.rows.size)
+        top = round(self.scroll_y)
+        rows = f"{min(top + 1, shown)}-{min(top + self.page_rows, shown)}"
+        chosen = []
         if self.layer_filter is not None:
-            parts.append(f"layer {self.layer_filter + 1}")
+            chosen.append(f"layer {self.layer_filter + 1}")
         if self.pattern:
-            parts.append(f"'{self.pattern}'")
+            chosen.append(f"'{self.pattern}'")
+        parts = [f"weights {rows} of {shown}" + (f" ({', '.join(chosen)}; {total} in all)" if chosen else "")]
         title = COLUMNS[COLUMN_KEYS.index(self.sort_key)].title
         if self.sort_key == "name":
             parts.append("in network order" if not self.descending else "in reverse network order")
         else:
-            parts.append(f"by {title}, {'largest' if self.descending else 'smallest'} first")
+            stale = " (stale)" if self.sorted_by_stale() else ""
+            parts.append(f"by {title}{stale}, {'largest' if self.descending else 'smallest'} first")
+        if snap is not None and snap.has_check and snap.stale:
+            parts.append("numeric slopes stale")
         if self.sources is not None and self._selected is not None and self.sources[self._selected]:
-            parts.append(f"{self.snapshot.names[self._selected] if self.snapshot else ''} is "
+            parts.append(f"{snap.names[self._selected] if snap else ''} is "
                          f"{self.sources[self._selected]} of {self.source_file}")
         return " | ".join(parts)
+
+    def sorted_by_stale(self) -> bool:
+        """The rows are ordered by numeric slopes that are out of date."""
+        snap = self.snapshot
+        return (snap is not None and snap.has_check and snap.stale
+                and self.sort_key in ("numeric", "rel_error", "verdict"))
+
+    def watch_scroll_y(self, old_value: float, new_value: float) -> None:
+        super().watch_scroll_y(old_value, new_value)
+        if round(old_value) != round(new_value):
+            self.border_title = self.describe()
+
+    def on_resize(self) -> None:
+        self._fit_digits()
+        self.border_title = self.describe()
+        # A smaller table (a panel opened below it) still shows the selected row.
+        self.call_after_refresh(self._cursor_in_view)
+
+    def _cursor_in_view(self) -> None:
+        top = round(self.scroll_y)
+        if not top <= self.cursor < top + self.page_rows:
+            self.scroll_to(y=max(self.cursor - self.page_rows + 1, 0), animate=False, immediate=True)
+
+    def natural_width(self) -> int:
+        """Cells the table needs at its most digits (frame and scroll bar included); beside the plot
+        on a wide screen it takes no more, leaving the rest to the plot column."""
+        digits, self.digits = self.digits, MAX_DIGITS
+        try:
+            return self.line_width() + self.styles.scrollbar_size_vertical + self.styles.gutter.width
+        finally:
+            self.digits = digits
+
+    def _fit_digits(self) -> None:
+        """As many digits in the number columns as the width holds (each digit costs three cells)."""
+        self.digits = MIN_DIGITS
+        # The vertical scroll bar counted as there, so that the digits it leaves room for never bring
+        # a horizontal one.
+        room = self.content_region.width - self.styles.scrollbar_size_vertical - self.line_width()
+        self.digits = MIN_DIGITS + min(max(room // 3, 0), MAX_DIGITS - MIN_DIGITS)
+        self.virtual_size = Size(self.line_width(), self.rows.size + 1)
+        self.refresh()
 
     def _filter_mask(self, snap: Snapshot) -> NDArray[np.bool_]:
         if self._mask is None:
@@ -353,7 +408,8 @@ class WeightTable(ScrollView, can_focus=True):
     # -- drawing ---------------------------------------------------------------------------
 
     def widths(self) -> list[int]:
-        return [self._name_width] + [c.width for c in COLUMNS[1:]]
+        number = NUMBER_WIDTH + self.digits - MIN_DIGITS
+        return [self._name_width] + [number if c.width == NUMBER_WIDTH else c.width for c in COLUMNS[1:]]
 
     def line_width(self) -> int:
         return LEAD + sum(self.widths()) + GAP * (len(COLUMNS) - 1)
@@ -361,11 +417,12 @@ class WeightTable(ScrollView, can_focus=True):
     def header_text(self) -> list[tuple[str, bool]]:
         """Header cells, each with whether it is the sort column."""
         out = []
-        stale = self.snapshot is not None and self.snapshot.stale
+        snap = self.snapshot
+        stale = snap is not None and snap.has_check and snap.stale
         for column, width in zip(COLUMNS, self.widths()):
             title = column.title
-            if column.key == "numeric" and stale:
-                title = "numeric*"
+            if column.key in ("numeric", "rel_error") and stale:
+                title += "*"
             text = title.ljust(width) if column.key in ("name", "verdict", "frozen") else title.rjust(width)
             out.append((text, column.key == self.sort_key))
         return out
@@ -376,13 +433,17 @@ class WeightTable(ScrollView, can_focus=True):
         assert snap is not None
         widths = self.widths()
         rel = snap.rel_error[index]
+        code = int(snap.verdict[index])
+        # A numeric slope older than the weights is no verdict: the column says so in a word.
+        verdict = STALE_TEXT if snap.stale and snap.has_check else _verdict_text(snap, index)
+        digits = self.digits
         return [
             snap.names[index].ljust(widths[0]),
-            _number(snap.value[index], widths[1]),
-            _number(snap.analytic[index], widths[2]),
-            _number(snap.numeric[index], widths[3]),
+            _number(snap.value[index], widths[1], digits),
+            _number(snap.analytic[index], widths[2], digits),
+            _number(snap.numeric[index], widths[3], digits),
             ("-" if rel != rel else f"{rel:.1e}").rjust(widths[4]),
-            _verdict_text(snap, index).ljust(widths[5]),
+            verdict.ljust(widths[5]),
             ("yes" if snap.frozen[index] else "").ljust(widths[6]),
         ]
 
@@ -438,13 +499,17 @@ class WeightTable(ScrollView, can_focus=True):
             row_parts += ("weights--cursor",)
         style = self._style(*row_parts)
         code = int(snap.verdict[index])
-        if code == 4:
-            verdict_style = self._style(*row_parts, "weights--disagree")
-        elif code == 3:
-            verdict_style = self._style(*row_parts, "weights--doubtful")
+        stale = snap.stale and snap.has_check
+        if stale:
+            verdict_style = numeric_style = self._style(*row_parts, "weights--stale")
         else:
-            verdict_style = style
-        numeric_style = self._style(*row_parts, "weights--stale") if snap.stale else style
+            numeric_style = style
+            if code == 4:
+                verdict_style = self._style(*row_parts, "weights--disagree")
+            elif code == 3:
+                verdict_style = self._style(*row_parts, "weights--doubtful")
+            else:
+                verdict_style = style
         gap = Segment(" " * GAP, style)
         segments = [Segment(">" if is_cursor else " ", style), Segment(" ", style)]
         for i, text in enumerate(cells):
@@ -460,15 +525,15 @@ class WeightTable(ScrollView, can_focus=True):
 
 
 def _verdict_text(snap: Snapshot, index: int) -> str:
-    """The verdict cell; ``skipped`` for a weight the last check left out (C computes it)."""
+    """The verdict cell; ``skipped`` for a weight the last numeric pass left out (C computes it)."""
     code = int(snap.verdict[index])
     if code == 0 and snap.has_check and snap.n_checked < snap.n_params:
         return "skipped"
     return VERDICT_TEXT[code]
 
 
-def _number(value: float, width: int) -> str:
-    """``value`` in sign-aligned scientific notation, ``-`` when it is NaN."""
+def _number(value: float, width: int, digits: int = MIN_DIGITS) -> str:
+    """``value`` in sign-aligned scientific notation with ``digits`` significant digits, ``-`` when NaN."""
     if value != value:
         return "-".rjust(width)
-    return f"{value: .3e}".rjust(width)
+    return f"{value: .{digits - 1}e}".rjust(width)

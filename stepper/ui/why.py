@@ -40,6 +40,7 @@ class WhyKeys(AppBase):
         self.query_one("#side").set_class(self.why is not None, "-why")
         self._shown_index = None
         self._show_why()
+        self._show_status()  # the key bar puts the panel's own keys first
 
     def _shows(self, name: str) -> bool:
         """True when panel ``name`` is shown; otherwise says which key shows it."""
