@@ -99,7 +99,7 @@ def test_step_save_and_quit_in_an_80x24_terminal(tmp_path: Path, term: str, no_c
 
         pane.keys("s", "s", "s")
         pane.wait_for("step 3 ")
-        pane.keys("c")
+        pane.keys("#")
         screen = pane.wait_for("37 agree")
         assert " agree " in screen  # the verdict column, as a word
         assert "unsaved" in screen
@@ -137,3 +137,80 @@ def test_step_save_and_quit_in_an_80x24_terminal(tmp_path: Path, term: str, no_c
     replayed = replay(journal)
     assert replayed.step_count == 3
     assert np.array_equal(replayed.theta, expected.theta)
+
+
+def _app_command(tmp_path: Path, extra: str = "") -> str:
+    return (f"{shlex.quote(str(STEPPER))} open --no-journal --log {shlex.quote(str(tmp_path / 'open.log'))} "
+            f"{extra}; sleep 30")
+
+
+def test_divergence_then_undo_then_the_rate_preview_then_its_best_rate(tmp_path: Path) -> None:
+    pane = Pane(_app_command(tmp_path))
+    try:
+        pane.wait_for("q quit")
+        pane.keys("r")
+        pane.wait_for("New learning rate")
+        pane.keys("C-u")
+        pane.wait_gone("▊  0.1")  # the field's proposal
+        pane.keys("5", literal=True)
+        pane.keys("Enter")
+        pane.wait_for("rate 5 ")
+        pane.keys("S")
+        pane.wait_for("How many steps?")
+        pane.keys("C-u")
+        pane.wait_gone("▊  100")
+        pane.keys("20", literal=True)
+        pane.keys("Enter")
+        # The run stops while the cost is finite, says so, and opens the rate preview.
+        screen = pane.wait_for("problem: stopped after")
+        assert "Undo is z" in " ".join(screen.split())
+        assert "(the rest is in the log)" not in screen
+        assert " best" in pane.wait_for("V: best")
+        assert all(len(line) <= 80 for line in screen.splitlines())
+        pane.keys("z")
+        screen = pane.wait_for("step 0 ")
+        assert "last: undid" in screen
+        pane.keys("V")
+        screen = pane.wait_for("last: rate 5 -> ")
+        rate = float(screen.split("last: rate 5 -> ")[1].split()[0])
+        assert rate < 5
+        pane.keys("S")
+        pane.wait_for("How many steps?")
+        pane.keys("C-u")
+        pane.wait_gone("▊  20")
+        pane.keys("20", literal=True)
+        pane.keys("Enter")
+        screen = pane.wait_for("step 20 ")
+        assert "problem" not in screen
+    finally:
+        pane.kill()
+
+
+@pytest.mark.skipif(shutil.which("script") is None, reason="script (util-linux) is not installed")
+def test_no_color_sends_no_colour_codes_at_all(tmp_path: Path) -> None:
+    # What the app writes, recorded by script(1): the pane's own capture would add its codes.
+    record = tmp_path / "typescript"
+    inner = f"{shlex.quote(str(STEPPER))} open --no-journal --log {shlex.quote(str(tmp_path / 'open.log'))}"
+    pane = Pane(f"env NO_COLOR=1 TERM=xterm-256color script -q -c {shlex.quote(inner)} {shlex.quote(str(record))}; "
+                "sleep 30")
+    try:
+        pane.wait_for("q quit")
+        pane.keys("s", "#", "t")
+        pane.wait_for("cost along")
+        pane.keys("q")
+        pane.wait_for("Quit with unsaved changes?")
+        pane.keys("y")
+        end = time.monotonic() + 20
+        while "cost along" not in record.read_text(errors="replace"):
+            assert time.monotonic() < end
+            time.sleep(0.05)
+    finally:
+        pane.kill()
+    import re
+
+    output = record.read_bytes().decode("utf-8", errors="replace")
+    sgr = re.findall(r"\x1b\[([0-9;:]*)m", output)
+    assert sgr, "the app drew nothing"
+    colour = [p for codes in sgr for p in codes.replace(":", ";").split(";")
+              if p and (30 <= int(p) <= 49 or 90 <= int(p) <= 107)]
+    assert colour == []

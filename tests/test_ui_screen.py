@@ -130,7 +130,7 @@ def test_a_runaway_job_stops_says_so_and_leads_back(session: Session, drive) -> 
         assert math.isfinite(session.train_cost())
         problem = [m for m, s in said if s == "error"][-1]
         assert f"stopped after {made} of 20 steps" in problem
-        assert "z takes the steps back" in problem and "v shows the rate preview" in problem
+        assert "Undo is z" in problem and "V adopts the best rate of the preview" in problem
         assert "problem: stopped after" in status(app)
         panel = app.query_one(RatePanel)
         assert panel.display and "best" in panel.text  # the preview opened by itself
@@ -152,7 +152,7 @@ def test_a_refused_step_is_in_the_last_line_and_points_to_the_preview(session: S
         await press(app, pilot, "s")
         assert session.step_count == 0
         text = status(app)
-        assert "problem: step refused at rate 1e+200" in text and "v shows the rate preview" in text
+        assert "problem: step refused at rate 1e+200" in text and "V adopts the best rate of the preview" in text
         assert "e.g. 1e+199" not in text
         assert app.query_one(RatePanel).display
 

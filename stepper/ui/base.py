@@ -50,9 +50,10 @@ DEFAULT_NOISE = 0.01
 DEFAULT_BUDGET = 0.05
 #: A pass over the budget by less than this factor is tried once more before the automatic passes stop.
 OVER_BUDGET_AGAIN = 4.0
-#: What the app adds to a refused or runaway step's message: the keys that lead back.
-BACK_KEYS = "Keys: v shows the rate preview, V adopts its best rate."
-BACK_KEYS_KEPT = "Keys: z takes the steps back, v shows the rate preview, V adopts its best rate."
+#: What the app says after a refused or runaway step, instead of the session's general advice:
+#: the keys that lead back (the rate preview opens by itself beside the plot).
+BACK_KEYS = "V adopts the best rate of the preview, open beside the plot."
+BACK_KEYS_KEPT = "Undo is z; V adopts the best rate of the preview, open beside the plot."
 
 
 def parse_float(text: str, what: str) -> float:
@@ -307,7 +308,10 @@ class AppBase(App[None]):
         if not isinstance(exc, DivergenceError):
             self.say(exc.message, error=True)
             return
-        self.say(f"{exc.message} {BACK_KEYS_KEPT if kept else BACK_KEYS}", error=True)
+        # The session's message ends with general advice (a sentence on the rate preview); the
+        # app names its keys instead.
+        said = exc.message.rsplit(". ", 1)[0] + "." if ". " in exc.message else exc.message
+        self.say(f"{said} {BACK_KEYS_KEPT if kept else BACK_KEYS}", error=True)
         self.show_preview()
 
     def show_preview(self, shown: bool = True) -> None:

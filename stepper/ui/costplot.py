@@ -25,6 +25,7 @@ from textual.reactive import reactive
 from textual.strip import Strip
 
 from stepper.plots import even_ticks, plotext_figure, tick_labels, whole_ticks
+from stepper.ui.panels import fit_title
 from stepper.ui.plotwidget import PlotWidget
 from stepper.ui.snapshot import Snapshot
 
@@ -94,8 +95,10 @@ def build_plot(curves: Curves, width: int, height: int, log: bool) -> str:
         with np.errstate(divide="ignore", invalid="ignore"):
             series = [(np.log10(y), mark) for y, mark in series]
     shown = [(y, np.isfinite(y), mark) for y, mark in series]
+    # Dots between marks only where marks stand apart: a dense curve is a line of marks already.
+    sparse = x.size < width // 2
     for y, ok, _ in shown:
-        if np.count_nonzero(ok) >= 2:
+        if sparse and np.count_nonzero(ok) >= 2:
             line = fig.signal(x[ok].tolist(), y[ok].tolist(), marker=LINE_MARK)
             line.lines()
             fig.draw(line)
@@ -192,12 +195,23 @@ class CostPlot(PlotWidget):
             strips.append(Strip(segments).adjust_cell_length(width, base))
         return strips
 
+    def on_resize(self) -> None:
+        self._set_title()
+
     def _set_title(self) -> None:
+        """The title, as full as the width allows: what the marks mean, the step, the scale."""
         scale = "log" if self.is_log else "linear"
-        if self.log_scale and not self.is_log:
-            scale = "linear (log needs positive, varying costs)"
+        refused = self.log_scale and not self.is_log
         step = "" if self.curves is None else f" | step {self.curves.current}"
-        self.border_title = f"cost  {TRAIN_MARK} train  {VAL_MARK} validation{step} | {scale}"
+        variants = [
+            f"cost  {TRAIN_MARK} train  {VAL_MARK} validation{step} | {scale}"
+            + (" (log needs positive, varying costs)" if refused else ""),
+            f"cost  {TRAIN_MARK} train  {VAL_MARK} validation{step} | {scale}",
+            f"{TRAIN_MARK} train {VAL_MARK} val.{step} | {scale}",
+            f"{TRAIN_MARK} train {VAL_MARK} val.{step}",
+            step.removeprefix(" | ") or "cost",
+        ]
+        self.border_title = fit_title(variants, self.size.width or 80)
 
 
 #: Runs of one curve mark inside a plot line.

@@ -161,9 +161,14 @@ def help_rows() -> list[tuple[str, str, str]]:
     return [(group, " ".join(k.all_shown), k.help) for group in GROUPS for k in KEYS if k.group == group]
 
 
-HELP_NOTE = ("Numbers are in scientific notation. Verdicts are words: agree, doubtful, DISAGREE, kink~ "
-             "(the numeric slope crossed a kink and is not trusted), - (not checked). numeric* in the "
-             "header: the weights changed since the numeric slopes were computed.\n\n"
+HELP_NOTE = ("Numbers are in scientific notation, with more digits when the table has the room. Verdicts "
+             "are words: agree, doubtful, disagree, kink (the numeric slope crossed a kink and is not "
+             "trusted), - (not checked), stale (the weights changed since the numeric slopes were computed: "
+             "numeric* and rel.err* in the header). While a numeric pass takes less than the budget "
+             "(--numeric-budget, default 50 ms) the slopes are recomputed after every change by themselves; "
+             "the status line says when they are not. Messages appear in the status line: last: for what "
+             "was done, problem: for what was refused or failed, why: for the likely cause of disagreeing "
+             "slopes.\n\n"
              "Slice (t): along one weight a step multiplies the distance to the minimum by "
              "1 - rate x curvature, so below 1 it stops short, between 1 and 2 it overshoots, above 2 "
              "steps diverge, and 1/curvature is the best rate along that weight (LeCun, Bottou, Orr & "

@@ -60,6 +60,15 @@ MESSAGE_LINES = 4
 MORE = " ... (the rest is in the log)"
 
 
+def fit_title(variants: list[str], width: int) -> str:
+    """The first (fullest) of ``variants`` that fits a border ``width`` cells wide, else the last."""
+    room = width - 4  # the corners and a space either side of the title
+    for text in variants:
+        if len(text) <= room:
+            return text
+    return variants[-1]
+
+
 def check_field(snap: Snapshot, info: StatusInfo) -> str:
     """What the status line says about the numeric slopes."""
     if info.job == "numeric slopes":

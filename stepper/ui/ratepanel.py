@@ -18,7 +18,7 @@ from typing import Callable, Sequence
 from rich.text import Text
 from textual.widgets import Static
 
-from stepper.ui.panels import cost_text
+from stepper.ui.panels import cost_text, fit_title
 
 #: How many times the ladder is widened by two more rungs (factors of 2) on the side of the best.
 WIDENINGS = 6
@@ -119,7 +119,11 @@ class RatePanel(Static):
         self._lines = 0
 
     def on_mount(self) -> None:
-        self.border_title = "cost after 1 step | V adopts best"
+        self._set_title()
+
+    def _set_title(self) -> None:
+        self.border_title = fit_title(["cost after 1 step | V adopts best", "after 1 step | V: best",
+                                       "V: best"], self.size.width or 34)
 
     def show(self, search: RateSearch, current: float) -> None:
         self._shown = (search, current)
@@ -129,6 +133,7 @@ class RatePanel(Static):
         self.call_after_refresh(self._draw)
 
     def _draw(self) -> None:
+        self._set_title()
         if self._shown is None:
             return
         size = self.content_size

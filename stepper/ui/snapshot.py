@@ -13,7 +13,9 @@ the names and layer numbers are the layout's own (they never change).
 
 from __future__ import annotations
 
+import os
 from dataclasses import dataclass
+from functools import lru_cache
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, Callable, Sequence
 
@@ -184,7 +186,7 @@ def take(session: Session, history: HistoryArrays | None = None) -> Snapshot:
     val_cost = _or_nan(session.val_cost, np.nan, problems)
     return Snapshot(
         name=session.setup.name,
-        source=shown_path(session.setup.path),
+        source=_shown_path(str(session.setup.path), os.getcwd()),
         code=tuple(dict.fromkeys(layer.path.name for layer in net.layers if isinstance(layer, CustomLayer))),
         names=layout.names,
         layer=layout.layer_index,
@@ -236,6 +238,12 @@ def shown_path(path: Path, cwd: Path | None = None) -> str:
     except (OSError, RuntimeError):
         pass
     return str(path)
+
+
+@lru_cache(maxsize=8)
+def _shown_path(path: str, cwd: str) -> str:
+    """:func:`shown_path`, kept: the model's path does not change between frames."""
+    return shown_path(Path(path), Path(cwd))
 
 
 def _or_nan(compute: Callable[[], Any], missing: Any, problems: list[str]) -> Any:
