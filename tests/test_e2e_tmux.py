@@ -75,6 +75,16 @@ class Pane:
                 raise AssertionError(f"{text!r} did not go away; the screen was:\n{screen}")
             time.sleep(0.05)
 
+    def answer(self, key: str, prompt: str, proposal: str, text: str) -> None:
+        """Press ``key``, wait for the dialog's ``prompt``, clear its ``proposal``, type ``text``, Enter."""
+        self.keys(key)
+        self.wait_for(prompt)
+        self.keys("C-u")
+        # The field's own keys run as actions after plain typing: let the clearing land first.
+        self.wait_gone(f"▊  {proposal}")
+        self.keys(text, literal=True)
+        self.keys("Enter")
+
     def kill(self) -> None:
         subprocess.run(["tmux", "kill-session", "-t", self.name], capture_output=True)
 
@@ -148,19 +158,9 @@ def test_divergence_then_undo_then_the_rate_preview_then_its_best_rate(tmp_path:
     pane = Pane(_app_command(tmp_path))
     try:
         pane.wait_for("q quit")
-        pane.keys("r")
-        pane.wait_for("New learning rate")
-        pane.keys("C-u")
-        pane.wait_gone("▊  0.1")  # the field's proposal
-        pane.keys("5", literal=True)
-        pane.keys("Enter")
+        pane.answer("r", "New learning rate", "0.1", "5")
         pane.wait_for("rate 5 ")
-        pane.keys("S")
-        pane.wait_for("How many steps?")
-        pane.keys("C-u")
-        pane.wait_gone("▊  100")
-        pane.keys("20", literal=True)
-        pane.keys("Enter")
+        pane.answer("S", "How many steps?", "100", "20")
         # The run stops while the cost is finite, says so, and opens the rate preview.
         screen = pane.wait_for("problem: stopped after")
         assert "Undo is z" in " ".join(screen.split())
@@ -174,12 +174,7 @@ def test_divergence_then_undo_then_the_rate_preview_then_its_best_rate(tmp_path:
         screen = pane.wait_for("last: rate 5 -> ")
         rate = float(screen.split("last: rate 5 -> ")[1].split()[0])
         assert rate < 5
-        pane.keys("S")
-        pane.wait_for("How many steps?")
-        pane.keys("C-u")
-        pane.wait_gone("▊  20")
-        pane.keys("20", literal=True)
-        pane.keys("Enter")
+        pane.answer("S", "How many steps?", "20", "20")
         screen = pane.wait_for("step 20 ")
         assert "problem" not in screen
     finally:

@@ -34,22 +34,11 @@ from stepper.ui.keys import KEYS
 from stepper.ui.panels import StatusLine
 from stepper.ui.slicepanel import SlicePanel, SlicePlot
 
+from pilot_keys import answer, press
+
+
 SCENARIOS = Path(__file__).resolve().parents[1] / "scenarios"
 SIZES = [(80, 24), (100, 30)]
-
-
-async def press(app: StepperApp, pilot: Pilot[Any], *keys: str) -> None:
-    for key in keys:
-        await pilot.press(key)
-        if app.workers:
-            await app.workers.wait_for_complete()
-        await pilot.pause()
-
-
-async def answer(app: StepperApp, pilot: Pilot[Any], text: str) -> None:
-    assert isinstance(app.screen, AskScreen), app.screen
-    app.screen.query_one("#answer").value = text  # type: ignore[attr-defined]
-    await press(app, pilot, "enter")
 
 
 async def jump(app: StepperApp, pilot: Pilot[Any], name: str) -> None:

@@ -29,27 +29,12 @@ from stepper.ui.panels import JobBar, StatusLine
 from stepper.ui.ratepanel import RatePanel
 from stepper.ui.weights import WeightTable
 
+from pilot_keys import answer, press
+
+
 @pytest.fixture
 def session() -> Session:
     return Session(load_setup(default_model()))
-
-
-async def press(app: StepperApp, pilot: Pilot[Any], *keys: str) -> None:
-    """Press keys one by one, letting workers finish after each."""
-    for key in keys:
-        await pilot.press(key)
-        if app.workers:
-            # A job's last update reaches the app through call_from_thread: let it land.
-            await app.workers.wait_for_complete()
-            await pilot.pause()
-
-
-async def answer(app: StepperApp, pilot: Pilot[Any], text: str) -> None:
-    """Type ``text`` into the open AskScreen (replacing its proposal) and press enter."""
-    assert isinstance(app.screen, AskScreen), app.screen
-    field = app.screen.query_one("#answer")
-    field.value = text  # type: ignore[attr-defined]
-    await press(app, pilot, "enter")
 
 
 def status(app: StepperApp) -> str:

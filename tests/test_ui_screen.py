@@ -29,26 +29,15 @@ from stepper.ui.panels import StatusLine
 from stepper.ui.ratepanel import RatePanel, search_rates
 from stepper.ui.snapshot import VERDICT_TEXT
 
+from pilot_keys import answer, press
+
+
 NEVER, ALWAYS = 1e-9, 60.0
 
 
 @pytest.fixture
 def session() -> Session:
     return Session(load_setup(default_model()))
-
-
-async def press(app: StepperApp, pilot: Pilot[Any], *keys: str) -> None:
-    for key in keys:
-        await pilot.press(key)
-        if app.workers:
-            await app.workers.wait_for_complete()
-            await pilot.pause()
-
-
-async def answer(app: StepperApp, pilot: Pilot[Any], text: str) -> None:
-    assert isinstance(app.screen, AskScreen), app.screen
-    app.screen.query_one("#answer").value = text  # type: ignore[attr-defined]
-    await press(app, pilot, "enter")
 
 
 def status_lines(app: StepperApp) -> list[str]:
