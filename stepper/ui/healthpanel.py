@@ -7,7 +7,7 @@ update-to-weight ratio one plain step would make (the common-practice range
 saturated or dead units, and how the error signal changes from each layer to
 the next on the way back. Below: the trend over the whole network and, for
 custom layers, how their backward pass's input slopes compared with numeric
-ones at the last check (``c``). Text only, so it reads without colour.
+ones at the last numeric pass (``#``). Text only, so it reads without colour.
 """
 
 from __future__ import annotations
