@@ -21,22 +21,14 @@ from stepper.session import core as session_core
 from stepper.ui.app import StepperApp
 from stepper.ui.panels import StatusLine
 
+from pilot_keys import press
+
 
 @pytest.fixture
 def session(monkeypatch: pytest.MonkeyPatch) -> Session:
     monkeypatch.setattr(session_core, "FULL_CHECK_UP_TO", 20)
     monkeypatch.setattr(session_core, "CHECK_SAMPLE", 12)
     return Session(load_setup(default_model()))
-
-
-
-
-async def press(app: StepperApp, pilot: Pilot[Any], *keys: str) -> None:
-    for key in keys:
-        await pilot.press(key)
-        if app.workers:
-            await app.workers.wait_for_complete()
-            await pilot.pause()
 
 
 def status(app: StepperApp) -> str:
