@@ -24,8 +24,17 @@ class SlopeKeys(AppBase):
     """Finite differences: by themselves under the budget, on demand above it."""
 
     def action_compute_check(self) -> None:
-        if not self.busy():
-            self.start_check()
+        if self.busy():
+            return
+        left = self.session.unchecked()
+        inputs = self._input_checks
+        inputs_current = not self.figures.custom or (inputs is not None and inputs.version == self.session.version)
+        if left is not None and inputs_current:
+            # Current already (the automatic pass, or an earlier #): a job would only hold up the keys.
+            rest = f"; C computes the {left.size:,} left out" if left.size else ""
+            self.say(f"the numeric slopes are current: nothing changed since they were computed{rest}")
+            return
+        self.start_check()
 
     def action_compute_rest(self) -> None:
         """Every numeric slope the last check left out (a large model's check starts with a sample)."""
