@@ -42,6 +42,11 @@ def layout() -> Any:
     return Network(3, layers, "mean_squared_error").layout
 
 
+def spelled_out(lay: Any) -> tuple[str, ...]:
+    """Every name by the documented rule (README, "Names of weights"), one by one with numpy's ndindex."""
+    return tuple(f"{b.prefix}[{','.join(str(i) for i in idx)}]" for b in lay.blocks for idx in np.ndindex(*b.shape))
+
+
 def reference_matches(names: tuple[str, ...], pattern: str) -> list[int]:
     escaped = "".join("[[]" if c == "[" else "[]]" if c == "]" else c for c in pattern)
     return [i for i, name in enumerate(names) if fnmatch.fnmatchcase(name, escaped)]
@@ -49,8 +54,15 @@ def reference_matches(names: tuple[str, ...], pattern: str) -> list[int]:
 
 def test_names_from_array_and_index_are_the_full_list() -> None:
     lay = layout()
-    full = lay.names
-    assert names_at(lay, np.arange(lay.size)) == list(full)
+    full = spelled_out(lay)
+    assert names_at(lay, np.arange(lay.size)) == list(full) == list(lay.names)
+    assert len(lay.names) == len(full) and lay.names[-1] == full[-1] and lay.names[3:9] == list(full[3:9])
+    for i in (0, 17, 40, lay.size - 1):
+        assert full[i] in lay.names and lay.names.index(full[i]) == i == lay.index_of[full[i]] == lay.lookup(full[i])
+    for wrong in ("L1.W[0,11]", "L1.W[00,1]", "L1.W[0]", "L5.W[0,0]", "L1.W[0, 1]", "x"):
+        assert wrong not in lay.names and wrong not in lay.index_of
+    assert lay.lookup(" L1.W[0, 1] ") == full.index("L1.W[0,1]")
+    assert lay.names.widest() == max(len(name) for name in full)
     order = np.random.default_rng(3).permutation(lay.size)
     assert names_at(lay, order) == [full[i] for i in order]
     assert names_at(lay, [5, 5, 0]) == [full[5], full[5], full[0]]
@@ -68,12 +80,12 @@ PATTERNS = ["*", "L1.*", "L1.b[*]", "*.b*", "L1.W[0,*]", "L1.W[*,3]", "L1.W[1?]"
 @pytest.mark.parametrize("pattern", PATTERNS)
 def test_pattern_matches_as_fnmatch_does(pattern: str) -> None:
     lay = layout()
-    assert matching(lay, pattern).tolist() == reference_matches(lay.names, pattern)
+    assert matching(lay, pattern).tolist() == reference_matches(spelled_out(lay), pattern)
 
 
 def test_spaces_in_a_pattern_are_ignored() -> None:
     lay = layout()
-    assert matching(lay, " L1.W[0, 1] ").tolist() == reference_matches(lay.names, "L1.W[0,1]") != []
+    assert matching(lay, " L1.W[0, 1] ").tolist() == reference_matches(spelled_out(lay), "L1.W[0,1]") != []
 
 
 # -- shares, counts and the draw --------------------------------------------------------------------

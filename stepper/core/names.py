@@ -18,14 +18,18 @@ from __future__ import annotations
 
 import re
 from functools import lru_cache
-from typing import Sequence
+from typing import TYPE_CHECKING, Iterator, Mapping, Sequence, overload
 
 import numpy as np
 from numpy.typing import NDArray
 
-from stepper.core.network import Block, ParamLayout
+if TYPE_CHECKING:
+    from stepper.core.network import Block, ParamLayout
 
 IntArray = NDArray[np.int64]
+
+#: Names built at a time when every name is walked through.
+CHUNK = 65536
 
 
 def block_ids(layout: ParamLayout, indices: IntArray) -> IntArray:
@@ -123,3 +127,99 @@ def matching(layout: ParamLayout, pattern: str) -> IntArray:
     pattern = "".join(pattern.split())
     hits = [block.start + _match_block(block, pattern) for block in layout.blocks]
     return np.concatenate(hits).astype(np.int64) if hits else np.empty(0, dtype=np.int64)
+
+
+_CANONICAL = re.compile(r"(L\d+\.\w+)\[(\d+(?:,\d+)*)\]", re.ASCII)
+
+
+class NameIndex(Mapping[str, int]):
+    """Flat index of each weight name, read from the name itself (``L2.W[3,0]``).
+
+    Holds the names the layout would spell, exactly (no spaces, no leading
+    zeros); looking one up costs the same for any size of model.
+    """
+
+    def __init__(self, layout: ParamLayout) -> None:
+        self._layout = layout
+        self._arrays = {block.prefix: block for block in layout.blocks}
+
+    def __getitem__(self, name: str) -> int:
+        match = _CANONICAL.fullmatch(name) if isinstance(name, str) else None
+        block = self._arrays.get(match[1]) if match else None
+        if match is None or block is None:
+            raise KeyError(name)
+        parts = match[2].split(",")
+        index = tuple(int(p) for p in parts)
+        if (len(index) != len(block.shape) or any(str(i) != p for i, p in zip(index, parts))
+                or any(i >= n for i, n in zip(index, block.shape))):
+            raise KeyError(name)
+        return block.start + int(np.ravel_multi_index(index, block.shape))
+
+    def __contains__(self, name: object) -> bool:
+        try:
+            self[name]  # type: ignore[index]
+        except KeyError:
+            return False
+        return True
+
+    def __iter__(self) -> Iterator[str]:
+        return iter(self._layout.names)
+
+    def __len__(self) -> int:
+        return self._layout.size
+
+
+class WeightNames(Sequence[str]):
+    """Every weight's name in flat order, ``(n_params,)``, each built when it is asked for.
+
+    Indexing, slicing, ``in`` and ``index`` cost no more for a million
+    weights than for ten; walking through all of them builds them a chunk at a
+    time. :meth:`of` names many flat indices at once.
+    """
+
+    def __init__(self, layout: ParamLayout) -> None:
+        self._layout = layout
+
+    def __len__(self) -> int:
+        return self._layout.size
+
+    @overload
+    def __getitem__(self, index: int) -> str: ...
+
+    @overload
+    def __getitem__(self, index: slice) -> list[str]: ...
+
+    def __getitem__(self, index: int | slice) -> str | list[str]:
+        if isinstance(index, slice):
+            return names_at(self._layout, np.arange(self._layout.size)[index])
+        i = int(index)
+        if i < 0:
+            i += self._layout.size
+        if not 0 <= i < self._layout.size:
+            raise IndexError(index)
+        return name_at(self._layout, i)
+
+    def __iter__(self) -> Iterator[str]:
+        for lo in range(0, self._layout.size, CHUNK):
+            yield from names_at(self._layout, np.arange(lo, min(lo + CHUNK, self._layout.size)))
+
+    def __contains__(self, name: object) -> bool:
+        return name in self._layout.index_of
+
+    def index(self, name: str, start: int = 0, stop: int | None = None) -> int:
+        try:
+            found = self._layout.index_of[name]
+        except KeyError:
+            raise ValueError(f"{name!r} is not a weight name") from None
+        if found < start or (stop is not None and found >= stop):
+            raise ValueError(f"{name!r} is not a weight name in that range")
+        return found
+
+    def of(self, indices: IntArray | Sequence[int]) -> list[str]:
+        """The names of flat ``indices``, in that order (see :func:`names_at`)."""
+        return names_at(self._layout, indices)
+
+    def widest(self) -> int:
+        """Length of the longest name: the last entry's of some array (its indices are the largest)."""
+        lasts = [block.stop - 1 for block in self._layout.blocks if block.size]
+        return max((len(name) for name in names_at(self._layout, lasts)), default=0)

@@ -26,13 +26,16 @@ import math
 import re
 from dataclasses import dataclass, field
 from functools import cached_property
-from typing import Any, Sequence
+from typing import TYPE_CHECKING, Any, Sequence
 
 import numpy as np
 from numpy.typing import NDArray
 
 from stepper.core.layers import Dense, DenseCache, Layer, Params
 from stepper.core.losses import FUSED, LOSSES, FusedLoss, Loss
+
+if TYPE_CHECKING:
+    from stepper.core.names import NameIndex, WeightNames
 
 Array = NDArray[np.float64]
 
@@ -100,18 +103,19 @@ class ParamLayout:
         raise KeyError(f"L{layer + 1}.{key}")
 
     @cached_property
-    def names(self) -> tuple[str, ...]:
-        """Readable name of every entry, in flat order; shape ``(n_params,)``."""
-        out: list[str] = []
-        for block in self.blocks:
-            for idx in np.ndindex(*block.shape):
-                out.append(f"{block.prefix}[{','.join(str(i) for i in idx)}]")
-        return tuple(out)
+    def names(self) -> WeightNames:
+        """Readable name of every entry, in flat order, ``(n_params,)``: a sequence that builds a
+        name from its array and index when asked (:mod:`stepper.core.names`), never all at once."""
+        from stepper.core.names import WeightNames
+
+        return WeightNames(self)
 
     @cached_property
-    def index_of(self) -> dict[str, int]:
-        """Flat index of each name."""
-        return {name: i for i, name in enumerate(self.names)}
+    def index_of(self) -> NameIndex:
+        """Flat index of each name (a mapping that reads the name, not a table of them all)."""
+        from stepper.core.names import NameIndex
+
+        return NameIndex(self)
 
     @cached_property
     def layer_index(self) -> NDArray[np.int64]:

@@ -20,6 +20,7 @@ from numpy.typing import NDArray
 
 from stepper.core.descent import Descent
 from stepper.core.gradcheck import CheckResult, iter_check, merged
+from stepper.core.names import WeightNames
 from stepper.core.numeric import Progress, run_to_end
 from stepper.core.optimizers import RULES, RuleState, fresh_state
 from stepper.core.selection import stratified
@@ -170,7 +171,8 @@ class SessionCore:
         return self.net.penalty(self.theta)
 
     @property
-    def names(self) -> tuple[str, ...]:
+    def names(self) -> WeightNames:
+        """Every weight's name, built when asked for (stepper.core.names)."""
         return self.net.layout.names
 
     @property

@@ -2,13 +2,13 @@
 
 from __future__ import annotations
 
-import fnmatch
 import math
 from typing import Any, Iterable
 
 import numpy as np
 from numpy.typing import NDArray
 
+from stepper.core.names import matching
 from stepper.core.nearest import arrays_text, unknown_name
 from stepper.core.optimizers import RULES, fresh_state
 from stepper.errors import UsageError
@@ -72,12 +72,12 @@ class Edits(SessionCore):
     def freeze(self, indices: Iterable[int]) -> None:
         idx = self._indices(indices)
         self._set_frozen(idx, True, f"froze {self._describe(idx)}",
-                         {"op": "freeze", "names": [self.names[i] for i in idx]})
+                         {"op": "freeze", "names": self.names.of(idx)})
 
     def unfreeze(self, indices: Iterable[int]) -> None:
         idx = self._indices(indices)
         self._set_frozen(idx, False, f"unfroze {self._describe(idx)}",
-                         {"op": "unfreeze", "names": [self.names[i] for i in idx]})
+                         {"op": "unfreeze", "names": self.names.of(idx)})
 
     def toggle_freeze(self, indices: Iterable[int]) -> None:
         """Freeze the given parameters, or unfreeze them if they are all frozen already."""
@@ -101,14 +101,13 @@ class Edits(SessionCore):
 
         Brackets in names are matched literally, so ``L1.W[0,*]`` works as expected.
         """
-        # fnmatch treats [...] as a character class; escape brackets so names match literally.
-        escaped = "".join("[[]" if c == "[" else "[]]" if c == "]" else c for c in pattern)
-        hits = [i for i, name in enumerate(self.names) if fnmatch.fnmatchcase(name, escaped)]
-        if not hits:
+        # Matched array by array, without spelling out every name of a large model.
+        hits = matching(self.net.layout, pattern)
+        if not hits.size:
             hint = (unknown_name(self.net.layout, pattern) if not any(c in pattern for c in "*?")
                     else f"the model's arrays: {arrays_text(self.net.layout)}")
             raise UsageError(f"no parameter name matches {pattern!r} ({hint})")
-        return np.array(hits, dtype=np.int64)
+        return hits
 
     def freeze_matching(self, pattern: str) -> None:
         self.freeze(self.matching(pattern))
@@ -149,7 +148,7 @@ class Edits(SessionCore):
         name = f"perturbed {self._perturbed(idx, chosen.size, indices is None, noise)}"
         self._set_values(idx, self.theta[idx] + noise, name,
                          {"op": "perturb", "scale": scale, "seed": seed,
-                          "names": None if indices is None else [self.names[i] for i in idx]})
+                          "names": None if indices is None else self.names.of(idx)})
         self.last_action = f"{name} (noise sd {scale:g}): cost {before:.6g} -> {self.train_cost():.6g}"
 
     def _perturbed(self, idx: NDArray[np.int64], n_chosen: int, everything: bool, noise: Array) -> str:

@@ -33,7 +33,7 @@ class Files(SessionCore):
             "rule_t": self.rule_state.t,
             "slope_source": self.slope_source,
             "batch_size": self.batch_size,
-            "frozen": [self.names[i] for i in np.flatnonzero(self.frozen)],
+            "frozen": self.names.of(np.flatnonzero(self.frozen)),
             "history": [[h.step, h.train_cost, h.val_cost, h.rate, h.rule] for h in self.history],
             "batch_rng": self.batch_rng.bit_generator.state,
             "noise_rng": self.noise_rng.bit_generator.state,

@@ -23,6 +23,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from stepper.core.compare import VERDICTS
+from stepper.core.names import WeightNames
 from stepper.errors import StepperError
 from stepper.formats.custom_layer import CustomLayer
 from stepper.scenarios import scenarios_root
@@ -77,7 +78,7 @@ class Snapshot:
     name: str
     source: str
     code: tuple[str, ...]
-    names: tuple[str, ...]
+    names: WeightNames
     layer: NDArray[np.int64]
     n_layers: int
     value: Array

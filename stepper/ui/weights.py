@@ -214,7 +214,7 @@ class WeightTable(ScrollView, can_focus=True):
         self.snapshot = snap
         if names_changed:
             self._mask = None
-            self._name_width = max(COLUMNS[0].width, max((len(n) for n in snap.names), default=0))
+            self._name_width = max(COLUMNS[0].width, snap.names.widest())
             self._fit_digits()
         self._rebuild()
 
