@@ -7,8 +7,11 @@ widgets, which draw from it and drop the previous one. Taking the picture in
 one place means that a frame is consistent even while a worker thread is
 stepping the session, and that no widget ever calls the session.
 
-Every per-parameter array has shape ``(n_params,)``; the numbers are copies,
-the names and layer numbers are the layout's own (they never change).
+Every per-parameter array has shape ``(n_params,)``. The weights and the
+frozen mask, which the session changes in place, are copies; the slopes and a
+check's numbers, which it replaces but never changes, are shared as read-only
+views (copying a million of each per frame cost more than drawing it); the
+names and layer numbers are the layout's own (they never change).
 """
 
 from __future__ import annotations
@@ -29,6 +32,7 @@ from stepper.formats.custom_layer import CustomLayer
 from stepper.scenarios import scenarios_root
 
 if TYPE_CHECKING:
+    from stepper.core.gradcheck import CheckResult
     from stepper.session import Session
 
 Array = NDArray[np.float64]
@@ -166,18 +170,7 @@ def take(session: Session, history: HistoryArrays | None = None) -> Snapshot:
     layout = net.layout
     n = net.n_params
     check = session.check
-    if check is not None:
-        numeric = np.array(check.numeric, dtype=np.float64)
-        rel = np.array(check.rel_error, dtype=np.float64)
-        codes = verdict_codes(np.asarray(check.verdict))
-        counts = {name: int(np.count_nonzero(codes == VERDICT_CODE[name])) for name in VERDICTS}
-        n_checked = int(np.count_nonzero(codes))
-    else:
-        n_checked = 0
-        numeric = np.full(n, np.nan)
-        rel = np.full(n, np.nan)
-        codes = np.zeros(n, dtype=np.int8)
-        counts = {name: 0 for name in VERDICTS}
+    numeric, rel, codes, counts, n_checked = _check_arrays(check, n)
     steps, train, val = (history or HistoryArrays()).arrays(session.history)
     # A custom layer's code may raise at these weights: the frame still draws, with NaN
     # where a number is missing and the message in ``problem`` (never a crash of the app).
@@ -193,7 +186,7 @@ def take(session: Session, history: HistoryArrays | None = None) -> Snapshot:
         layer=layout.layer_index,
         n_layers=len(net.layers),
         value=np.array(session.theta, dtype=np.float64),
-        analytic=np.array(analytic, dtype=np.float64),
+        analytic=_read_only(analytic),
         numeric=numeric,
         rel_error=rel,
         verdict=codes,
@@ -245,6 +238,37 @@ def shown_path(path: Path, cwd: Path | None = None) -> str:
 def _shown_path(path: str, cwd: str) -> str:
     """:func:`shown_path`, kept: the model's path does not change between frames."""
     return shown_path(Path(path), Path(cwd))
+
+
+#: The arrays of the last check drawn, and what they were drawn from (compared by identity).
+_drawn_check: list[Any] = [None, None]
+
+
+def _check_arrays(check: CheckResult | None, n: int) -> tuple[Array, Array, NDArray[np.int8], dict[str, int], int]:
+    """``(numeric, rel_error, verdict codes, counts, n_checked)`` of ``check``, read-only.
+
+    A check's arrays are never changed once made (a new check is a new object),
+    so they are shown as they are, and their verdict codes are worked out once
+    per check rather than once per frame (a million strings compared four times
+    each took tens of milliseconds).
+    """
+    if check is None:
+        nothing = _read_only(np.full(n, np.nan))
+        return nothing, nothing, _read_only(np.zeros(n, dtype=np.int8)), {v: 0 for v in VERDICTS}, 0
+    if _drawn_check[0] is not check:
+        codes = _read_only(verdict_codes(np.asarray(check.verdict)))
+        counts = {name: int(np.count_nonzero(codes == VERDICT_CODE[name])) for name in VERDICTS}
+        _drawn_check[:] = [check, (_read_only(check.numeric), _read_only(check.rel_error), codes, counts,
+                                   int(np.count_nonzero(codes)))]
+    numeric, rel, codes, counts, n_checked = _drawn_check[1]
+    return numeric, rel, codes, dict(counts), n_checked
+
+
+def _read_only(values: Any) -> Any:
+    """A read-only view of ``values`` (float64 or int8 arrays are not copied)."""
+    view = np.asarray(values).view()
+    view.flags.writeable = False
+    return view
 
 
 def _or_nan(compute: Callable[[], Any], missing: Any, problems: list[str]) -> Any:

@@ -93,8 +93,9 @@ def sort_order(snap: Snapshot, key: str, descending: bool, rows: IntArray) -> In
     either direction; ties keep flat order.
     """
     if key == "name":
-        keys = rows.astype(np.float64)
-    elif key == "value":
+        # Rows come in flat order: nothing to sort (a lexsort of a million rows took ~20 ms a frame).
+        return rows[::-1] if descending else rows
+    if key == "value":
         keys = np.abs(snap.value[rows])
     elif key == "analytic":
         keys = np.abs(snap.analytic[rows])
@@ -197,6 +198,8 @@ class WeightTable(ScrollView, can_focus=True):
         self.cursor = 0
         self._selected: int | None = None
         self._mask: NDArray[np.bool_] | None = None
+        self._rows_of: NDArray[np.bool_] | None = None
+        self._mask_rows: IntArray = np.zeros(0, dtype=np.int64)
         self._name_width = COLUMNS[0].width
         #: Significant digits of the number columns, as many as the width holds (see MAX_DIGITS).
         self.digits = MIN_DIGITS
@@ -334,6 +337,14 @@ class WeightTable(ScrollView, can_focus=True):
         self.virtual_size = Size(self.line_width(), self.rows.size + 1)
         self.refresh()
 
+    def _filtered_rows(self, snap: Snapshot) -> IntArray:
+        """Flat indices the filters let through, in flat order (kept until a filter changes)."""
+        mask = self._filter_mask(snap)
+        if self._rows_of is not mask:
+            self._rows_of = mask
+            self._mask_rows = np.flatnonzero(mask).astype(np.int64)
+        return self._mask_rows
+
     def _filter_mask(self, snap: Snapshot) -> NDArray[np.bool_]:
         if self._mask is None:
             mask = np.ones(snap.n_params, dtype=bool)
@@ -351,7 +362,7 @@ class WeightTable(ScrollView, can_focus=True):
         if snap is None:
             return
         keep = self._selected
-        rows = np.flatnonzero(self._filter_mask(snap)).astype(np.int64)
+        rows = self._filtered_rows(snap)
         self.rows = sort_order(snap, self.sort_key, self.descending, rows)
         self.virtual_size = Size(self.line_width(), self.rows.size + 1)
         # A new order or filter starts at the top (worst first, say); new numbers keep the selection.
