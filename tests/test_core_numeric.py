@@ -334,6 +334,17 @@ def test_rounding_allowance_is_sixteen_times_eps_cost_over_h(method: str) -> Non
     assert compare(2.0 * cost, analytic, numeric).verdict[2] == "agree"
 
 
+def test_worst_skips_uncomputed_slopes() -> None:
+    # Slopes not computed (NaN relative error) are never the worst, even when every
+    # computed one is small.
+    net, theta, X, Y = random_problem(NETWORKS[0], seed=8)
+    cost, analytic = net.cost_and_slopes(theta, X, Y)
+    part = numeric_slopes(net, theta, X, Y, which=[3, 4, 5])
+    result = compare(cost, analytic, part)
+    assert np.isnan(result.rel_error[0]) and result.worst() in (3, 4, 5)
+    assert result.rel_error[result.worst()] == np.nanmax(result.rel_error)
+
+
 # -- details of the batched pass -------------------------------------------------------------------
 
 

@@ -125,6 +125,33 @@ def test_trend_edges_are_a_factor_ten() -> None:
         health = layer_health(*signal_ratio_case(ratio), rate=0.1)
         assert health.travel == pytest.approx(ratio, rel=1e-12)
         assert health.trend == trend, ratio
+        # The table's "vs next" column: each layer's error signal over the next one's.
+        assert health.layers[0].signal_change == pytest.approx(ratio, rel=1e-12)
+        assert np.isnan(health.layers[1].signal_change)
+
+
+def test_a_perfect_fit_and_zero_weights_have_no_ratio_to_show() -> None:
+    # A network that fits its targets exactly has no error signal: no trend to read.
+    net, theta, X, _ = signal_ratio_case(0.5)
+    health = layer_health(net, theta, X, 0.5 * X, rate=0.1)
+    assert health.trend == "no signal" and np.isnan(health.travel)
+    assert all(np.isnan(entry.signal_change) for entry in health.layers)
+    # All-zero weights: the update-to-weight ratio is undefined, not infinite, and gets no verdict.
+    zero = layer_health(net, np.zeros(net.n_params), X, X, rate=0.1).layers[0]
+    assert np.isnan(zero.update_ratio) and zero.ratio_verdict == ""
+
+
+def test_a_relu_unit_exactly_at_zero_is_dead() -> None:
+    # ReLU passes no slope where its input is not positive: relu'(0) = 0 here (the kink
+    # counts as inactive), so a unit whose input is exactly 0 on every sample is dead.
+    net = Network(2, [Dense(2, 2, ACTIVATIONS["relu"]), Dense(2, 1, ACTIVATIONS["identity"])],
+                  "mean_squared_error")
+    theta = np.zeros(net.n_params)
+    net.views(theta)[0]["W"][:, 1] = [1.0, -1.0]
+    X = np.random.default_rng(5).normal(size=(10, 2))
+    entry = layer_health(net, theta, X, np.ones((10, 1)), rate=0.1).layers[0]
+    assert entry.active is not None and entry.active[0] == 0.0
+    assert list(entry.dead_units) == [0]
 
 
 def test_slopes_shrink_through_deep_sigmoid_layers_and_grow_through_large_linear_ones() -> None:
