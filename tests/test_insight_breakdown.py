@@ -158,6 +158,47 @@ def test_saturated_flag_edges_are_the_documented_ones() -> None:
     assert "saturated" not in flag_codes(net, theta, X, Y, "L1.W[0,0]")
 
 
+def test_flag_sentences_name_the_unit_and_the_threshold() -> None:
+    net, theta, X, Y = saturation_case([0.90, 1.0], slope=0.0099)
+    b = slope_breakdown(net, theta, X, Y, net.layout.lookup("L1.W[0,0]"))
+    assert [f.text for f in b.flags if f.code == "saturated"] == [
+        "unit 0 of layer 1 is saturated on 90% of the samples (its tanh slope is below 0.01)"]
+    codes = flag_codes(*signal_ratio_case(2e3), "L1.b[0]")
+    assert "signal_exploded" in codes
+
+
+def test_fused_sigmoid_output_is_broken_down_at_z() -> None:
+    # README: where the output activation is computed together with its loss (sigmoid
+    # with binary cross-entropy) the error signal is taken at Z and the activation
+    # factor is 1. dC/dZ = (sigmoid(Z) - y) / (n m) for the mean binary cross-entropy
+    # (PRML section 4.3.2), with scipy.special.expit as sigmoid.
+    from scipy.special import expit
+
+    rng = np.random.default_rng(12)
+    net = Network(2, [Dense(2, 1, ACTIVATIONS["sigmoid"])], "binary_cross_entropy")
+    theta = rng.normal(size=net.n_params)
+    X = rng.normal(size=(7, 2))
+    Y = rng.integers(0, 2, size=(7, 1)).astype(float)
+    b = slope_breakdown(net, theta, X, Y, net.layout.lookup("L1.W[1,0]"))
+    Z = X @ theta[:2].reshape(2, 1) + theta[2:]
+    assert b.through_z
+    np.testing.assert_array_equal(b.act_slope, np.ones(7))
+    np.testing.assert_allclose(b.error, (expit(Z[:, 0]) - Y[:, 0]) / 7, rtol=1e-12)
+    np.testing.assert_array_equal(b.inputs, X[:, 1])
+
+
+def test_sample_numbers_run_from_zero_to_n_minus_one() -> None:
+    net, theta, X, Y = signal_ratio_case(1.0)
+    n = X.shape[0]
+    assert slope_breakdown(net, theta, X, Y, 0, sample=0).sample == 0
+    assert slope_breakdown(net, theta, X, Y, 0, sample=n - 1).sample == n - 1
+    for bad in (n, -1):
+        with pytest.raises(IndexError):
+            slope_breakdown(net, theta, X, Y, 0, sample=bad)
+    with pytest.raises(IndexError):
+        slope_breakdown(net, theta, X, Y, net.n_params)
+
+
 def test_error_signal_flags_at_a_thousand_times() -> None:
     # README: an error signal that shrank or grew by 1000 times on the way back from the
     # output (common practice). In the case the hidden unit's signal is exactly |W2|
