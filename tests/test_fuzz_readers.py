@@ -348,7 +348,7 @@ def test_valid_csv_header_with_random_cells(folder: Path, extra: list[str], orde
     header = [name for name in [*["a", "b", "y"], *extra]]
     header = [header[i] for i in order if i < len(header)]
     buffer = io.StringIO()
-    writer = csv.writer(buffer, lineterminator="\n")
+    writer = csv.writer(buffer, lineterminator="\r\n")   # RFC 4180 line breaks: a CR in a cell gets quoted
     writer.writerow(header)
     writer.writerows(rows)
     load(folder, VALID_MODEL, buffer.getvalue())
