@@ -131,7 +131,7 @@ def test_directions_in_json(capsys: pytest.CaptureFixture[str]) -> None:
     assert code == 1 and doc["passed"] is False
     directions = doc["directions"]
     assert (directions["k"], directions["seed"], directions["method"]) == (2, 4, "forward")
-    assert directions["counts"] == {"agree": 7, "kink": 0, "doubtful": 0, "disagree": 1}
+    assert directions["counts"] == {"agree": 7, "kink": 0, "unresolved": 0, "doubtful": 0, "disagree": 1}
     by_name = {a["array"]: a for a in directions["arrays"]}
     assert by_name["L2.b"]["verdict"] == "disagree" and by_name["L2.b"]["entries"] == 3
     assert len(by_name["L1.W"]["numeric"]) == 2 and by_name["L1.W"]["layer"] == 1

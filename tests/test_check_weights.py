@@ -167,7 +167,7 @@ def test_a_pattern_checks_only_its_weights(capsys: pytest.CaptureFixture[str]) -
     code, out, _ = run(capsys, BUGGY, "--weights", "L1.*")
     assert code == 0
     assert "checked 25 of 65 weights: the names matching L1.*\n" in out
-    assert "verdicts    25 agree, 0 doubtful, 0 disagree, 0 kink (of the 25 checked)" in out
+    assert "verdicts    25 agree, 0 doubtful, 0 disagree, 0 kink, 0 unresolved (of the 25 checked)" in out
     assert "PASS: every slope agrees (of the 25 weights checked)" in out
     listed = [line.split()[0] for line in out.splitlines() if line.startswith("L")]
     assert listed[:25] == [f"L1.W[{i},{j}]" for i in range(4) for j in range(5)] + [f"L1.b[{j}]" for j in range(5)]

@@ -106,7 +106,7 @@ def test_readable_by_safetensors_alone(bakery, tmp_path: Path) -> None:  # type:
     with safe_open(str(path), framework="numpy") as handle:
         meta = json.loads(handle.metadata()["stepper"])
         assert np.array_equal(handle.get_tensor("L2.W"), tensors["L2.W"])
-    assert meta["format"] == 1
+    assert meta["format"] == 2
     assert meta["step_count"] == 9 and meta["rule"] == "adam" and meta["batch_size"] == 24
     assert meta["model_digest"] == bakery.digest
     assert sorted(meta["frozen"]) == sorted(s.names[i] for i in np.flatnonzero(s.frozen))
@@ -363,8 +363,18 @@ def rewrite_meta(source: Path, target: Path, change: dict[str, Any]) -> Path:
      "batch generator state is not valid"),
     ({"batch_rng": {"bit_generator": "MT19937", "state": {}}}, "batch generator state is not valid"),
     ({"batch_rng": "soon"}, "batch generator state is not valid"),
-    ({"history": []}, "metadata is incomplete or wrong"),
-    ({"history": [[0, 1.0]]}, "metadata is incomplete or wrong"),
+    ({"history_length": 0}, "metadata is incomplete or wrong (history_length: 0 is outside"),
+    ({"history_length": 5}, "tensor history.train is float64 (11,), expected float64 (5,)"),
+    ({"history_rules": ["gd", "lbfgs"]}, "history_rules names an unknown rule"),
+    ({"step_count": 1e999}, "the 'stepper' metadata: Infinity is not a number JSON allows"),
+    ({"step_count": "9"}, "step_count: expected a whole number, got '9'"),
+    ({"batch_size": 0}, "batch_size: 0 is outside [1, 192]"),
+    ({"batch_size": 1000}, "batch_size: 1000 is outside [1, 192]"),
+    ({"batch_size": -3}, "batch_size: -3 is outside [1, 192]"),
+    ({"rule_t": True}, "rule_t: expected a whole number, got true"),
+    ({"batch_rng": {"bit_generator": "PCG64", "state": {"state": 2**130, "inc": 3}, "has_uint32": 0,
+                    "uinteger": 0}}, "batch generator state is not valid"),
+    ({"batch_cursor": 999}, "batch_cursor: 999 is outside [0, 192]"),
     ({"rule": "lbfgs"}, "metadata is incomplete or wrong"),
     ({"rule": "momentum"}, "does not fit: the momentum rule's memory (tensors rule.velocity.*) is missing"),
     ({"rate": -1}, "metadata is incomplete or wrong"),

@@ -22,7 +22,7 @@ import pytest
 from autograd import grad
 
 from stepper import cli
-from stepper.commands.run import _StopFlag
+from stepper.commands.common import StopFlag
 from stepper.formats.model_file import load_setup
 from stepper.session import Session
 
@@ -133,7 +133,7 @@ def test_text_report(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None
     out, err = capsys.readouterr()
     assert code == 0
     lines = out.splitlines()
-    assert lines[0] == "10 of 10 steps: gd, rate 0.05, analytic slopes, batches of 40"
+    assert lines[0] == "10 of 10 steps: gd, rate 0.05, analytic slopes, batches of 40 (epoch 2: 192 of 192 rows used)"
     assert lines[1].startswith("train cost  ") and " -> " in lines[1]
     assert lines[2].startswith("validation  ")
     assert lines[3].startswith("train       R2 ") and " -> R2 " in lines[3]
@@ -168,7 +168,7 @@ def test_bad_options_exit_2_with_one_line(capsys: pytest.CaptureFixture[str], ar
 
 
 def test_stop_flag_first_asks_then_interrupts(capsys: pytest.CaptureFixture[str]) -> None:
-    flag = _StopFlag()
+    flag = StopFlag()
     assert not flag.requested
     flag(signal.SIGINT, None)
     assert flag.requested
@@ -181,18 +181,20 @@ def test_stop_flag_first_asks_then_interrupts(capsys: pytest.CaptureFixture[str]
 #: test knows the Ctrl-C handler is in place before it sends SIGINT.
 _RUNNER = """
 import sys
+from contextlib import contextmanager
 import stepper.commands.run as run
-original = run._progress
+original = run.progress_bar
 
-def progress(total):
-    inner = original(total)
-    def report(done, total_):
-        if done == 1:
-            print("first step made", file=sys.stderr, flush=True)
-        inner(done, total_)
-    return report
+@contextmanager
+def progress(label, lines=False):
+    with original(label, lines) as inner:
+        def report(done, total_):
+            if done == 1:
+                print("first step made", file=sys.stderr, flush=True)
+            inner(done, total_)
+        yield report
 
-run._progress = progress
+run.progress_bar = progress
 from stepper.cli import main
 sys.exit(main(sys.argv[1:]))
 """

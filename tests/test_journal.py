@@ -9,6 +9,7 @@ settings, history and undo stack as the session that wrote them.
 from __future__ import annotations
 
 import json
+import re
 from pathlib import Path
 from typing import Any
 
@@ -18,7 +19,7 @@ import pytest
 from stepper import cli
 from stepper.commands.replay import replay
 from stepper.core.schedules import Schedule
-from stepper.errors import CheckpointError
+from stepper.errors import CheckpointError, UsageError
 from stepper.formats.journal import read_journal
 from stepper.formats.model_file import load_setup
 from stepper.session import Session
@@ -184,17 +185,32 @@ def test_appending_after_a_crash_cut_line(bakery, tmp_path: Path) -> None:  # ty
     assert fingerprint(replay(journal)) == fingerprint(second)
 
 
+def test_a_session_never_saves_over_a_checkpoint_it_loaded(bakery, tmp_path: Path) -> None:  # type: ignore[no-untyped-def]
+    ck = tmp_path / "ck.safetensors"
+    Session(bakery, rate=0.05).save_checkpoint(ck)
+    s = Session(bakery, journal=tmp_path / "j.jsonl")
+    s.load_checkpoint(ck)
+    s.step(3)
+    with pytest.raises(UsageError, match="is a checkpoint this session loaded; an output never replaces an input"):
+        s.save_checkpoint(ck)
+    s.close()
+
+
 def test_replay_refuses_a_checkpoint_changed_since_it_was_loaded(bakery, tmp_path: Path) -> None:  # type: ignore[no-untyped-def]
-    # 'stepper run --resume ck --save ck --journal j' overwrites the checkpoint
-    # the journal says was loaded; replaying from the new content would give
-    # another state without saying so.
+    # Another session overwrites the checkpoint the journal says was loaded;
+    # replaying from the new content would give another state without saying so.
     ck = tmp_path / "ck.safetensors"
     Session(bakery, rate=0.05).save_checkpoint(ck)
     journal = tmp_path / "j.jsonl"
     s = Session(bakery, journal=journal)
     s.load_checkpoint(ck)
     s.step(3)
-    s.save_checkpoint(ck)
+    other = Session(bakery)
+    other.load_checkpoint(ck)
+    other.step(3)
+    other.save_checkpoint(tmp_path / "later.safetensors")
+    other.close()
+    (tmp_path / "later.safetensors").replace(ck)
     s.close()
     with pytest.raises(CheckpointError, match="has changed since") as info:
         replay(journal)
@@ -218,16 +234,28 @@ def test_a_broken_line_in_the_middle_is_an_error(bakery, tmp_path: Path) -> None
 
 @pytest.mark.parametrize("entry, message", [
     ({"op": "fly"}, "unknown journal operation 'fly'"),
-    ({"op": "step"}, "incomplete or wrong"),
-    ({"op": "freeze", "names": ["L7.W[0,0]"]}, "incomplete or wrong"),
+    ({"op": "step"}, "step: no 'n'"),
+    ({"op": "step", "n": 1e999}, "Infinity is not a number JSON allows"),
+    ({"op": "step", "n": 10**12}, "step: n: 1000000000000 is outside [1, 1000000000]"),
+    ({"op": "step", "n": True}, "step: n: expected a whole number, got true"),
+    ({"op": "set_batch_size", "size": 0}, "set_batch_size: size: 0 is outside [1, 192]"),
+    ({"op": "set_batch_size", "size": 1000}, "set_batch_size: size: 1000 is outside [1, 192]"),
+    ({"op": "set_batch_size", "size": -3}, "set_batch_size: size: -3 is outside [1, 192]"),
+    ({"op": "perturb", "scale": 0.1, "seed": -1, "names": None}, "perturb: seed: -1 is outside"),
+    ({"op": "perturb", "scale": "big", "seed": 1, "names": None}, "perturb: scale: expected a number"),
+    ({"op": "set_rate", "rate": 0}, "set_rate: rate: 0 must be a positive number"),
+    ({"op": "set_rule", "rule": "lbfgs"}, "set_rule: rule: 'lbfgs' is not one of: gd, momentum, adam"),
+    ({"op": "freeze", "names": ["L7.W[0,0]"]}, "freeze: names: the model has no parameter L7.W[0,0]"),
+    ({"op": "freeze", "names": "L1.W[0,0]"}, "freeze: names: expected a list of names"),
+    ({"op": "set_value", "name": "L1.W[0,0]", "value": None}, "set_value: value: expected a number, got null"),
 ])
 def test_a_bad_entry_is_an_error(bakery, tmp_path: Path, entry: dict[str, Any], message: str) -> None:  # type: ignore[no-untyped-def]
     journal = tmp_path / "j.jsonl"
     Session(bakery, journal=journal).close()
     with open(journal, "a", encoding="utf-8") as handle:
-        handle.write(json.dumps({"op": "step", "n": 1}) + "\n")
-        handle.write(json.dumps(entry) + "\n")
-    with pytest.raises(CheckpointError, match=message) as info:
+        handle.write(json.dumps({"seq": 1, "op": "step", "n": 1}) + "\n")
+        handle.write(json.dumps({"seq": 2, **entry}) + "\n")
+    with pytest.raises(CheckpointError, match=re.escape(message)) as info:
         replay(journal)
     assert info.value.message.startswith(f"{journal}: line 3: ")
 
@@ -274,7 +302,7 @@ def test_run_with_a_journal_then_replay(tmp_path: Path, capsys: pytest.CaptureFi
     ("garbage\n", "line 1: not a JSON object"),
     ('{"journal": "other"}\n', "line 1: not a Stepper journal header"),
     ('{"journal": "stepper", "version": 99}\n', "unsupported journal version 99"),
-    (b"\xff\xfe\x00", "cannot be read"),
+    (b"\xff\xfe\x00\n", "line 1: not a JSON object"),
 ])
 def test_replay_command_bad_journal_exits_2(tmp_path: Path, capsys: pytest.CaptureFixture[str],
                                             content: str | bytes, message: str) -> None:

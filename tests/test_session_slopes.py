@@ -75,10 +75,11 @@ def test_mini_batch_steps_are_reproducible_from_the_seed(bakery) -> None:  # typ
 def test_a_mini_batch_step_uses_the_slopes_of_the_drawn_samples(bakery) -> None:  # type: ignore[no-untyped-def]
     s = Session(bakery, rate=0.1, seed=9)
     s.set_batch_size(12)
-    draws = np.random.default_rng(9)  # the session draws its batches from default_rng(seed)
+    # Epoch-wise: an order of the rows from default_rng(seed), taken 12 at a time.
+    order = np.random.default_rng(9).permutation(bakery.data.n_train)
     theta = s.theta.copy()
-    for _ in range(3):
-        pick = np.sort(draws.choice(bakery.data.n_train, size=12, replace=False))
+    for k in range(3):
+        pick = np.sort(order[12 * k : 12 * (k + 1)])
         _, slopes = s.net.cost_and_slopes(theta, bakery.data.X[pick], bakery.data.Y[pick])
         theta = theta - 0.1 * slopes
     s.step(3)
@@ -104,3 +105,27 @@ def test_batch_size_of_the_whole_set_is_full_batch(bakery) -> None:  # type: ign
     assert s.batch_size is None
     with pytest.raises(UsageError, match="between 1 and"):
         s.set_batch_size(bakery.data.n_train + 1)
+
+
+def test_mini_batches_use_every_row_once_per_epoch(bakery, monkeypatch: pytest.MonkeyPatch) -> None:  # type: ignore[no-untyped-def]
+    # Epoch-wise sampling (each row once per pass, reshuffled each epoch) is common
+    # practice (e.g. Goodfellow, Bengio & Courville, Deep Learning, 2016, section 8.1.3).
+    n = bakery.data.n_train  # 192 rows: batches of 50 make epochs of 50, 50, 50, 42
+    s = Session(bakery, rate=0.01, seed=4)
+    s.set_batch_size(50)
+    seen: list[np.ndarray] = []
+    real = s.net.cost_and_slopes
+
+    def spy(theta, X, Y):  # type: ignore[no-untyped-def]
+        rows = [int(np.flatnonzero((bakery.data.X == x).all(axis=1))[0]) for x in X]
+        seen.append(np.array(rows))
+        return real(theta, X, Y)
+
+    monkeypatch.setattr(s.net, "cost_and_slopes", spy)
+    s.step(8)
+    sizes = [len(rows) for rows in seen]
+    assert sizes == [50, 50, 50, 42, 50, 50, 50, 42]
+    first, second = np.concatenate(seen[:4]), np.concatenate(seen[4:])
+    assert sorted(first.tolist()) == list(range(n)) and sorted(second.tolist()) == list(range(n))
+    assert not np.array_equal(first, second), "each epoch draws a new order"
+    assert s.epoch == 2 and s.batch_cursor == n

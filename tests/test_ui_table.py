@@ -66,8 +66,8 @@ def test_sorting_by_verdict_puts_disagreements_first(snap: Snapshot) -> None:
 
 
 def test_verdict_codes_map_every_verdict_and_unknown_to_zero() -> None:
-    names = np.array(["agree", "doubtful", "disagree", "kink", ""])
-    assert verdict_codes(names).tolist() == [1, 3, 4, 2, 0]
+    names = np.array(["agree", "doubtful", "disagree", "kink", "unresolved", ""])
+    assert verdict_codes(names).tolist() == [1, 4, 5, 2, 3, 0]
 
 
 def test_sort_keys_cover_every_column(snap: Snapshot) -> None:

@@ -17,7 +17,7 @@ from stepper.commands.common import (
     positive_float,
     load,
     positive_int,
-    progress_printer,
+    progress_bar,
     resumed_weights,
     sample_limit,
 )
@@ -47,7 +47,8 @@ def add_parser(subs: Any) -> None:
         help="check every slope against finite differences (exit 1 unless every one agrees)",
         description="Compute each weight's slope by backpropagation and by finite "
         "differences, and report where they disagree. Exit code: 0 every slope agrees "
-        "(slopes at a kink are not judged), 1 some disagree or are only doubtful, 2 bad input.",
+        "(slopes at a kink are not judged), 1 some disagree, are only doubtful or cannot be resolved "
+        "at this step size, 2 bad input.",
     )
     add_model_argument(p)
     add_slope_options(p)
@@ -98,17 +99,16 @@ def handle(args: argparse.Namespace) -> int:
     # numpy's warnings about them would only add lines of noise on stderr.
     with np.errstate(over="ignore", invalid="ignore", divide="ignore", under="ignore"):
         if choice is not None:
-            result = run_to_end(
-                iter_check(net, theta, X, Y, args.method, args.delta, which=choice.indices),
-                progress_printer("numeric slopes"),
-            )
+            with progress_bar("numeric slopes") as bar:
+                result = run_to_end(iter_check(net, theta, X, Y, args.method, args.delta, which=choice.indices), bar)
             assert result is not None
         if args.directions is not None:
-            directions = run_to_end(
-                iter_directional_check(net, theta, X, Y, args.directions, args.seed, args.method,
-                                       args.delta, None if result is None else result.analytic),
-                progress_printer("directions"),
-            )
+            with progress_bar("directions") as bar:
+                directions = run_to_end(
+                    iter_directional_check(net, theta, X, Y, args.directions, args.seed, args.method,
+                                           args.delta, None if result is None else result.analytic),
+                    bar,
+                )
             assert directions is not None
         health = layer_health(net, theta, X, Y, rate)
         inputs = [
@@ -272,6 +272,7 @@ def print_report(setup: Setup, result: CheckResult | None, n_samples: int,
               + ("" if np.isfinite(cost) else "  (not a finite number: no slope can be checked here)")
               + "\n")
     failures = []
+    unresolved = ""
     if result is not None and choice is not None:
         counts = result.counts
         w = result.worst()
@@ -283,8 +284,14 @@ def print_report(setup: Setup, result: CheckResult | None, n_samples: int,
         if not hints:
             out.write(f"worst       {name_at(layout, w)} (relative error {result.rel_error[w]:.2e}, "
                       f"{result.verdict[w]})\n")
-        if not result.passed:
+        if counts["disagree"]:
             failures.append(f"{counts['disagree']} slopes disagree")
+        if counts["unresolved"]:
+            step = result.suggested_step()
+            advice = f"; a step size h of about {step:.2g} would resolve them" if step is not None else ""
+            unresolved = (f"{counts['unresolved']} slope(s) are smaller than the numeric slopes' rounding "
+                          f"allowance ({result.noise:.2g} = 16 u |cost| / h), so this check cannot tell right "
+                          f"from wrong there{advice}")
     if directions is not None:
         counts = directions.counts
         out.write(f"directions  {len(directions.arrays)} arrays: "
@@ -298,7 +305,9 @@ def print_report(setup: Setup, result: CheckResult | None, n_samples: int,
     doubtful = doubtful_count(result, directions, inputs)
     kinks = 0 if result is None else result.counts["kink"]
     if failures:
-        verdict = "FAIL: " + "; ".join(failures)
+        verdict = "FAIL: " + "; ".join(failures + ([unresolved] if unresolved else []))
+    elif unresolved:
+        verdict = "NOT RESOLVED: " + unresolved
     elif doubtful:
         # Exit 1 too: a doubtful slope is not confirmed (README, "Checking slopes from a script").
         verdict = (f"FAIL: {doubtful} slopes are doubtful (relative error between {_power(AGREE_BELOW)} and "

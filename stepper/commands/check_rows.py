@@ -28,7 +28,8 @@ IntArray = NDArray[np.int64]
 #: Rows formatted and written at a time.
 CHUNK = 16384
 
-_MARKS = {"agree": "ok  agree", "doubtful": "?   doubtful", "disagree": "XX  disagree", "kink": "~   kink"}
+_MARKS = {"agree": "ok  agree", "doubtful": "?   doubtful", "disagree": "XX  disagree", "kink": "~   kink",
+          "unresolved": "??  unresolved"}
 
 
 def mark(verdict: str) -> str:

@@ -12,8 +12,9 @@ import argparse
 import math
 import os
 import sys
+from contextlib import contextmanager
 from pathlib import Path
-from typing import TYPE_CHECKING, Any, Sequence
+from typing import TYPE_CHECKING, Any, Callable, Iterator, Sequence
 
 import numpy as np
 
@@ -22,6 +23,7 @@ from stepper.core.numeric import METHODS
 from stepper.errors import UsageError
 from stepper.formats.atomic import write_atomic
 from stepper.formats.model_file import Setup, load_setup
+from stepper.formats.outputs import check_output
 from stepper.scenarios import resolve_model
 from stepper.session.runaway import GROWTH, RISES, RUN_ON, RunawayRule
 
@@ -74,7 +76,8 @@ def add_step_options(parser: argparse.ArgumentParser, purpose: str, runaway: boo
                         help="slopes from backpropagation (analytic, default) or finite differences (numeric)")
     parser.add_argument("--batch", type=positive_int, default=None, metavar="N",
                         help="mini-batches of N samples, drawn with a seeded shuffle (default: full batch)")
-    parser.add_argument("--seed", type=int, default=0, help="seed for mini-batch draws (default 0)")
+    parser.add_argument("--seed", type=non_negative_int, default=0,
+                        help="seed for the mini-batch order and the noise (0 or more; default 0)")
     if not runaway:
         return
     parser.add_argument("--runaway-growth", type=_growth, default=GROWTH, metavar="F",
@@ -151,6 +154,10 @@ def _whole(text: str, least: int, too_small: str) -> int:
     return value
 
 
+def non_negative_int(text: str) -> int:
+    return _whole(text, 0, "must be 0 or more")
+
+
 def load(args: argparse.Namespace) -> Setup:
     model = resolve_model(args.model)
     if wants_graph(args, model):
@@ -197,25 +204,54 @@ def fmt(value: float, width: int = 12) -> str:
     return f"{value: .{max(width - 8, 3)}e}".rjust(width)
 
 
-def progress_printer(label: str) -> Any:
-    """A callback ``(done, total)`` that draws a one-line bar on a terminal, nothing otherwise."""
+@contextmanager
+def progress_bar(label: str, lines: bool = False) -> Iterator[Callable[[int, int], None]]:
+    """A callback ``(done, total)`` that shows progress on stderr while the block runs.
+
+    On a terminal, a ``rich.progress`` bar that disappears when done; otherwise
+    nothing, or with ``lines`` a line at every tenth of the way (for logs of a
+    long ``stepper run``).
+    """
     stream = sys.stderr
     if not stream.isatty():
-        return None
-    state = {"last": -1}
-
-    def show(done: int, total: int) -> None:
-        pct = 100 * done // max(total, 1)
-        if pct == state["last"]:
+        if not lines:
+            yield lambda done, total: None
             return
-        state["last"] = pct
-        filled = pct // 4
-        stream.write(f"\r{label} [{'#' * filled}{'.' * (25 - filled)}] {pct:3d}%")
-        if done >= total:
-            stream.write("\r" + " " * (len(label) + 35) + "\r")
-        stream.flush()
+        marks: dict[int, set[int]] = {}
 
-    return show
+        def line(done: int, total: int) -> None:
+            wanted = marks.setdefault(total, {max(1, total * k // 10) for k in range(1, 11)})
+            if done in wanted:
+                stream.write(f"{label} {done}/{total}\n")
+                stream.flush()
+
+        yield line
+        return
+    from rich.console import Console
+    from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeRemainingColumn
+
+    with Progress(TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(), TimeRemainingColumn(),
+                  console=Console(file=stream), transient=True) as progress:
+        task = progress.add_task(label, total=None)
+
+        def update(done: int, total: int) -> None:
+            progress.update(task, completed=done, total=total)
+
+        yield update
+
+
+class StopFlag:
+    """A SIGINT handler: the first Ctrl-C asks to stop after the current step, a second interrupts at once."""
+
+    def __init__(self, what: str = "") -> None:
+        self.requested = False
+        self.what = what
+
+    def __call__(self, signum: int, frame: Any) -> None:
+        if self.requested:
+            raise KeyboardInterrupt
+        self.requested = True
+        print(f"\nstopping {self.what}after the current step (Ctrl-C again to stop at once)", file=sys.stderr)
 
 
 def write_plot(target: str, text: str, *, json_output: bool, inputs: Sequence[Path | None] = ()) -> None:
@@ -242,6 +278,7 @@ def check_plot_target(target: str | None, inputs: Sequence[Path | None]) -> None
     """Refuse a ``--plot`` file that is one of ``inputs`` (or another output); call it before long work."""
     if target is None or target == "-":
         return
+    check_output(Path(target), [("an input", Path(s)) for s in inputs if s is not None], "text", "--plot")
     for source in inputs:
         if source is not None and _same_file(Path(target), Path(source)):
             raise UsageError(f"--plot {target}: is also an input ({source}); choose another file")

@@ -5,7 +5,6 @@ from __future__ import annotations
 import argparse
 import dataclasses
 import math
-import os
 import sys
 from pathlib import Path
 from typing import Any
@@ -23,12 +22,17 @@ from stepper.commands.common import (
 )
 from stepper.errors import UsageError
 from stepper.formats.model_file import Setup
+from stepper.formats.outputs import check_output
 
 
 def default_log_file() -> Path:
-    """Where the app logs while it runs: ``$XDG_STATE_HOME/stepper/open.log`` (or ``~/.local/state``)."""
-    state = os.environ.get("XDG_STATE_HOME") or str(Path.home() / ".local" / "state")
-    return Path(state) / "stepper" / "open.log"
+    """Where the app logs while it runs: the user's state folder (platformdirs), ``stepper/open.log``.
+
+    On Linux that is ``$XDG_STATE_HOME/stepper/open.log`` (``~/.local/state`` by default).
+    """
+    import platformdirs
+
+    return Path(platformdirs.user_state_path("stepper")) / "open.log"
 
 
 def add_parser(subs: Any) -> None:
@@ -87,14 +91,23 @@ def handle(args: argparse.Namespace) -> int:
     if args.samples is not None:
         setup = cut_samples(setup, args.samples)
     # Imported here so that the other commands start without loading Textual.
-    from stepper.session import Session, default_journal_for
+    from stepper.session import Session, default_journal_for, verify_checkpoint
     from stepper.ui.app import run_app
 
+    if args.resume is not None:
+        verify_checkpoint(setup, args.resume)  # before the journal is created: a bad one leaves no file
+    new_journal = False
     if args.no_journal or args.samples is not None:
         # A journal of a cut training set could not be replayed from the model file.
         args.journal = None
     elif args.journal is None:
         args.journal = default_journal_for(setup.path)
+        new_journal = True
+    else:
+        check_output(args.journal, setup.input_files(), "journal", "--journal")
+    log_file = args.log or default_log_file()
+    check_output(log_file, setup.input_files() + ([("the journal", args.journal)] if args.journal else []),
+                 "text", "--log")
 
     batch = None if args.batch is None else min(args.batch, setup.data.n_train)
     if args.resume is None:
@@ -102,16 +115,15 @@ def handle(args: argparse.Namespace) -> int:
         # a fresh session with --rate, --rule, --slopes or --batch has no unsaved changes yet.
         session = Session(setup, journal=args.journal, rate=args.rate if args.rate is not None else 0.1,
                           rule=args.rule or "gd", seed=args.seed, slope_source=args.slopes or "analytic",
-                          batch_size=batch)
+                          batch_size=batch, new_journal=new_journal)
     else:
-        session = Session(setup, journal=args.journal, seed=args.seed)
+        session = Session(setup, journal=args.journal, seed=args.seed, new_journal=new_journal)
     try:
         if args.resume is not None:
             session.load_checkpoint(args.resume)
             apply_step_options(session, args)
         session.set_runaway(runaway_rule(args))
         session.set_refresh_after_step(bool(args.check_every_step))
-        return run_app(session, args.log or default_log_file(), noise=args.noise,
-                       numeric_budget=args.numeric_budget / 1000.0)
+        return run_app(session, log_file, noise=args.noise, numeric_budget=args.numeric_budget / 1000.0)
     finally:
         session.close()

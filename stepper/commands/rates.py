@@ -10,7 +10,7 @@ from typing import Any
 
 from stepper.charts import range_text
 from stepper.commands.common import (add_model_argument, check_plot_target, positive_float, positive_int,
-                                     progress_printer, write_plot)
+                                     progress_bar, write_plot)
 from stepper.commands.session_options import add_session_options, open_session, settings_document
 from stepper.core.numeric import run_to_end
 from stepper.core.ratetest import DEFAULT_STEPS, RangeResult, log_rates
@@ -59,7 +59,8 @@ def handle(args: argparse.Namespace) -> int:
             rates = log_rates(low, high, count)
         except ValueError as exc:
             raise UsageError(f"--low/--high: {exc}") from None
-        result = run_to_end(session.iter_range_test(rates.tolist(), args.steps), progress_printer("rates"))
+        with progress_bar("rates") as bar:
+            result = run_to_end(session.iter_range_test(rates.tolist(), args.steps), bar)
         assert result is not None
         if args.json:
             json.dump(document(session, result), sys.stdout, indent=1)

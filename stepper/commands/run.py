@@ -12,11 +12,11 @@ from typing import Any
 import numpy as np
 
 from stepper.charts import spreads_text
-from stepper.commands.common import add_model_argument, check_plot_target, write_plot
+from stepper.commands.common import StopFlag, add_model_argument, check_plot_target, progress_bar, write_plot
 from stepper.commands.session_options import add_session_options, open_session, settings_document
 from stepper.core.metrics import metrics_document
 from stepper.core.numeric import run_to_end
-from stepper.errors import DivergenceError, RunawayError
+from stepper.errors import CustomLayerError, DivergenceError, RunawayError
 from stepper.scenarios import resolve_model
 from stepper.session import Session, SetMetrics
 from stepper.training_report import metric_words, settings_words
@@ -45,19 +45,6 @@ def add_parser(subs: Any) -> None:
     p.set_defaults(handler=handle)
 
 
-class _StopFlag:
-    """First Ctrl-C asks to stop after the current step; a second one interrupts at once."""
-
-    def __init__(self) -> None:
-        self.requested = False
-
-    def __call__(self, signum: int, frame: Any) -> None:
-        if self.requested:
-            raise KeyboardInterrupt
-        self.requested = True
-        print("\nstopping after the current step (Ctrl-C again to stop at once)", file=sys.stderr)
-
-
 def _steps(text: str) -> int:
     try:
         value = int(text)
@@ -70,11 +57,13 @@ def _steps(text: str) -> int:
 
 def handle(args: argparse.Namespace) -> int:
     check_plot_target(args.plot, _plot_inputs(args, resolve_model(args.model)) + [args.save, args.journal])
-    session = open_session(args, journal=args.journal)
+    session = open_session(args, journal=args.journal, save=args.save)
     try:
         return _run(session, args)
     finally:
         session.close()
+        if session.journal_problem is not None:
+            print(f"stepper: warning: {session.journal_problem}", file=sys.stderr)
 
 
 def _run(session: Session, args: argparse.Namespace) -> int:
@@ -84,15 +73,21 @@ def _run(session: Session, args: argparse.Namespace) -> int:
     start_step = session.step_count
     start_metrics = session.metrics()
 
-    stop = _StopFlag()
+    stop = StopFlag()
     previous = signal.signal(signal.SIGINT, stop)
     refused: DivergenceError | None = None
     runaway: RunawayError | None = None
+    failed: CustomLayerError | None = None
     try:
         if args.steps:
-            run_to_end(session.iter_steps(args.steps), _progress(args.steps), lambda: stop.requested)
+            with progress_bar("step", lines=True) as bar:
+                run_to_end(session.iter_steps(args.steps), bar, lambda: stop.requested)
     except RunawayError as exc:
         runaway = exc
+    except CustomLayerError as exc:
+        # The steps before it are kept, and still saved: a custom layer that fails
+        # (or hangs and is stopped with Ctrl-C) on new weights costs nothing made so far.
+        failed = exc
     except DivergenceError as exc:
         refused = exc
     finally:
@@ -136,7 +131,8 @@ def _run(session: Session, args: argparse.Namespace) -> int:
                 else " (stopped early)" if stop.requested else "")
         out.write(f"{steps_done} of {args.steps} steps{note}: {session.rule}, rate {session.rate:g}, "
                   f"{session.slope_source} slopes, "
-                  f"{'full batch' if session.batch_size is None else f'batches of {session.batch_size}'}\n")
+                  f"{'full batch' if session.batch_size is None else f'batches of {session.batch_size}'}"
+                  f"{_epoch_note(session)}\n")
         settings = settings_words(session.l2, session.descent, session.rate, session.step_count)
         if settings:
             out.write(f"settings    {settings}\n")
@@ -166,6 +162,9 @@ def _run(session: Session, args: argparse.Namespace) -> int:
         print(f"stepper: {refused.what}; try a smaller --rate (the app's rate preview compares rates)",
               file=sys.stderr)
         return 1
+    if failed is not None:
+        print(f"stepper: {failed.message}", file=sys.stderr)
+        return failed.exit_code
     return 0
 
 
@@ -178,20 +177,8 @@ def _metrics_document(found: SetMetrics) -> dict[str, Any]:
             "validation": None if found.validation is None else metrics_document(found.validation)}
 
 
-def _progress(total: int) -> Any:
-    stream = sys.stderr
-    if stream.isatty():
-        def bar(done: int, total_: int) -> None:
-            filled = 30 * done // max(total_, 1)
-            stream.write(f"\rstepping [{'#' * filled}{'.' * (30 - filled)}] {done}/{total_}")
-            if done >= total_:
-                stream.write("\n")
-            stream.flush()
-        return bar
-    marks = {max(1, total * k // 10) for k in range(1, 11)}
-
-    def lines(done: int, total_: int) -> None:
-        if done in marks:
-            stream.write(f"step {done}/{total_}\n")
-            stream.flush()
-    return lines
+def _epoch_note(session: Session) -> str:
+    """``(epoch 3: 40 of 192 rows used)`` for mini-batches, else nothing."""
+    if session.batch_size is None or session.epoch == 0:
+        return ""
+    return f" (epoch {session.epoch}: {session.batch_cursor} of {session.setup.data.n_train} rows used)"

@@ -9,11 +9,13 @@ from __future__ import annotations
 
 import argparse
 import math
+from pathlib import Path
 from typing import Any
 
 from stepper.commands.common import add_resume_option, add_step_options, apply_step_options, load, positive_float
 from stepper.core.schedules import Schedule, ScheduleError, parse_schedule
-from stepper.session import Session
+from stepper.formats.outputs import check_output
+from stepper.session import Session, verify_checkpoint
 
 
 def add_training_options(p: argparse.ArgumentParser) -> None:
@@ -43,9 +45,23 @@ def add_session_options(p: argparse.ArgumentParser, purpose: str, runaway: bool 
     add_training_options(p)
 
 
-def open_session(args: argparse.Namespace, journal: Any = None) -> Session:
-    """A session on the model, the checkpoint loaded, then the options applied in that order."""
-    session = Session(load(args), journal=journal, seed=args.seed)
+def open_session(args: argparse.Namespace, journal: Any = None, save: Path | None = None) -> Session:
+    """A session on the model, the checkpoint loaded, then the options applied in that order.
+
+    Before anything is written: the journal and the checkpoint to ``save`` pass
+    the output guard (never an input, never a special file), and the checkpoint
+    to resume is read and checked, so a bad one leaves no journal behind.
+    """
+    setup = load(args)
+    inputs = setup.input_files() + ([("the checkpoint to resume", args.resume)] if args.resume else [])
+    if journal is not None:
+        check_output(journal, inputs, "journal", "--journal")
+        inputs.append(("the journal", journal))
+    if save is not None:
+        check_output(save, inputs, "checkpoint", "--save")
+    if args.resume is not None:
+        verify_checkpoint(setup, args.resume)
+    session = Session(setup, journal=journal, seed=args.seed)
     try:
         if args.resume is not None:
             session.load_checkpoint(args.resume)

@@ -26,10 +26,14 @@ from stepper.core.nearest import unknown_name
 from stepper.core.slice import DEFAULT_POINTS, CostSlice, cost_slice
 from stepper.errors import UsageError
 from stepper.formats.model_file import Setup
+from stepper.formats.outputs import check_output
 
 #: Rate used when neither --rate nor a checkpoint gives one (common practice, no published source).
 DEFAULT_RATE = 0.1
 PLOT_SIZE = (76, 24)
+#: Largest plot drawn: far wider than any terminal, and a few seconds at most
+#: (plotext took 86 s and 15 GB for 5000x5000 and aborted at 100000x100000).
+MAX_PLOT_SIZE = (1000, 400)
 
 SOURCE = ('LeCun, Bottou, Orr & Mueller, "Efficient BackProp" (1998), section 5.1 on the optimal '
           "learning rate (recalled from memory)")
@@ -76,6 +80,9 @@ def add_parser(subs: Any) -> None:
 
 def handle(args: argparse.Namespace) -> int:
     setup = load(args)
+    if args.plot not in (None, "-"):
+        inputs = setup.input_files() + ([("the checkpoint", args.resume)] if args.resume else [])
+        check_output(Path(args.plot), inputs, "text", "--plot")
     theta, rate = resumed_weights(setup, args.resume, args.rate, DEFAULT_RATE)
     index = weight_index(setup, args.weight)
     X, Y = sample_limit(setup, args.samples)
@@ -188,4 +195,7 @@ def _size(text: str) -> tuple[int, int]:
         raise argparse.ArgumentTypeError(f"{text!r} is not a size like 76x24") from None
     if width < 30 or height < 10:
         raise argparse.ArgumentTypeError(f"{text!r} is too small (at least 30x10)")
+    if width > MAX_PLOT_SIZE[0] or height > MAX_PLOT_SIZE[1]:
+        raise argparse.ArgumentTypeError(
+            f"{text!r} is too large (at most {MAX_PLOT_SIZE[0]}x{MAX_PLOT_SIZE[1]} characters)")
     return width, height

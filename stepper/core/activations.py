@@ -71,16 +71,28 @@ class Activation:
 
 
 def _sigmoid(Z: Array) -> Array:
-    # 0.5 * (1 + tanh(z / 2)) equals 1 / (1 + exp(-z)) and never overflows.
-    return 0.5 * (1.0 + np.tanh(0.5 * Z))
+    # With e = exp(-|z|) (never overflows): 1 / (1 + e) for z >= 0 and e / (1 + e) for
+    # z < 0. Both forms keep full relative precision in their tail; the form
+    # 0.5 * (1 + tanh(z / 2)) loses it for z below about -20 and gives 0 below -37.
+    e = np.exp(-np.abs(Z))
+    return np.where(Z < 0.0, e, 1.0) / (1.0 + e)
 
 
 def _sigmoid_in_place(Z: Array) -> None:
-    # The same operations as _sigmoid, in the same order, so the same bits.
-    np.multiply(Z, 0.5, out=Z)
-    np.tanh(Z, out=Z)
-    np.add(Z, 1.0, out=Z)
-    np.multiply(Z, 0.5, out=Z)
+    # The same operations as _sigmoid, so the same bits.
+    negative = Z < 0.0
+    np.abs(Z, out=Z)
+    np.negative(Z, out=Z)
+    np.exp(Z, out=Z)
+    denominator = Z + 1.0
+    np.divide(np.where(negative, Z, 1.0), denominator, out=Z)
+
+
+def _sigmoid_slope(Z: Array, A: Array) -> Array:
+    # s (1 - s) = e / (1 + e)^2 with e = exp(-|z|): precise in both tails, where
+    # A (1 - A) loses 1 - A to rounding once A is within a few ulps of 1.
+    e = np.exp(-np.abs(Z))
+    return e / ((1.0 + e) * (1.0 + e))
 
 
 def _leaky(alpha: float) -> Activation:
@@ -122,8 +134,7 @@ ACTIVATIONS: dict[str, Activation] = {
     a.name: a
     for a in (
         Activation("identity", lambda Z: Z.copy(), lambda Z, A: np.ones_like(Z), in_place=lambda Z: None),
-        Activation("sigmoid", _sigmoid, lambda Z, A: A * (1.0 - A), saturates=True,
-                   in_place=_sigmoid_in_place),
+        Activation("sigmoid", _sigmoid, _sigmoid_slope, saturates=True, in_place=_sigmoid_in_place),
         Activation("tanh", np.tanh, lambda Z, A: 1.0 - A * A, saturates=True,
                    in_place=lambda Z: np.tanh(Z, out=Z)),
         Activation(

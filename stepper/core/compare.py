@@ -16,6 +16,11 @@ Verdicts (thresholds are common practice with no single published source):
 - ``kink``      not ``agree``, and a ReLU-like unit crossed its kink between the
   finite-difference evaluations: the numeric slope is not trustworthy there, so
   the parameter is not counted as failed.
+- ``unresolved`` the two slopes differ by less than the numeric slope's
+  rounding allowance (below), but the allowance is at least as large as both
+  slopes and larger than the ``floor``: at this step the comparison cannot tell
+  a right slope from a wrong one (a sign error included), so it is neither
+  agree nor disagree. A larger finite-difference step lowers the allowance.
 
 A slope that is not a finite number (the cost overflowed, or became NaN) cannot
 agree with anything: such a parameter gets ``disagree``, so a check never passes on
@@ -28,7 +33,8 @@ Recipes*, 3rd ed., 2007, section 5.7). For slopes that small the relative error
 means nothing: with the default central step and a cost of order one the noise
 is about 4e-11, so a correct slope of 1e-9 could show a relative error of 1e-2.
 A parameter whose two slopes differ by no more than :func:`noise_level` therefore
-gets ``agree``; its relative error is still reported as computed.
+gets ``agree`` when at least one slope is larger than that allowance, and
+``unresolved`` when neither is; its relative error is still reported as computed.
 """
 
 from __future__ import annotations
@@ -40,7 +46,7 @@ from numpy.typing import NDArray
 
 Array = NDArray[np.float64]
 
-VERDICTS = ("agree", "doubtful", "disagree", "kink")
+VERDICTS = ("agree", "doubtful", "disagree", "kink", "unresolved")
 AGREE_BELOW = 1e-5
 DISAGREE_ABOVE = 1e-3
 FLOOR = 1e-8
@@ -75,17 +81,24 @@ def verdicts(
     kink: NDArray[np.bool_],
     limits: Thresholds = Thresholds(),
     within_noise: NDArray[np.bool_] | None = None,
+    below_noise: NDArray[np.bool_] | None = None,
 ) -> NDArray[np.str_]:
     """One verdict string per parameter; NaN relative errors (not computed) give ``""``.
 
     ``within_noise`` (optional, ``(n_params,)``) is True where the two slopes differ
-    by less than the numeric slope's rounding noise; those parameters agree.
+    by less than the numeric slope's rounding noise; those parameters agree, unless
+    ``below_noise`` is True there too (both slopes within the noise): unresolved.
     """
-    out = np.full(rel.shape, "disagree", dtype="<U8")
+    out = np.full(rel.shape, "disagree", dtype="<U10")
     out[rel <= limits.disagree] = "doubtful"
-    out[rel <= limits.agree] = "agree"
+    agree = rel <= limits.agree
     if within_noise is not None:
-        out[within_noise] = "agree"
+        unresolved = within_noise & ~agree
+        if below_noise is not None:
+            out[unresolved & below_noise] = "unresolved"
+            unresolved &= ~below_noise
+        out[unresolved] = "agree"
+    out[agree] = "agree"
     out[(out != "agree") & kink] = "kink"
     out[np.isnan(rel)] = ""
     return out
@@ -109,11 +122,31 @@ def judge(
     with np.errstate(invalid="ignore", over="ignore"):
         rel = relative_error(analytic, numeric, limits.floor)
         quiet = np.abs(analytic - numeric) <= noise
-    verdict = verdicts(rel, kink, limits, quiet)
+        # Below the floor slopes count as zero anyway: an allowance that small hides nothing.
+        tiny = (np.maximum(np.abs(analytic), np.abs(numeric)) <= noise) & (np.asarray(noise) > limits.floor)
+    verdict = verdicts(rel, kink, limits, quiet, tiny)
     if computed is None:
         computed = np.ones(analytic.shape, dtype=bool)
     verdict[computed & ~(np.isfinite(analytic) & np.isfinite(numeric))] = "disagree"
     return rel, verdict
+
+
+def suggested_step(analytic: Array, numeric: Array, verdict: NDArray[np.str_], h: float, noise: float | Array) -> float | None:
+    """A finite-difference step that would resolve the ``unresolved`` slopes, or None.
+
+    The allowance ``16 u |C| / h`` falls as ``h`` grows: the step that puts it ten
+    times below the smallest nonzero slope in question. None when nothing is
+    unresolved or every such slope is zero.
+    """
+    mask = verdict == "unresolved"
+    if not np.any(mask):
+        return None
+    size = np.maximum(np.abs(analytic), np.abs(numeric))[mask]
+    size = size[size > 0]
+    allowance = float(np.max(np.broadcast_to(noise, verdict.shape)[mask]))
+    if size.size == 0 or allowance <= 0:
+        return None
+    return h * 10.0 * allowance / float(size.min())
 
 
 def verdict_counts(v: NDArray[np.str_]) -> dict[str, int]:

@@ -42,7 +42,7 @@ from stepper.core.numeric import METHODS, Progress, default_step
 Array = NDArray[np.float64]
 
 #: Severity of a direction's verdict, for an array's verdict (its worst direction's).
-SEVERITY = {"agree": 0, "kink": 1, "doubtful": 2, "disagree": 3}
+SEVERITY = {"agree": 0, "kink": 1, "unresolved": 2, "doubtful": 3, "disagree": 4}
 
 
 @dataclass(frozen=True)
@@ -66,7 +66,7 @@ class ArrayDirections:
     @property
     def verdict(self) -> str:
         """The worst of the directions' verdicts."""
-        return str(max(self.verdicts, key=lambda v: SEVERITY.get(str(v), 3)))
+        return str(max(self.verdicts, key=lambda v: SEVERITY.get(str(v), 4)))
 
     @property
     def worst_error(self) -> float:
@@ -94,7 +94,7 @@ class DirectionalCheck:
 
     @property
     def passed(self) -> bool:
-        return all(a.verdict != "disagree" for a in self.arrays)
+        return all(a.verdict not in ("disagree", "unresolved") for a in self.arrays)
 
     @property
     def counts(self) -> dict[str, int]:

@@ -8,7 +8,7 @@ from typing import Iterable
 import numpy as np
 from numpy.typing import NDArray
 
-from stepper.core.compare import Thresholds, judge, noise_level, verdict_counts
+from stepper.core.compare import Thresholds, judge, noise_level, suggested_step, verdict_counts
 from stepper.core.network import Network
 from stepper.core.numeric import NumericSlopes, Progress, iter_numeric_slopes
 
@@ -42,7 +42,17 @@ class CheckResult:
 
     @property
     def passed(self) -> bool:
-        return not bool(np.any(self.verdict == "disagree"))
+        """No slope disagrees and none is unresolved (a check that could not tell never passes)."""
+        return not bool(np.any((self.verdict == "disagree") | (self.verdict == "unresolved")))
+
+    @property
+    def noise(self) -> float:
+        """The rounding allowance of the numeric slopes (see :func:`stepper.core.compare.noise_level`)."""
+        return noise_level(self.cost, self.h)
+
+    def suggested_step(self) -> float | None:
+        """A step that would resolve the unresolved slopes (see :func:`stepper.core.compare.suggested_step`)."""
+        return suggested_step(self.analytic, self.numeric, self.verdict, self.h, self.noise)
 
     def worst(self) -> int:
         """Flat index of the largest relative error (ignoring NaN)."""

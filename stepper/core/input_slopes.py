@@ -62,7 +62,7 @@ class InputSlopeCheck:
 
     @property
     def passed(self) -> bool:
-        return not bool(np.any(self.verdict == "disagree"))
+        return not bool(np.any((self.verdict == "disagree") | (self.verdict == "unresolved")))
 
     @property
     def counts(self) -> dict[str, int]:

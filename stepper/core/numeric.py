@@ -236,12 +236,16 @@ def iter_numeric_slopes(
                 yield done, total
         else:
             for flat in in_block:
-                plus = _rerun_cost(net, theta, inputs[block.layer], block.layer, int(flat), +step, Y)
+                plus, kink_p = _rerun_cost(net, theta, inputs[block.layer], block.layer, int(flat), +step,
+                                           Y, trace)
                 if method == "central":
-                    minus = _rerun_cost(net, theta, inputs[block.layer], block.layer, int(flat), -step, Y)
+                    minus, kink_m = _rerun_cost(net, theta, inputs[block.layer], block.layer, int(flat), -step,
+                                                Y, trace)
                     slopes[flat] = (plus - minus) / (2.0 * step)
+                    kink[flat] = kink_p or kink_m
                 else:
                     slopes[flat] = (plus - base_cost) / step
+                    kink[flat] = kink_p
                 done += 1
                 if done % 16 == 0 or done == total:
                     yield done, total
@@ -369,14 +373,25 @@ def _kink_reach(Z: Array, W: Array) -> Array:
 
 
 def _rerun_cost(
-    net: Network, theta: Array, X_in: Array, layer: int, flat: int, delta: float, Y: Array
-) -> float:
-    """Cost with ``theta[flat] += delta``, running the network from ``layer`` on."""
+    net: Network, theta: Array, X_in: Array, layer: int, flat: int, delta: float, Y: Array,
+    trace: list[tuple[Array, Any]],
+) -> tuple[float, bool]:
+    """Cost with ``theta[flat] += delta``, running the network from ``layer`` on.
+
+    Also whether a unit of a later ReLU-like dense layer changed side of its kink
+    against the unperturbed ``trace`` (as for dense parameters).
+    """
     saved = theta[flat]
     theta[flat] = saved + delta
     try:
-        A, cache = net.forward(theta, X_in, start=layer)[-1]
-        return float(net.output_cost(A, cache, Y)) + net.penalty(theta)
+        run = net.forward(theta, X_in, start=layer)
+        crossed = False
+        for index in range(layer + 1, len(net.layers)):
+            later = net.layers[index]
+            if isinstance(later, Dense) and later.activation.kink:
+                crossed = crossed or bool(np.any((run[index - layer][1].Z > 0.0) != (trace[index][1].Z > 0.0)))
+        A, cache = run[-1]
+        return float(net.output_cost(A, cache, Y)) + net.penalty(theta), crossed
     finally:
         theta[flat] = saved
 

@@ -58,6 +58,8 @@ from numpy.typing import NDArray
 from stepper.core.layers import ParamSpec, Params
 from stepper.core.network import Network
 from stepper.errors import CustomLayerError
+from stepper.formats import user_code
+from stepper.formats.reading import CODE_FILE_LIMIT, read_limited
 
 Array = NDArray[np.float64]
 
@@ -121,9 +123,9 @@ class CustomLayer:
 
     def _call(self, what: str, fn: Callable[..., Any], *args: Any) -> Any:
         try:
-            return fn(*args)
-        except Exception as exc:  # the user's code: any failure is reported, not a crash
-            self.fail(_raised(what, exc, self.path))
+            return user_code.call(fn, *args)
+        except user_code.UserCodeFailure as failure:  # the user's code: any failure is reported, not a crash
+            self.fail(_raised(what, failure, self.path))
 
     def fail(self, message: str) -> NoReturn:
         raise CustomLayerError(f"{self.where}: {message}")
@@ -172,9 +174,9 @@ def build_custom_layer(keys: Any, n_in: int, model_path: Path) -> CustomLayer:
                            "(a custom layer needs init, forward and backward; see README.md, Custom layers)")
 
     try:
-        user = cls(n_in=n_in, units=units, options=dict(options))
-    except Exception as exc:
-        raise CustomLayerError(f"{where}: {_raised('creating the layer', exc, path)}") from None
+        user = user_code.call(lambda: cls(n_in=n_in, units=units, options=dict(options)))
+    except user_code.UserCodeFailure as failure:
+        raise CustomLayerError(f"{where}: {_raised('creating the layer', failure, path)}") from None
     return wrap_user_layer(where, path, class_name, user, n_in, units)
 
 
@@ -244,10 +246,11 @@ def _load_module(path: Path, where: str) -> ModuleType:
     The source is compiled here rather than imported, so no bytecode cache is
     written next to the user's file, and nothing is added to the import path.
     """
+    raw = read_limited(path, CODE_FILE_LIMIT, CustomLayerError, where)
     try:
-        source = path.read_text(encoding="utf-8")
-    except (OSError, UnicodeDecodeError) as exc:
-        raise CustomLayerError(f"{where}: cannot be read ({exc})") from None
+        source = raw.decode("utf-8-sig")
+    except UnicodeDecodeError:
+        raise CustomLayerError(f"{where}: cannot be read (not UTF-8 text)") from None
     digest = hashlib.sha256(str(path.resolve()).encode()).hexdigest()[:12]
     module = ModuleType(f"_stepper_custom_{digest}_{next(_counter)}")
     module.__file__ = str(path)
@@ -258,17 +261,29 @@ def _load_module(path: Path, where: str) -> ModuleType:
     # Registered while it runs and afterwards: dataclasses look their module up by name.
     sys.modules[module.__name__] = module
     try:
-        exec(code, module.__dict__)
-    except Exception as exc:
+        user_code.call(exec, code, module.__dict__)
+    except user_code.UserCodeFailure as failure:
         del sys.modules[module.__name__]
-        raise CustomLayerError(f"{where}: {_raised('loading the file', exc, path)}") from None
+        raise CustomLayerError(f"{where}: {_raised('loading the file', failure, path)}") from None
     return module
 
 
-def _raised(what: str, exc: BaseException, path: Path) -> str:
-    """``forward raised ValueError: ... [gate.py line 12 in forward: X / s]``, one line."""
+def _raised(what: str, failure: user_code.UserCodeFailure, path: Path) -> str:
+    """``forward raised ValueError: ... [gate.py line 12 in forward: X / s]``, one line.
+
+    An exit, an interrupt and an abandoned call are said as such: each is the
+    layer's failure, never the end of Stepper (an exit code 0 would pass a check).
+    """
+    exc = failure.error
     text = " ".join(str(exc).split())
-    message = f"{what} raised {type(exc).__name__}" + (f": {text}" if text else "")
+    if isinstance(exc, SystemExit):
+        message = f"{what} called exit ({type(exc).__name__} {exc.code!r}); a layer must return or raise"
+    elif isinstance(exc, KeyboardInterrupt):
+        message = f"{what} was interrupted (Ctrl-C) before it returned"
+    elif isinstance(exc, user_code.Abandoned):
+        message = f"{what} was abandoned: {failure.reason}"
+    else:
+        message = f"{what} raised {type(exc).__name__}" + (f": {text}" if text else "")
     if "read-only" in text:
         message += " (params, X and dOut are read-only: return new arrays)"
     own = os.path.realpath(path)

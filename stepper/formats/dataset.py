@@ -8,6 +8,8 @@ the line (1-based, counting the header as line 1) and the column.
 from __future__ import annotations
 
 import csv
+import hashlib
+import io
 import math
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -16,6 +18,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from stepper.errors import DataFileError
+from stepper.formats.reading import DATA_FILE_LIMIT, read_limited
 
 Array = NDArray[np.float64]
 
@@ -45,13 +48,10 @@ def read_columns(path: Path, wanted: list[str], label: str | None = None) -> Tab
     the wrong length, or a cell that is not a finite number.
     """
     name = label or str(path)
+    raw = read_limited(path, DATA_FILE_LIMIT, DataFileError, name, "data file")
     try:
-        with open(path, newline="", encoding="utf-8-sig") as handle:
-            rows = list(csv.reader(handle))
-    except FileNotFoundError:
-        raise DataFileError(f"{name}: no such data file") from None
-    except (OSError, UnicodeDecodeError, csv.Error, ValueError) as exc:
-        # ValueError: a path with a NUL character in it.
+        rows = list(csv.reader(io.StringIO(raw.decode("utf-8-sig"), newline="")))
+    except (UnicodeDecodeError, csv.Error) as exc:
         raise DataFileError(f"{name}: cannot be read as CSV ({exc})") from None
     while rows and not any(cell.strip() for cell in rows[-1]):
         rows.pop()
@@ -188,16 +188,27 @@ def build_dataset(
     X, Y = X_all[train_rows], Y_all[train_rows]
     X_val, Y_val = X_all[val_rows], Y_all[val_rows]
     if standardize:
-        mean = X.mean(axis=0)
-        scale = X.std(axis=0)
-        scale[scale == 0.0] = 1.0
+        with np.errstate(over="ignore", invalid="ignore"):
+            mean = X.mean(axis=0)
+            scale = X.std(axis=0)
+            scale[scale == 0.0] = 1.0
+            X_std, X_val_std = (X - mean) / scale, (X_val - mean) / scale
+        fine = np.isfinite(mean) & np.isfinite(scale) & np.all(np.isfinite(X_std), axis=0) \
+            & np.all(np.isfinite(X_val_std), axis=0)
+        if not np.all(fine):
+            column = inputs[int(np.flatnonzero(~fine)[0])]
+            raise DataFileError(
+                f"{source}: column '{column}' cannot be standardized: its values are too large for its "
+                "mean and spread to be finite numbers (scale the column, or set standardize = false)"
+            )
     else:
         mean = np.zeros(X.shape[1])
         scale = np.ones(X.shape[1])
+        X_std, X_val_std = X, X_val
     return Dataset(
-        (X - mean) / scale,
+        X_std,
         Y,
-        (X_val - mean) / scale,
+        X_val_std,
         Y_val,
         tuple(inputs),
         tuple(targets),

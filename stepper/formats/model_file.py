@@ -53,6 +53,7 @@ starting values (seeded by ``[init].seed``, or 0 without ``[init]``).
 
 from __future__ import annotations
 
+import dataclasses
 import datetime
 import hashlib
 import math
@@ -76,6 +77,7 @@ from stepper.core.schedules import from_dict as schedule_from_dict
 from stepper.errors import ModelFileError
 from stepper.formats.data_options import DATA_KEYS, fit_data, load_data
 from stepper.formats.dataset import Dataset
+from stepper.formats.reading import MODEL_FILE_LIMIT, collect_reads, read_limited
 from stepper.formats.weight_sources import WeightOrigin
 
 if TYPE_CHECKING:
@@ -112,6 +114,9 @@ class Setup:
             options rather than read from a model file (a journal records it,
             so a replay can build it again), else None.
         descent: decay, clipping and schedule from ``[training]`` (the L2 term is ``network.l2``).
+        inputs: every other file read to build the setup, as ``(path, sha256)``:
+            the data, custom layers' code, a weights file, an ONNX graph
+            (collected by :func:`stepper.formats.reading.collect_reads`).
     """
 
     path: Path
@@ -123,6 +128,11 @@ class Setup:
     origin: WeightOrigin | None = None
     document: dict[str, Any] | None = None
     descent: Descent = Descent()
+    inputs: tuple[tuple[Path, str], ...] = ()
+
+    def input_files(self) -> list[tuple[str, Path]]:
+        """Every file this setup was read from, with its role, the model file first."""
+        return [("the model file", self.path)] + [("a file the model file reads", p) for p, _ in self.inputs]
 
 
 _LAYER_PATH = re.compile(r"^layers\[(\d+)\]")
@@ -234,23 +244,21 @@ def load_setup(path: str | Path) -> Setup:
         raise ModelFileError(
             f"{label}: an ONNX file holds the network but not its data: give --data, --targets and --loss "
             f"with it, or name it in a model file (network = \"{path.name}\")")
+    raw = read_limited(path, MODEL_FILE_LIMIT, ModelFileError, label, "model file")
     try:
-        raw = path.read_bytes()
-    except FileNotFoundError:
-        raise ModelFileError(f"{label}: no such model file") from None
-    except IsADirectoryError:
-        raise ModelFileError(f"{label}: is a folder, not a model file") from None
-    except OSError as exc:
-        raise ModelFileError(f"{label}: cannot be read ({exc.strerror})") from None
-    try:
-        doc = tomllib.loads(raw.decode("utf-8"))
+        # A byte-order mark is allowed (some editors write one); TOML itself has none.
+        doc = tomllib.loads(raw.decode("utf-8-sig"))
     except UnicodeDecodeError:
         raise ModelFileError(f"{label}: not UTF-8 text") from None
     except tomllib.TOMLDecodeError as exc:
         raise ModelFileError(f"{label}: not valid TOML ({exc})") from None
     except RecursionError:
         raise ModelFileError(f"{label}: not valid TOML (arrays or tables nested too deeply)") from None
-    return setup_from_doc(doc, path, raw)
+    with collect_reads() as reads:
+        setup = setup_from_doc(doc, path, raw)
+    own = path.resolve()
+    inputs = tuple(dict.fromkeys((p, sha) for p, sha in reads if p != own))
+    return dataclasses.replace(setup, inputs=inputs)
 
 
 def setup_from_doc(doc: Any, path: Path, raw: bytes, data: Dataset | None = None,
@@ -312,6 +320,7 @@ def _described_network(label: str, top: _Keys, path: Path, data: Dataset,
         if keys.has("weights") or keys.has("biases"):
             inline.append((i, keys))
         n_in = layer.n_out
+    _check_output_pair(top, loss, layers)
     network = Network(len(data.input_names), layers, loss)
     theta0, origin = _initial_values(label, top, network, inline, torch)
     return network, theta0, origin
@@ -335,6 +344,47 @@ def _training(label: str, top: _Keys) -> tuple[float, Descent]:
         except ScheduleError as exc:
             keys.fail("schedule", str(exc))
     return values["l2"] or 0.0, Descent(values["weight_decay"] or 0.0, values["clip_norm"], schedule)
+#: The output activation each cross-entropy is computed with, from the pre-activations.
+CROSS_ENTROPY_OUTPUT = {"binary_cross_entropy": "sigmoid", "categorical_cross_entropy": "softmax"}
+
+
+def _check_output_pair(top: _Keys, loss: str, layers: list[Layer]) -> None:
+    """A cross-entropy needs its own output activation (computed exactly from Z); any other is refused.
+
+    Any other dense output would need its probabilities clipped away from 0 and
+    1 before the logarithm, which silently flattens the cost and zeroes the
+    slopes of confidently wrong rows.
+    """
+    wanted = CROSS_ENTROPY_OUTPUT.get(loss)
+    last = layers[-1]
+    if wanted is None or not isinstance(last, Dense) or last.activation.name == wanted:
+        return
+    other = {v: k for k, v in CROSS_ENTROPY_OUTPUT.items()}.get(last.activation.name)
+    hint = f", or keep {last.activation.name} with loss = \"{other}\"" if other else ""
+    top.fail("loss", f"{loss} needs a {wanted} output layer, but layers[{len(layers) - 1}] uses "
+                     f"{last.activation.name} (Stepper computes {loss} exactly from the {wanted} layer's "
+                     f"inputs; with another output it would clip probabilities and report zero slopes "
+                     f"for confidently wrong rows). Use activation = \"{wanted}\" there{hint}")
+
+
+def declared_code(path: Path) -> list[Path]:
+    """The Python files a model file's custom layers name, WITHOUT running any of them.
+
+    For ``stepper replay``, which must say which code will run before it runs
+    it. A model file that cannot be read gives an empty list (loading it will
+    then say what is wrong).
+    """
+    try:
+        doc = tomllib.loads(read_limited(path, MODEL_FILE_LIMIT, ModelFileError).decode("utf-8-sig"))
+    except (ModelFileError, UnicodeDecodeError, tomllib.TOMLDecodeError, RecursionError):
+        return []
+    layers = doc.get("layers")
+    out: list[Path] = []
+    for entry in layers if isinstance(layers, list) else []:
+        if isinstance(entry, dict) and entry.get("type") == "custom" and isinstance(entry.get("file"), str):
+            name = entry["file"]
+            out.append(Path(name) if Path(name).is_absolute() else path.parent / name)
+    return out
 
 
 def _torch_state(label: str, top: _Keys, n_layers: int) -> TorchState | None:

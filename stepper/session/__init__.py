@@ -20,9 +20,9 @@ values), :mod:`.stepping` (updates and the rate preview; how a job ends and
 what it says), :mod:`.runaway` (when a job stops a running-away cost),
 :mod:`.training` (the L2 term, weight decay, clipping, the schedule),
 :mod:`.rates` (the rate range test), :mod:`.measures` (row losses, metrics,
-histograms, comparison with a checkpoint), :mod:`.files` (checkpoints) and
-:mod:`.folders` (default paths); replay of a journal entry is here, since it
-calls on all of them.
+histograms, comparison with a checkpoint), :mod:`.history` (the cost history
+as arrays), :mod:`.files` (checkpoints) and :mod:`.folders` (default paths);
+replay of a journal entry is here, since it calls on all of them.
 """
 
 from __future__ import annotations
@@ -30,11 +30,15 @@ from __future__ import annotations
 from pathlib import Path
 from typing import Any
 
+from stepper.core.optimizers import RULES
 from stepper.errors import CheckpointError
-from stepper.session.core import SLOPE_SOURCES, UNDO_BYTES, HistoryEntry, StepReport
+from stepper.formats import fields
+from stepper.formats.journal import MAX_STEPS_PER_LINE
+from stepper.session.core import SLOPE_SOURCES, UNDO_BYTES, StepReport
+from stepper.session.history import History, HistoryEntry
 from stepper.session.undo import undo_budget
 from stepper.session.edits import Edits
-from stepper.session.files import Files
+from stepper.session.files import Files, verify_checkpoint
 from stepper.session.folders import default_journal_for, session_folder_for
 from stepper.session.measures import Measures, RowTable, SetMetrics
 from stepper.session.rates import Rates
@@ -48,6 +52,7 @@ __all__ = [
     "SetMetrics",
     "SLOPE_SOURCES",
     "UNDO_BYTES",
+    "History",
     "HistoryEntry",
     "RunawayRule",
     "Session",
@@ -55,6 +60,7 @@ __all__ = [
     "default_journal_for",
     "undo_budget",
     "session_folder_for",
+    "verify_checkpoint",
 ]
 
 
@@ -88,47 +94,75 @@ class Session(Stepping, Edits, Files, Training, Rates, Measures):
     def apply(self, entry: dict[str, Any], force: bool = False) -> None:
         """Carry out one journal entry (as written by the operations above).
 
-        A checkpoint loaded by the entry must still hold the bytes it held then
-        (its SHA-256 is in the entry), unless ``force``.
+        Every field is checked for type and range first (a journal is a file a
+        user can edit): CheckpointError names the field. A checkpoint loaded by
+        the entry must still hold the bytes it held then (its SHA-256 is in the
+        entry), unless ``force``.
         """
         op = entry.get("op")
-        index = self.net.layout.index_of
-        try:
-            if op == "step":
-                # The journal holds exactly the steps made: no runaway rule stops a replay.
-                self.step(int(entry["n"]), watch=False)
-            elif op == "set_rate":
-                self.set_rate(float(entry["rate"]))
-            elif op == "set_rule":
-                self.set_rule(str(entry["rule"]))
-            elif op == "set_slope_source":
-                self.set_slope_source(str(entry["source"]))
-            elif op == "set_batch_size":
-                self.set_batch_size(None if entry["size"] is None else int(entry["size"]))
-            elif op == "freeze":
-                self.freeze(index[name] for name in entry["names"])
-            elif op == "unfreeze":
-                self.unfreeze(index[name] for name in entry["names"])
-            elif op == "set_value":
-                self.set_value(index[entry["name"]], float(entry["value"]))
-            elif op == "perturb":
-                names = entry["names"]
-                self.perturb(float(entry["scale"]), None if names is None else [index[n] for n in names],
-                             int(entry["seed"]))
-            elif op == "reset":
-                self.reset()
-            elif op == "undo":
-                self.undo()
-            elif op == "redo":
-                self.redo()
-            elif op == "load":
-                digest = entry.get("sha256")
-                self.load_checkpoint(Path(entry["path"]), None if force or digest is None else str(digest))
-            elif op == "save":
-                self._mark_saved()
-            elif self.apply_training(str(op), entry):
-                pass
-            else:
+
+        def error(message: str) -> CheckpointError:
+            return CheckpointError(message)
+
+        def get(key: str) -> Any:
+            if key not in entry:
+                raise CheckpointError(f"{op}: no '{key}'")
+            return entry[key]
+
+        def named(key: str) -> list[int]:
+            index = self.net.layout.index_of
+            found = fields.names(get(key), error, f"{op}: {key}")
+            unknown = [name for name in found if name not in index]
+            if unknown:
+                raise CheckpointError(f"{op}: {key}: the model has no parameter {unknown[0]}")
+            return [index[name] for name in found]
+
+        n_train = self.setup.data.n_train
+        if op == "step":
+            n = fields.whole(get("n"), error, "step: n", 1, MAX_STEPS_PER_LINE)
+            # The journal holds exactly the steps made: no runaway rule stops a replay.
+            self.step(n, watch=False, continues=bool(entry.get("continues", False)))
+        elif op == "set_rate":
+            self.set_rate(fields.number(get("rate"), error, "set_rate: rate", positive=True))
+        elif op == "set_rule":
+            self.set_rule(fields.choice(get("rule"), RULES, error, "set_rule: rule"))
+        elif op == "set_slope_source":
+            self.set_slope_source(fields.choice(get("source"), SLOPE_SOURCES, error, "set_slope_source: source"))
+        elif op == "set_batch_size":
+            size = get("size")
+            self.set_batch_size(None if size is None else fields.whole(size, error, "set_batch_size: size",
+                                                                        1, n_train))
+        elif op == "freeze":
+            self.freeze(named("names"))
+        elif op == "unfreeze":
+            self.unfreeze(named("names"))
+        elif op == "set_value":
+            name = fields.text(get("name"), error, "set_value: name")
+            if name not in self.net.layout.index_of:
+                raise CheckpointError(f"set_value: name: the model has no parameter {name}")
+            self.set_value(self.net.layout.index_of[name], fields.number(get("value"), error, "set_value: value"))
+        elif op == "perturb":
+            names = None if get("names") is None else named("names")
+            self.perturb(fields.number(get("scale"), error, "perturb: scale", positive=True), names,
+                         fields.whole(get("seed"), error, "perturb: seed", 0, 2**64 - 1))
+        elif op == "reset":
+            self.reset()
+        elif op == "undo":
+            self.undo()
+        elif op == "redo":
+            self.redo()
+        elif op == "load":
+            digest = entry.get("sha256")
+            if digest is not None:
+                fields.text(digest, error, "load: sha256", 128)
+            path = Path(fields.text(get("path"), error, "load: path"))
+            self.load_checkpoint(path, None if force or digest is None else str(digest))
+        elif op == "save":
+            self._mark_saved()
+        else:
+            try:
+                known = self.apply_training(str(op), entry)
+            except (KeyError, TypeError, ValueError, OverflowError) as exc:
+                raise CheckpointError(f"{op}: incomplete or wrong ({exc})") from None
+            if not known:
                 raise CheckpointError(f"unknown journal operation {op!r}")
-        except (KeyError, TypeError, ValueError) as exc:
-            raise CheckpointError(f"journal entry {entry!r} is incomplete or wrong ({exc})") from None

@@ -28,6 +28,7 @@ from stepper.errors import UsageError
 from stepper.formats.journal import JournalWriter
 from stepper.formats.model_file import Setup
 from stepper.session.folders import default_journal_for, session_folder_for
+from stepper.session.history import History, HistoryEntry
 from stepper.session.runaway import RunawayRule
 from stepper.session.undo import UNDO_BYTES as UNDO_BYTES  # re-exported: the undo budget's ceiling
 from stepper.session.undo import RuleBits, compact, flip, flipped, saved_bytes, undo_budget
@@ -41,17 +42,6 @@ SLOPE_SOURCES = ("analytic", "numeric")
 FULL_CHECK_UP_TO = 20_000
 CHECK_SAMPLE = 5_000
 
-
-
-@dataclass(frozen=True)
-class HistoryEntry:
-    """The cost after one step (entry 0: before any step)."""
-
-    step: int
-    train_cost: float
-    val_cost: float | None
-    rate: float
-    rule: str
 
 
 @dataclass(frozen=True)
@@ -75,6 +65,8 @@ class _Change:
     before: dict[str, Any]
     after: dict[str, Any]
     serial: int = field(default_factory=lambda: next(_SERIALS))
+    #: "step" for a run of steps (a replayed journal may add steps to it), else "".
+    op: str = ""
 
     def nbytes(self) -> int:
         """Bytes of the arrays this change holds (an array both sides share counts once)."""
@@ -96,6 +88,7 @@ class SessionCore:
         seed: int = 0,
         slope_source: str = "analytic",
         batch_size: int | None = None,
+        new_journal: bool = False,
     ) -> None:
         self.setup = setup
         # A copy of its own: the L2 term is a setting of this session (net.l2).
@@ -116,6 +109,12 @@ class SessionCore:
         #: The change the last step made, ``(n_params,)``; None before any step and after an undo or
         #: redo that moved the weights (a figure to show, like ``check``: not part of the undo state).
         self.last_update: Array | None = None
+        #: Mini-batches go through the training rows epoch by epoch: this epoch's order
+        #: of the rows ``(n_train,)`` (None before the first mini-batch), how many of
+        #: them are used, and how many epochs have begun.
+        self.batch_order: NDArray[np.int64] | None = None
+        self.batch_cursor = 0
+        self.epoch = 0
         self.seed = seed
         self.batch_rng = np.random.default_rng(seed)
         self.noise_rng = np.random.default_rng(seed + 1)
@@ -137,14 +136,21 @@ class SessionCore:
         self._changes = 0  # operations committed, undone or redone (any change of state)
         self._check_version = -1
         self._cache: dict[str, tuple[int, Any]] = {}
-        self.history: list[HistoryEntry] = [self._entry()]
+        self.history = History([self._entry()])
+        #: Files this session read besides the model's own inputs (checkpoints it loaded).
+        self.loaded: list[Path] = []
+        #: Why the journal stopped, when writing it failed (the session goes on without one).
+        self.journal_problem: str | None = None
+        self._steps_unlogged = 0
+        self._steps_first_logged = False
         self.journal: JournalWriter | None = None
         if journal is not None:
             start = {"rate": self.rate, "rule": self.rule, "seed": self.seed,
                      "slope_source": self.slope_source, "batch_size": self.batch_size}
             if setup.document is not None:
                 start["document"] = setup.document  # an ONNX file opened with --data ...: how to rebuild it
-            self.journal = JournalWriter(journal, setup.path, setup.digest, start)
+            inputs = [{"role": "input", "path": str(path), "sha256": sha} for path, sha in setup.inputs]
+            self.journal = JournalWriter(journal, setup.path, setup.digest, start, inputs, exclusive=new_journal)
 
     # -- read-only views -------------------------------------------------------------------
 
@@ -296,6 +302,8 @@ class SessionCore:
                 out[name] = self.batch_rng.bit_generator.state
             elif name == "noise_rng":
                 out[name] = self.noise_rng.bit_generator.state
+            elif name == "batch_order":
+                out[name] = None if self.batch_order is None else self.batch_order.copy()
             else:
                 out[name] = getattr(self, name)
         return out
@@ -333,8 +341,10 @@ class SessionCore:
                 self.last_update = None if value is None else value.copy()
             elif name == "history":
                 start, entries = value
-                del self.history[start:]
+                self.history.truncate(start)
                 self.history.extend(entries)
+            elif name == "batch_order":
+                self.batch_order = None if value is None else value.copy()
             else:
                 setattr(self, name, value)
 
@@ -379,8 +389,38 @@ class SessionCore:
         self.dirty = self._top() not in self._saved
 
     def _log(self, entry: dict[str, Any] | None) -> None:
-        if self.journal is not None and entry is not None:
+        """Append ``entry`` to the journal; a journal that cannot be written stops, the session goes on."""
+        if self.journal is None or entry is None:
+            return
+        try:
             self.journal.append(entry)
+        except (OSError, ValueError) as exc:  # ValueError: writing to a handle a failed flush closed
+            journal = self.journal
+            self.journal = None
+            journal.close()
+            reason = getattr(exc, "strerror", None) or str(exc)
+            self.journal_problem = (f"the journal {journal.path} cannot be written ({reason}); it stopped "
+                                    "here, the session goes on: save a checkpoint to keep your work")
+
+    def flush_journal(self) -> None:
+        """Write the steps of the running job that are not in the journal yet (before a screen shows them)."""
+        self._log_steps()
+
+    def _log_steps(self) -> None:
+        if self._steps_unlogged:
+            entry: dict[str, Any] = {"op": "step", "n": self._steps_unlogged}
+            if self._steps_first_logged:
+                entry["continues"] = True
+            self._steps_unlogged = 0
+            self._steps_first_logged = True
+            self._log(entry)
+
+    def input_files(self) -> list[tuple[str, Path]]:
+        """Every file this session read, with its role: outputs must never replace one of them."""
+        files = self.setup.input_files() + [("a checkpoint this session loaded", path) for path in self.loaded]
+        if self.journal is not None:
+            files.append(("this session's journal", self.journal.path))
+        return files
 
     def undo(self) -> str | None:
         """Take back the last operation; returns its name, or None if there is nothing to undo."""

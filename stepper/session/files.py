@@ -8,12 +8,25 @@ from typing import Any
 import numpy as np
 
 from stepper.core.descent import check_setting
-from stepper.core.optimizers import fresh_state
+from stepper.core.optimizers import RuleState
 from stepper.core.schedules import ScheduleError
 from stepper.core.schedules import from_dict as schedule_from_dict
 from stepper.errors import CheckpointError, UsageError
 from stepper.formats.checkpoint import CheckpointData, load_checkpoint, save_checkpoint
-from stepper.session.core import SLOPE_SOURCES, HistoryEntry, SessionCore, _Change, _check_rate
+from stepper.formats.model_file import Setup
+from stepper.formats.outputs import check_output
+from stepper.formats.saved_state import history_tensors, read_state
+from stepper.session.core import SLOPE_SOURCES, SessionCore, _Change
+
+
+def verify_checkpoint(setup: Setup, path: Path) -> None:
+    """Read and check a checkpoint against ``setup`` without a session: before anything is written.
+
+    Commands call it on ``--resume`` before they create a journal, so a bad
+    checkpoint leaves no file behind.
+    """
+    data = load_checkpoint(Path(path), setup.network.layout)
+    read_state(Path(path), data, setup.network.layout, setup.data.n_train, SLOPE_SOURCES)
 
 
 class Files(SessionCore):
@@ -22,8 +35,16 @@ class Files(SessionCore):
     # -- checkpoints ---------------------------------------------------------------------------
 
     def save_checkpoint(self, path: Path | str | None = None) -> Path:
-        """Write the weights and state to a safetensors checkpoint (atomically)."""
+        """Write the weights and state to a safetensors checkpoint (atomically).
+
+        Refused (UsageError) when the path is one of the session's inputs, not a
+        regular file, or an existing file that is not a Stepper checkpoint.
+        """
         target = Path(path) if path is not None else self.default_checkpoint_path()
+        check_output(target, self.input_files(), "checkpoint")
+        tensors, history_meta = history_tensors(self.history.columns())
+        if self.batch_order is not None:
+            tensors["batch.order"] = self.batch_order
         meta = {
             "model_digest": self.setup.digest,
             "model_file": str(self.setup.path),
@@ -33,17 +54,20 @@ class Files(SessionCore):
             "rule_t": self.rule_state.t,
             "slope_source": self.slope_source,
             "batch_size": self.batch_size,
+            "batch_cursor": self.batch_cursor,
+            "epoch": self.epoch,
             "frozen": self.names.of(np.flatnonzero(self.frozen)),
-            "history": [[h.step, h.train_cost, h.val_cost, h.rate, h.rule] for h in self.history],
             "batch_rng": self.batch_rng.bit_generator.state,
             "noise_rng": self.noise_rng.bit_generator.state,
             "l2": self.l2,
             "weight_decay": self.weight_decay,
             "clip_norm": self.clip_norm,
             "schedule": self.schedule.as_dict(),
+            **history_meta,
         }
         save_checkpoint(target, self.net.layout,
-                        CheckpointData(self.theta, self.rule_state.arrays, meta, last_update=self.last_update))
+                        CheckpointData(self.theta, self.rule_state.arrays, meta, last_update=self.last_update,
+                                       extra=tensors))
         self._mark_saved()
         self.last_checkpoint = target
         self.last_action = f"saved {target}"
@@ -53,9 +77,11 @@ class Files(SessionCore):
     def load_checkpoint(self, path: Path | str, expect_sha256: str | None = None) -> None:
         """Restore weights (bit for bit) and state from a checkpoint; undoable.
 
-        A checkpoint that does not fit the model is refused with a CheckpointError
-        saying what differs; the session is then unchanged. With ``expect_sha256``
-        (a replay), a file whose bytes have changed since is refused the same way.
+        A checkpoint that does not fit the model, or whose metadata holds a value
+        of the wrong type or out of range, is refused with a CheckpointError
+        saying what differs; the session is then unchanged. With
+        ``expect_sha256`` (a replay), a file whose bytes have changed since is
+        refused the same way.
         """
         path = Path(path)
         data = load_checkpoint(path, self.net.layout)
@@ -64,57 +90,48 @@ class Files(SessionCore):
                 f"{path}: has changed since the journal recorded loading it (its SHA-256 differs), "
                 "so the replay cannot rebuild the same state from it (use --force to replay anyway)"
             )
-        meta = data.meta
+        saved = read_state(path, data, self.net.layout, self.setup.data.n_train, SLOPE_SOURCES)
         try:
-            rule = str(meta["rule"])
-            state = fresh_state(rule, self.net.n_params)
-            for key in state.arrays:
-                if key not in data.rule_arrays:
-                    raise CheckpointError(f"{path}: does not fit: the {rule} rule's memory "
-                                          f"(tensors rule.{key}.*) is missing")
-                state.arrays[key] = data.rule_arrays[key]
-            state.t = int(meta["rule_t"])
-            frozen = np.zeros(self.net.n_params, dtype=bool)
-            unknown = [name for name in meta["frozen"] if name not in self.net.layout.index_of]
-            if unknown:
-                raise CheckpointError(f"{path}: does not fit the model: frozen parameter {unknown[0]} is not in it")
-            frozen[[self.net.layout.index_of[name] for name in meta["frozen"]]] = True
-            history = [HistoryEntry(int(s), float(c), None if v is None else float(v), float(r), str(ru))
-                       for s, c, v, r, ru in meta["history"]]
-            if not history:
-                raise ValueError("the cost history is empty")
-            values = {
-                "theta": data.theta,
-                "frozen": frozen,
-                "rule_state": state,
-                "step_count": int(meta["step_count"]),
-                "rate": _check_rate(float(meta["rate"])),
-                "slope_source": str(meta["slope_source"]),
-                "batch_size": None if meta["batch_size"] is None else int(meta["batch_size"]),
-            }
-            rng_states = {name: meta[name] for name in ("batch_rng", "noise_rng") if meta.get(name) is not None}
-            values.update(self._saved_training(meta))
-            values["last_update"] = data.last_update
-        except (KeyError, TypeError, ValueError, UsageError, ScheduleError) as exc:
+            training = self._saved_training(data.meta)
+        except (TypeError, ValueError, UsageError, ScheduleError) as exc:
             raise CheckpointError(f"{path}: the checkpoint's metadata is incomplete or wrong ({exc})") from None
-        if values["slope_source"] not in SLOPE_SOURCES:
-            raise CheckpointError(f"{path}: unknown slope source {values['slope_source']!r}")
-        for name, rng_state in rng_states.items():
+        if data.last_update is not None and not np.all(np.isfinite(data.last_update)):
+            raise CheckpointError(f"{path}: tensor last_update holds a value that is not a finite number")
+        for name, rng_state in (("batch", saved.batch_rng), ("noise", saved.noise_rng)):
             # Tried on a spare generator first: nothing may change before every check has passed.
+            if rng_state is None:
+                continue
             try:
                 type(self.batch_rng.bit_generator)().state = rng_state
             except (TypeError, ValueError, KeyError, OverflowError):
-                what = "batch" if name == "batch_rng" else "noise"
-                raise CheckpointError(f"{path}: the checkpoint's {what} generator state is not valid") from None
+                raise CheckpointError(f"{path}: the checkpoint's {name} generator state is not valid") from None
+        values = {
+            "theta": data.theta,
+            "frozen": saved.frozen,
+            "rule_state": RuleState(saved.rule, saved.rule_arrays, saved.rule_t),
+            "step_count": saved.step_count,
+            "rate": saved.rate,
+            "slope_source": saved.slope_source,
+            "batch_size": saved.batch_size,
+            "batch_order": saved.batch_order,
+            "batch_cursor": saved.batch_cursor,
+            "epoch": saved.epoch,
+            **training,
+            "last_update": data.last_update,
+        }
+        rng_states = {name: state for name, state in (("batch_rng", saved.batch_rng),
+                                                     ("noise_rng", saved.noise_rng)) if state is not None}
         fields = list(values) + ["batch_rng", "noise_rng"]
-        before = {**self._snapshot(fields), "history": (0, list(self.history))}
+        before = {**self._snapshot(fields), "history": (0, self.history.segment(0))}
         self._restore({**values, **rng_states})
-        self.history[:] = history
-        after = {**self._snapshot(fields), "history": (0, list(history))}
-        self._commit(_Change(f"load {path.name}", before, after), {"op": "load", "path": str(path.resolve()), "sha256": data.sha256})
+        self.history.replace(saved.history)
+        after = {**self._snapshot(fields), "history": (0, self.history.segment(0))}
+        self._commit(_Change(f"load {path.name}", before, after),
+                     {"op": "load", "path": str(path.resolve()), "sha256": data.sha256})
+        self.loaded.append(path)
         self._mark_saved()
         self.last_checkpoint = path
-        note = "" if meta.get("model_digest") == self.setup.digest else " (the model file has changed since it was saved)"
+        note = "" if saved.model_digest == self.setup.digest else " (the model file has changed since it was saved)"
         self.last_action = f"loaded {path} at step {self.step_count}{note}"
 
     def _saved_training(self, meta: dict[str, Any]) -> dict[str, Any]:

@@ -21,14 +21,16 @@ without the runaway rule, since the journal holds exactly the steps made.
 from __future__ import annotations
 
 import math
+import time
 from typing import Iterable, Iterator
 
 import numpy as np
 
-from stepper.core.descent import Update, descent_update, draw_batch
+from stepper.core.descent import Update, descent_update
 from stepper.core.numeric import Progress, numeric_slopes, run_to_end
 from stepper.core.optimizers import RuleState
-from stepper.errors import DivergenceError, RunawayError, StepperError, UsageError
+from stepper.errors import CheckpointError, DivergenceError, RunawayError, StepperError, UsageError
+from stepper.formats.journal import STEP_LINE_SECONDS
 from stepper.session.core import Array, SessionCore, StepReport, _Change
 from stepper.session.runaway import RunawayRule
 
@@ -36,13 +38,28 @@ from stepper.session.runaway import RunawayRule
 class Stepping(SessionCore):
     """Updates (one or many, as one undoable operation) and the one-step rate preview."""
 
+    #: The fields that drawing a mini-batch changes.
+    BATCH_FIELDS = ("batch_rng", "batch_order", "batch_cursor", "epoch")
+
     # -- stepping ------------------------------------------------------------------------------
 
     def _batch(self) -> tuple[Array, Array]:
+        """The rows of the next update: all of them, or the next mini-batch of the epoch.
+
+        Mini-batches are epoch-wise: each epoch draws an order of the training
+        rows from ``batch_rng`` and takes the batches from it in turn, so every
+        row is used once per epoch (the last batch of an epoch takes the rows
+        left, which may be fewer).
+        """
         data = self.setup.data
         if self.batch_size is None:
             return data.X, data.Y
-        pick = draw_batch(self.batch_rng, data.n_train, self.batch_size)
+        if self.batch_order is None or self.batch_cursor >= data.n_train:
+            self.batch_order = self.batch_rng.permutation(data.n_train).astype(np.int64)
+            self.batch_cursor = 0
+            self.epoch += 1
+        pick = np.sort(self.batch_order[self.batch_cursor : self.batch_cursor + self.batch_size])
+        self.batch_cursor += pick.size
         return data.X[pick], data.Y[pick]
 
     def _slopes(self, X: Array, Y: Array) -> Array:
@@ -58,11 +75,13 @@ class Stepping(SessionCore):
         """One update in place, or an error (DivergenceError, a custom layer's) with nothing changed."""
         # The draw of a refused step is taken back too, so the next step (and a
         # replay of the journal, which holds only the steps made) draws the same batch.
-        rng_state = self.batch_rng.bit_generator.state
+        # (_batch replaces batch_order when an epoch begins, never changes it in place.)
+        saved = (self.batch_rng.bit_generator.state, self.batch_order, self.batch_cursor, self.epoch)
         try:
             theta, state, cost, slopes = self._next_update()
         except BaseException:
-            self.batch_rng.bit_generator.state = rng_state
+            self.batch_rng.bit_generator.state = saved[0]
+            self.batch_order, self.batch_cursor, self.epoch = saved[1:]
             raise
         self.last_update = theta - self.theta
         self.theta[...] = theta
@@ -130,7 +149,7 @@ class Stepping(SessionCore):
         return descent_update(self.rule_state, slopes, self.theta, rate, self.step_count, self.descent,
                               self.frozen, self.net.penalized)
 
-    def iter_steps(self, n: int, watch: bool = True) -> Progress[StepReport]:
+    def iter_steps(self, n: int, watch: bool = True, continues: bool = False) -> Progress[StepReport]:
         """Make ``n`` updates as one undoable operation, yielding ``(done, n)`` after each.
 
         Closing the generator early (cancel) keeps the steps already made. A step
@@ -138,16 +157,31 @@ class Stepping(SessionCore):
         With ``watch`` the session's :attr:`runaway` rule is applied: a cost that
         runs away raises RunawayError after the step that showed it, keeping
         every step made. See the module docstring for the messages.
+        Steps go to the journal as they are made, a line every
+        ``STEP_LINE_SECONDS`` at most (and whenever :meth:`flush_journal` asks).
+        ``continues`` (a replayed journal line) adds the steps to the last
+        operation, which must be a run of steps.
         """
         if n < 1:
             raise UsageError(f"number of steps {n} must be at least 1")
-        fields = ["theta", "rule_state", "step_count", "batch_rng"]
-        before = self._snapshot(fields)
-        start = len(self.history)
+        fields = ["theta", "rule_state", "step_count", *self.BATCH_FIELDS]
+        earlier: _Change | None = None
+        if continues:
+            if not self._undo or self._undo[-1].op != "step" or self._redo:
+                raise CheckpointError("a line continuing a run of steps follows no run of steps")
+            earlier = self._undo.pop()
+            # Back to the state before that run (whatever form the undo level keeps it in), and forward again.
+            self._restore(earlier.before)
+            before, start = self._snapshot(fields), len(self.history)
+            self._restore(earlier.after)
+        else:
+            before, start = self._snapshot(fields), len(self.history)
         cost_before = self.train_cost()
         watcher = self.runaway.watch(cost_before) if watch else None
         done = 0
         stop: DivergenceError | None = None
+        self._steps_unlogged, self._steps_first_logged = 0, False
+        last_line = time.monotonic()
         try:
             yield 0, n
             for _ in range(n):
@@ -157,17 +191,24 @@ class Stepping(SessionCore):
                     stop = self._refused(exc, done, n)
                     break
                 done += 1
+                self._steps_unlogged += 1
                 reason = None if watcher is None else watcher.after(self.train_cost())
                 if reason is not None:
                     stop = self._ran_away(reason, done, n)
                     break
+                now = time.monotonic()
+                if now - last_line >= STEP_LINE_SECONDS:
+                    last_line = now
+                    self._log_steps()
                 yield done, n
         finally:
-            if done:
-                after = {**self._snapshot(fields), "history": (start, list(self.history[start:]))}
-                change = _Change(f"{done} step{'s' if done > 1 else ''}",
-                                 {**before, "history": (start, [])}, after)
-                self._commit(change, {"op": "step", "n": done})
+            self._log_steps()
+            if done or earlier is not None:
+                total = self.step_count - int(before["step_count"])
+                after = {**self._snapshot(fields), "history": (start, self.history.segment(start))}
+                change = _Change(f"{total} step{'s' if total > 1 else ''}",
+                                 {**before, "history": (start, [])}, after, op="step")
+                self._commit(change, None)
                 self.last_action = (
                     f"{done} step{'s' if done > 1 else ''} ({self.rule}, rate {self.rate:g}, "
                     f"{self.slope_source} slopes): cost {cost_before:.6g} -> {self.train_cost():.6g}"
@@ -208,9 +249,9 @@ class Stepping(SessionCore):
         """
         self.runaway = rule
 
-    def step(self, n: int = 1, watch: bool = True) -> StepReport:
+    def step(self, n: int = 1, watch: bool = True, continues: bool = False) -> StepReport:
         """Make ``n`` updates; see :meth:`iter_steps`."""
-        report = run_to_end(self.iter_steps(n, watch))
+        report = run_to_end(self.iter_steps(n, watch, continues))
         assert report is not None
         return report
 

@@ -25,6 +25,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from stepper.core.optimizers import RuleState
+from stepper.formats.saved_state import CostHistory
 
 Array = NDArray[np.float64]
 Bits = NDArray[np.uint64]
@@ -118,6 +119,9 @@ def saved_bytes(*sides: dict[str, Any]) -> int:
         elif isinstance(value, RuleBits):
             for bits in value.bits.values():
                 count(bits)
+        elif isinstance(value, CostHistory):
+            for array in (value.steps, value.train, value.val, value.rates, value.rules):
+                count(array)
         elif isinstance(value, (tuple, list)):
             for item in value:
                 count(item)

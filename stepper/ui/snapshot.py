@@ -33,15 +33,15 @@ from stepper.scenarios import scenarios_root
 
 if TYPE_CHECKING:
     from stepper.core.gradcheck import CheckResult
-    from stepper.session import Session
+    from stepper.session import History, Session
 
 Array = NDArray[np.float64]
 
 #: Verdict codes, ordered by severity so that sorting by code puts the worst first.
 NO_VERDICT = 0
-VERDICT_CODE = {"agree": 1, "kink": 2, "doubtful": 3, "disagree": 4}
+VERDICT_CODE = {"agree": 1, "kink": 2, "unresolved": 3, "doubtful": 4, "disagree": 5}
 #: How each verdict reads in the table: a word, so it needs no colour (the same words as ``stepper check``).
-VERDICT_TEXT = {NO_VERDICT: "-", 1: "agree", 2: "kink", 3: "doubtful", 4: "disagree"}
+VERDICT_TEXT = {NO_VERDICT: "-", 1: "agree", 2: "kink", 3: "unresolved", 4: "doubtful", 5: "disagree"}
 #: What the verdict column says for a numeric slope computed before the weights last changed.
 STALE_TEXT = "stale"
 VERDICT_NAME = {code: name for name, code in VERDICT_CODE.items()}
@@ -127,36 +127,34 @@ def verdict_codes(verdict: NDArray[Any]) -> NDArray[np.int8]:
 
 
 class HistoryArrays:
-    """The cost history as arrays, converting only the entries added since the last call.
+    """The cost history as arrays, copying only the entries added since the last call.
 
-    A long run leaves hundreds of thousands of entries; converting them all on
-    every refresh would cost tens of milliseconds. The session only ever appends
-    to its history, cuts it from some point on (undo), extends it again with the
-    same entries (redo) or replaces it (load): if the last entry converted is
-    still in its place, everything before it is too.
+    A long run leaves millions of entries; copying them all on every refresh
+    would cost milliseconds. The session's :class:`~stepper.session.History`
+    keeps its entries in arrays and changes its ``generation`` whenever it cuts
+    or replaces them (undo, load): while the generation holds, the entries
+    copied before are still in place.
     """
 
     def __init__(self) -> None:
-        self._length = 0
-        self._last: object | None = None
+        self._generation: tuple[int, int] | None = None
         self._steps = np.zeros(0, dtype=np.int64)
         self._train = np.zeros(0)
         self._val = np.zeros(0)
 
-    def arrays(self, history: Sequence[Any]) -> tuple[NDArray[np.int64], Array, Array]:
-        """``(steps, train, val)`` for ``history`` (entries with step, train_cost, val_cost)."""
-        n = self._length
-        if not (0 < n <= len(history) and history[n - 1] is self._last):
+    def arrays(self, history: History) -> tuple[NDArray[np.int64], Array, Array]:
+        """``(steps, train, val)`` for ``history``; ``val`` is NaN where there is none."""
+        n = self._steps.size
+        key = (id(history), history.generation)
+        if key != self._generation or n > len(history):
             n = 0
             self._steps, self._train, self._val = np.zeros(0, dtype=np.int64), np.zeros(0), np.zeros(0)
-        new = history[n:]
-        if new:
-            self._steps = np.concatenate([self._steps, np.fromiter((h.step for h in new), np.int64, len(new))])
-            self._train = np.concatenate([self._train, np.fromiter((h.train_cost for h in new), float, len(new))])
-            self._val = np.concatenate([self._val, np.fromiter(
-                (np.nan if h.val_cost is None else h.val_cost for h in new), float, len(new))])
-        self._length = len(history)
-        self._last = history[-1] if history else None
+        if len(history) > n:
+            new = history.columns(n)
+            self._steps = np.concatenate([self._steps, new.steps])
+            self._train = np.concatenate([self._train, new.train])
+            self._val = np.concatenate([self._val, new.val])
+        self._generation = key
         return self._steps, self._train, self._val
 
 

@@ -30,7 +30,7 @@ from textual.scroll_view import ScrollView
 from textual.strip import Strip
 
 from stepper.ui.keys import bindings
-from stepper.ui.snapshot import STALE_TEXT, VERDICT_TEXT, Snapshot
+from stepper.ui.snapshot import STALE_TEXT, VERDICT_CODE, VERDICT_TEXT, Snapshot
 
 IntArray = NDArray[np.int64]
 
@@ -515,9 +515,9 @@ class WeightTable(ScrollView, can_focus=True):
             verdict_style = numeric_style = self._style(*row_parts, "weights--stale")
         else:
             numeric_style = style
-            if code == 4:
+            if code == VERDICT_CODE["disagree"]:
                 verdict_style = self._style(*row_parts, "weights--disagree")
-            elif code == 3:
+            elif code in (VERDICT_CODE["doubtful"], VERDICT_CODE["unresolved"]):
                 verdict_style = self._style(*row_parts, "weights--doubtful")
             else:
                 verdict_style = style
