@@ -194,7 +194,7 @@ def test_only_doubtful_slopes_fail_and_say_so(capsys: pytest.CaptureFixture[str]
     path = str(write_model(MODEL, DATA))
     code, doc = run_json(capsys, path)
     assert code == 1 and doc["passed"] is False
-    assert doc["counts"] == {"agree": 7, "doubtful": 6, "disagree": 0, "kink": 0}
+    assert doc["counts"] == {"agree": 7, "doubtful": 6, "disagree": 0, "kink": 0, "unresolved": 0}
     code, out, err = run(capsys, path)
     assert code == 1 and err == ""
     assert ("result      FAIL: 6 slopes are doubtful (relative error between 1e-5 and 1e-3), none "

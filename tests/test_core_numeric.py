@@ -320,12 +320,13 @@ def test_tiny_slopes_within_rounding_noise_agree() -> None:
 def test_rounding_allowance_is_sixteen_times_eps_cost_over_h(method: str) -> None:
     # README, "How the slopes are compared": a numeric slope carries a rounding error of
     # about u |C| / h (Numerical Recipes, 3rd ed., 2007, section 5.7); two slopes closer
-    # than 16 times that agree (the factor is common practice). Slopes far below the
-    # relative-error floor, apart by 15 and by 17 times u |C| / h: only the first agrees.
+    # than 16 times that agree (the factor is common practice). Slopes of 100 units (above
+    # the allowance, so the comparison can resolve them; see test_core_verdicts for slopes
+    # below it), apart by 15 and by 17 times u |C| / h: only the first agrees.
     cost, h = 0.8, default_step(method)
     unit = EPS * cost / h
-    numeric = NumericSlopes(np.zeros(4), np.zeros(4, dtype=bool), method, h)
-    analytic = np.array([15.0, -15.0, 17.0, 20.0]) * unit
+    numeric = NumericSlopes(np.full(4, 100.0 * unit), np.zeros(4, dtype=bool), method, h)
+    analytic = numeric.slopes + np.array([15.0, -15.0, 17.0, 20.0]) * unit
     result = compare(cost, analytic, numeric)
     assert list(result.verdict) == ["agree", "agree", "disagree", "disagree"]
     # The relative error shown is still the computed one (README): far above 1e-5 here.

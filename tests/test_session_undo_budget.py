@@ -71,8 +71,10 @@ def test_levels_undo_and_redo_bit_for_bit(setup: Any, tmp_path: Path, rule: str)
 
 def test_past_the_budget_the_oldest_levels_go_first(setup: Any, monkeypatch: pytest.MonkeyPatch) -> None:
     s = Session(setup, rate=0.05)
-    one_step = 8 * s.net.n_params
-    s.undo_budget = 3 * one_step + 2048  # room for three steps' differences, and their small fields
+    s.step(1)
+    one_step = s._undo[-1].nbytes()  # the step's difference, its cost history entry and its small fields
+    s.undo()
+    s.undo_budget = 3 * one_step + one_step // 2  # room for three steps, not four
     seen = [bits(s)]
     for _ in range(10):
         s.step(1)

@@ -93,7 +93,7 @@ def replay(journal: Path, model: Path | None = None, force: bool = False, run_co
     check_inputs(journal, dict(header, digest=None) if graph else header, model_path, force)
     check_code(journal, model_path, run_code)
     try:
-        if graph:
+        if graph and isinstance(document, dict):
             # An ONNX file that was opened with --data, --targets and --loss: the options built this document.
             from stepper.commands.graph_data import graph_setup
 

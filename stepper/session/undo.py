@@ -120,8 +120,8 @@ def saved_bytes(*sides: dict[str, Any]) -> int:
             for bits in value.bits.values():
                 count(bits)
         elif isinstance(value, CostHistory):
-            for array in (value.steps, value.train, value.val, value.rates, value.rules):
-                count(array)
+            for column in (value.steps, value.train, value.val, value.rates, value.rules):
+                count(column)
         elif isinstance(value, (tuple, list)):
             for item in value:
                 count(item)
