@@ -278,12 +278,12 @@ def check_plot_target(target: str | None, inputs: Sequence[Path | None]) -> None
     """Refuse a ``--plot`` file that is one of ``inputs`` (or another output); call it before long work."""
     if target is None or target == "-":
         return
-    check_output(Path(target), [("an input", Path(s)) for s in inputs if s is not None], "text", "--plot")
     for source in inputs:
         if source is not None and _same_file(Path(target), Path(source)):
             raise UsageError(f"--plot {target}: is also an input ({source}); choose another file")
         if source is not None and Path(target).resolve() == Path(source).resolve():
             raise UsageError(f"--plot {target}: is also an output ({source}); choose another file")
+    check_output(Path(target), [], "text", "--plot")  # never a link, a device or a FIFO
 
 
 def _same_file(a: Path, b: Path) -> bool:

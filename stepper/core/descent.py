@@ -131,8 +131,35 @@ def check_setting(name: str, value: float) -> float:
     return float(value)
 
 
-def draw_batch(rng: np.random.Generator, n_rows: int, size: int) -> NDArray[np.int64]:
-    """``size`` distinct row indices out of ``n_rows``, drawn from ``rng`` and sorted, ``(size,)``."""
-    pick = rng.choice(n_rows, size=size, replace=False)
-    pick.sort()
-    return np.asarray(pick, dtype=np.int64)
+@dataclass(frozen=True)
+class EpochPosition:
+    """Where mini-batches stand in their epoch.
+
+    Attributes:
+        order: this epoch's order of the rows ``(n_rows,)``, or None before the first batch.
+        cursor: how many rows of ``order`` are used.
+        epoch: how many epochs have begun.
+    """
+
+    order: NDArray[np.int64] | None = None
+    cursor: int = 0
+    epoch: int = 0
+
+
+def next_batch(rng: np.random.Generator, n_rows: int, size: int,
+               at: EpochPosition) -> tuple[NDArray[np.int64], EpochPosition]:
+    """The rows of the next mini-batch, sorted ``(k,)``, and the position after it.
+
+    Epoch-wise sampling: each epoch draws an order of the ``n_rows`` rows from
+    ``rng`` and takes batches of ``size`` from it in turn, so every row is used
+    once per epoch; the last batch of an epoch takes the rows left, which may be
+    fewer (common practice, e.g. Goodfellow, Bengio & Courville, *Deep
+    Learning*, 2016, section 8.1.3). ``at`` is not changed; its order array is
+    replaced, never written, when an epoch begins.
+    """
+    order, cursor, epoch = at.order, at.cursor, at.epoch
+    if order is None or cursor >= n_rows:
+        order = rng.permutation(n_rows).astype(np.int64)
+        cursor, epoch = 0, epoch + 1
+    pick = np.sort(order[cursor : cursor + size])
+    return pick, EpochPosition(order, cursor + int(pick.size), epoch)

@@ -25,7 +25,7 @@ from typing import Any, Callable, Mapping, TypeVar
 import numpy as np
 from numpy.typing import NDArray
 
-from stepper.core.descent import Descent, descent_update, draw_batch
+from stepper.core.descent import Descent, EpochPosition, descent_update, next_batch
 from stepper.core.network import Network
 from stepper.core.layers import Dense
 from stepper.core.numeric import Progress, parallel_map
@@ -64,6 +64,7 @@ class Start:
         batch_size: rows per update, or None for all training rows.
         rng_state: the mini-batch generator's ``bit_generator.state``.
         settings: clipping, decay and schedule.
+        position: where mini-batches stand in their epoch.
     """
 
     theta: Array
@@ -73,6 +74,7 @@ class Start:
     batch_size: int | None
     rng_state: Mapping[str, Any]
     settings: Descent
+    position: EpochPosition = EpochPosition()
 
 
 @dataclass(frozen=True)
@@ -111,6 +113,7 @@ class _Run:
     theta: Array
     state: RuleState
     rng: np.random.Generator
+    position: EpochPosition
     diverged_at: int | None = None
 
 
@@ -138,7 +141,8 @@ def iter_range_test(
     total = int(rates.size) * steps
     decay_mask = net.penalized
     start_cost = net.cost(start.theta, X, Y)
-    runs = [_Run(start.theta.copy(), start.state.copy(), _generator(start.rng_state)) for _ in rates]
+    runs = [_Run(start.theta.copy(), start.state.copy(), _generator(start.rng_state), start.position)
+            for _ in rates]
     spread = parallel_map if all(isinstance(layer, Dense) for layer in net.layers) else _one_by_one
 
     def one_step(k: int, s: int) -> None:
@@ -148,7 +152,7 @@ def iter_range_test(
         if start.batch_size is None:
             Xb, Yb = X, Y
         else:
-            pick = draw_batch(run.rng, X.shape[0], start.batch_size)
+            pick, run.position = next_batch(run.rng, X.shape[0], start.batch_size, run.position)
             Xb, Yb = X[pick], Y[pick]
         with np.errstate(all="ignore"):
             _, slopes = net.cost_and_slopes(run.theta, Xb, Yb)

@@ -18,7 +18,7 @@ from typing import Any, Callable, Iterable
 import numpy as np
 from numpy.typing import NDArray
 
-from stepper.core.descent import Descent
+from stepper.core.descent import Descent, EpochPosition
 from stepper.core.gradcheck import CheckResult, iter_check, merged
 from stepper.core.names import WeightNames
 from stepper.core.numeric import Progress, run_to_end
@@ -153,6 +153,11 @@ class SessionCore:
             self.journal = JournalWriter(journal, setup.path, setup.digest, start, inputs, exclusive=new_journal)
 
     # -- read-only views -------------------------------------------------------------------
+
+    @property
+    def epoch_position(self) -> EpochPosition:
+        """Where mini-batches stand in their epoch (see :func:`stepper.core.descent.next_batch`)."""
+        return EpochPosition(self.batch_order, self.batch_cursor, self.epoch)
 
     @property
     def rule(self) -> str:

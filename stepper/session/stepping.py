@@ -26,7 +26,7 @@ from typing import Iterable, Iterator
 
 import numpy as np
 
-from stepper.core.descent import Update, descent_update
+from stepper.core.descent import Update, descent_update, next_batch
 from stepper.core.numeric import Progress, numeric_slopes, run_to_end
 from stepper.core.optimizers import RuleState
 from stepper.errors import CheckpointError, DivergenceError, RunawayError, StepperError, UsageError
@@ -54,12 +54,8 @@ class Stepping(SessionCore):
         data = self.setup.data
         if self.batch_size is None:
             return data.X, data.Y
-        if self.batch_order is None or self.batch_cursor >= data.n_train:
-            self.batch_order = self.batch_rng.permutation(data.n_train).astype(np.int64)
-            self.batch_cursor = 0
-            self.epoch += 1
-        pick = np.sort(self.batch_order[self.batch_cursor : self.batch_cursor + self.batch_size])
-        self.batch_cursor += pick.size
+        pick, at = next_batch(self.batch_rng, data.n_train, self.batch_size, self.epoch_position)
+        self.batch_order, self.batch_cursor, self.epoch = at.order, at.cursor, at.epoch
         return data.X[pick], data.Y[pick]
 
     def _slopes(self, X: Array, Y: Array) -> Array:
