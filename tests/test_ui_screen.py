@@ -222,7 +222,7 @@ def test_a_custom_layer_says_its_code_runs(drive) -> None:
     session = Session(load_setup(scenarios_root() / "hive-gate-fixed" / "model.toml"))
 
     async def check(app: StepperApp, pilot: Pilot[Any], said: list[tuple[str, str]]) -> None:
-        assert "runs the Python code of gate.py: open only files you trust" in status(app)
+        assert "runs the code of gate.py: open only files you trust" in status(app)
 
     drive(session, check, size=(80, 24))
 
@@ -315,3 +315,24 @@ def test_keys_of_our_own_and_a_bar_in_step_with_the_help() -> None:
     # A key that belongs to the moment comes first: x while a job runs.
     assert bar_items(80, frozenset({"job"}))[0].action == "cancel_job"
     assert all(k.action != "cancel_job" for k in bar_items(200))
+
+
+def test_the_slice_figures_fit_beside_the_plot_at_80x24(session: Session, drive) -> None:
+    from textual.widgets import Static
+
+    from stepper.ui.slicepanel import SlicePanel
+
+    async def check(app: StepperApp, pilot: Pilot[Any], said: list[tuple[str, str]]) -> None:
+        for rate in ("0.1", "5"):
+            await press(app, pilot, "r")
+            await answer(app, pilot, rate)
+            if app.why != "slice":
+                await press(app, pilot, "t")
+            await pilot.pause()
+            box = app.query_one(SlicePanel).query_one("#slice-figures", Static)
+            lines = str(box.content).splitlines()
+            assert len(lines) <= box.content_size.height, lines
+            assert all(len(line) <= box.content_size.width for line in lines), lines
+            assert lines[-1].startswith("span +-")
+
+    drive(session, check, size=(80, 24))

@@ -90,7 +90,7 @@ def status_fields(snap: Snapshot, info: StatusInfo) -> list[str]:
     """The pieces of the status line, in reading order; none is ever cut."""
     fields = [f"{snap.name} ({snap.source})"]
     if snap.code:
-        fields.append(f"runs the Python code of {', '.join(snap.code)}: open only files you trust")
+        fields.append(f"runs the code of {', '.join(snap.code)}: open only files you trust")
     fields += [f"step {snap.step_count}", f"train {cost_text(snap.train_cost)}"]
     if snap.val_cost is not None:
         fields.append(f"val {cost_text(snap.val_cost)}")

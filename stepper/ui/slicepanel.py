@@ -45,10 +45,13 @@ MEANING = {
 
 
 def slice_lines(figures: SliceFigures, width: int = 37) -> list[str]:
-    """The figures beside the plot, one string per line, wrapped at ``width``."""
+    """The figures beside the plot, one string per line, wrapped at ``width``.
+
+    Nine lines at most at 37 columns, the room beside the plot at 80x24 (the cost
+    at the current point is the status line's ``train``, so it is not repeated).
+    """
     s = figures.result
     lines = [
-        f"cost      {s.cost: .6e}",
         f"slope     {s.slope: .4e} (tangent)",
         f"curvature {s.curvature: .4e}",
         f"rate x curv. {s.rate_curvature:.3g}: {s.regime.upper()}",
@@ -58,8 +61,7 @@ def slice_lines(figures: SliceFigures, width: int = 37) -> list[str]:
         lines.append(f"best rate 1/curv. {s.best_rate:.3g}, limit {2 * s.best_rate:.3g}")
     beyond = "" if s.points[0] <= s.landing <= s.points[-1] else " (beyond the span)"
     lines.append(f"one step {s.value:.4g} -> {s.landing:.4g}{beyond}")
-    lines.append(f"  cost {s.landing_cost:.6e} (a parabola through the slope and curvature predicts "
-                 f"{s.model_cost:.4g})")
+    lines.append(f"  cost {s.landing_cost:.6g} (quadratic {s.model_cost:.4g})")
     lines.append(f"span +-{figures.span:.3g} {'automatic' if figures.automatic else 'set'}: < > T")
     return [piece for line in lines for piece in textwrap.wrap(line, width, subsequent_indent="  ")]
 
