@@ -21,6 +21,7 @@ all built on :class:`stepper.ui.base.AppBase`, which holds the shared state and 
 from __future__ import annotations
 
 import logging
+import os
 from contextlib import contextmanager
 from pathlib import Path
 from typing import ClassVar, Iterator
@@ -29,6 +30,7 @@ from textual.app import ComposeResult
 from textual.binding import BindingType
 from textual.containers import Container
 
+from stepper.formats import user_code
 from stepper.errors import UsageError
 from stepper.session import Session
 from stepper.ui.base import DEFAULT_BUDGET, DEFAULT_NOISE, log
@@ -129,13 +131,26 @@ def log_to_file(log_file: Path) -> Iterator[None]:
         handler.close()
 
 
+#: Seconds a custom layer's call may take on the screen's thread before it is abandoned.
+USER_CODE_SECONDS = 10.0
+
+
 def run_app(session: Session, log_file: Path, noise: float = DEFAULT_NOISE,
             numeric_budget: float = DEFAULT_BUDGET) -> int:
     """Run the app on the terminal until the user quits; returns the exit code.
 
     ``numeric_budget``: seconds a numeric pass may take to be redone by itself after every change.
     """
-    with log_to_file(log_file):
+    with log_to_file(log_file), user_code.limit_main_thread(USER_CODE_SECONDS):
+        # A custom layer's call on the screen's thread that does not return within
+        # USER_CODE_SECONDS is abandoned (its layer's failure), so the screen never freezes.
         log.info("open %s", session.setup.path)
         StepperApp(session, noise=noise, numeric_budget=numeric_budget).run()
+        if user_code.running():
+            # A user's code is still stuck in a worker (a call that ignores being stopped):
+            # the journal holds every step; end here rather than wait for it for ever.
+            log.info("a custom layer's code did not stop; quitting without it")
+            session.close()
+            logging.shutdown()
+            os._exit(0)
     return 0

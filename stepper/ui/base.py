@@ -137,6 +137,8 @@ class AppBase(App[None]):
         self._steps_at_start = 0
         self._snapshot_problem: str | None = None
         self._worker_waiting = False
+        #: q was pressed while a job ran: quit when it ends.
+        self._quit_after_job = False
 
     def get_line_filters(self) -> Sequence[LineFilter]:
         """Textual's filters, then Stepper's: no colour at all (mono, plain), ASCII only (plain)."""
@@ -181,7 +183,7 @@ class AppBase(App[None]):
                 hints = self.figures.hints(self.session.check, current)
                 why = hints[0] if hints else None
             info = StatusInfo(self.session.refresh_numeric_after_step, self.job, self.note, self.numeric_reason,
-                              why)
+                              why, self.session.journal_problem)
             self.query_one(StatusLine).show(self.snapshot, info)
         context = {self.why} if self.why in ("slice", "factors") else set()
         if self.job is not None:

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import math
 
+from stepper.formats import user_code
 from stepper.core.optimizers import RULES
 from stepper.errors import StepperError, UsageError
 from stepper.session import SLOPE_SOURCES
@@ -48,7 +49,10 @@ class DescentKeys(AppBase):
             self.say("nothing is running")
             return
         self._worker.cancel()
-        self.say(f"cancelling {self.job}...")
+        # A custom layer's code that does not return is stopped too (stepper.formats.user_code).
+        stopped = user_code.abandon("cancelled with x")
+        self.say(f"cancelling {self.job}..." + (" (stopping a custom layer's code that is still running)"
+                                               if stopped else ""))
 
     def after_steps(self) -> None:
         """Recompute numeric slopes when the user asked for that after every step."""

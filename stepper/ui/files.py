@@ -5,6 +5,7 @@ from __future__ import annotations
 from pathlib import Path
 from typing import Callable
 
+from stepper.formats import user_code
 from stepper.errors import StepperError
 from stepper.formats.export import export_weights
 from stepper.formats.weight_sources import DTYPES
@@ -16,6 +17,10 @@ from stepper.ui.dialogs import ConfirmScreen, HelpScreen, QuitScreen
 #: Words after the path in the save prompt that make it an export.
 EXPORT_WORDS = set(LAYOUTS) | set(DTYPES)
 
+
+
+#: Seconds q waits for a cancelled job to end before the app quits anyway.
+QUIT_WAIT = 2.0
 
 class FileKeys(AppBase):
     """Checkpoints (through the session), the help screen and quitting."""
@@ -98,7 +103,14 @@ class FileKeys(AppBase):
 
     async def action_quit(self) -> None:
         if self.job is not None:
-            self.say(f"{self.job} is running: x cancels it, then q quits", error=True)
+            # Cancel it (stopping a custom layer's code that hangs) and quit when it has ended; every
+            # step it made is in the journal already. If it does not end within QUIT_WAIT, quit anyway.
+            if self._worker is not None:
+                self._worker.cancel()
+            user_code.abandon("quitting with q")
+            self.say(f"quitting: cancelling {self.job} first")
+            self._quit_after_job = True
+            self.set_timer(QUIT_WAIT, self.exit)
             return
         if not self.session.dirty:
             self.exit()

@@ -108,6 +108,7 @@ class Jobs(AppBase):
             # The worker waits in call_from_thread until this returns: the session is still.
             self._worker_waiting = True
             try:
+                self.session.flush_journal()  # a kill after this frame loses no step it shows
                 self.refresh_view()
             finally:
                 self._worker_waiting = False
@@ -115,6 +116,9 @@ class Jobs(AppBase):
     def _job_done(self, job: str, error: StepperError | None, cancelled: bool, seconds: float) -> None:
         self.job = None
         self._worker = None
+        if self._quit_after_job:  # q was pressed while it ran
+            self.exit()
+            return
         self.query_one(JobBar).stop()
         if job == "numeric slopes" and error is None and not cancelled:
             self.numeric_pass_took(seconds)

@@ -46,6 +46,7 @@ class StatusInfo:
         numeric: why the numeric slopes are not recomputed by themselves (a pass costs more
             than the budget), or None.
         why: the likely cause of the current disagreements (one sentence), or None.
+        journal: why the journal stopped (it could not be written), or None; shown until the app ends.
     """
 
     auto_check: bool = False
@@ -53,6 +54,7 @@ class StatusInfo:
     note: Note | None = None
     numeric: str | None = None
     why: str | None = None
+    journal: str | None = None
 
 
 #: Most lines the last action or message takes; a longer one ends with MORE.
@@ -148,6 +150,9 @@ def status_lines(snap: Snapshot, info: StatusInfo, width: int = 78) -> list[str]
     """
     width = max(width, 20)
     lines = pack(status_fields(snap, info), width)
+    if info.journal:
+        lines += textwrap.wrap(f"JOURNAL STOPPED: {info.journal}", width, break_on_hyphens=False,
+                               subsequent_indent="  ")
     if info.why:
         lines += textwrap.wrap(f"why: {info.why}", width, break_on_hyphens=False, subsequent_indent="  ")
     message = textwrap.wrap(message_text(snap, info), width, break_on_hyphens=False, subsequent_indent="  ")
