@@ -186,11 +186,12 @@ def _read_bytes(path: Path) -> bytes:
                                       f"{size:,} bytes; at most {MAX_HEADER:,} are read)")
             if size > total - 8:
                 raise CheckpointError(f"{path}: not a safetensors file (header length {size} is past the end)")
-            rest = handle.read(CHECKPOINT_LIMIT)
+            handle.seek(0)
+            raw = handle.read(CHECKPOINT_LIMIT)  # one read of the whole file: no second copy
         except OSError as exc:
             raise CheckpointError(f"{path}: cannot be read ({exc.strerror or exc})") from None
-    record_read(path, head + rest)
-    return head + rest
+    record_read(path, raw)
+    return raw
 
 
 def _parse(path: Path, raw: bytes) -> tuple[dict[str, NDArray[Any]], dict[str, Any]]:
@@ -254,11 +255,13 @@ def _meta_of(path: Path, header: dict[str, Any]) -> dict[str, Any]:
     return meta
 
 
-def load_checkpoint(path: Path, layout: ParamLayout) -> CheckpointData:
+def load_checkpoint(path: Path, layout: ParamLayout, digest: bool = True) -> CheckpointData:
     """Read a checkpoint and check that it fits ``layout`` (names, shapes, dtype).
 
     The metadata is parsed (bounded JSON) but its fields are checked by
-    :func:`stepper.formats.saved_state.read_state`.
+    :func:`stepper.formats.saved_state.read_state`. Without ``digest`` the
+    file's SHA-256 is not computed (``sha256`` is empty): a third of the time
+    of loading a long history, needed only when a journal records the load.
     """
     raw = _read_bytes(path)
     tensors, header = _parse(path, raw)
@@ -284,7 +287,8 @@ def load_checkpoint(path: Path, layout: ParamLayout) -> CheckpointData:
     last_update = (_flat_group(path, tensors, layout, LAST_UPDATE)
                    if any(k.startswith(LAST_UPDATE) for k in tensors) else None)
     others = {k: v for k, v in tensors.items() if k.startswith(("history.", "batch."))}
-    return CheckpointData(theta, rule_arrays, meta, hashlib.sha256(raw).hexdigest(), last_update, others)
+    sha256 = hashlib.sha256(raw).hexdigest() if digest else ""
+    return CheckpointData(theta, rule_arrays, meta, sha256, last_update, others)
 
 
 def _flat_group(path: Path, tensors: dict[str, NDArray[Any]], layout: ParamLayout, prefix: str) -> Array:

@@ -253,8 +253,8 @@ def _history(path: Path, data: CheckpointData, error: Any) -> CostHistory:
     ours = np.array([RULES.index(name) for name in codes], dtype=np.uint8)[rule_codes.astype(np.int64)]
     lengths = np.diff(np.append(setting_starts, n))
     _costs(path, train, val)
-    return CostHistory(step_values.astype(np.int64), np.array(train), np.array(val),
-                       np.repeat(rates, lengths), np.repeat(ours, lengths))
+    # (train and val are the reader's own arrays already: no copy)
+    return CostHistory(step_values.astype(np.int64), train, val, np.repeat(rates, lengths), np.repeat(ours, lengths))
 
 
 def _runs(path: Path, starts: NDArray[np.int64], n: int, what: str) -> NDArray[np.int64]:

@@ -84,7 +84,7 @@ class Files(SessionCore):
         refused the same way.
         """
         path = Path(path)
-        data = load_checkpoint(path, self.net.layout)
+        data = load_checkpoint(path, self.net.layout, digest=self.journal is not None or expect_sha256 is not None)
         if expect_sha256 is not None and data.sha256 != expect_sha256:
             raise CheckpointError(
                 f"{path}: has changed since the journal recorded loading it (its SHA-256 differs), "
@@ -125,7 +125,8 @@ class Files(SessionCore):
         before = {**self._snapshot(fields), "history": (0, self.history.segment(0))}
         self._restore({**values, **rng_states})
         self.history.replace(saved.history)
-        after = {**self._snapshot(fields), "history": (0, self.history.segment(0))}
+        # The undo level keeps the loaded history itself (nothing else holds it): no second copy.
+        after = {**self._snapshot(fields), "history": (0, saved.history)}
         self._commit(_Change(f"load {path.name}", before, after),
                      {"op": "load", "path": str(path.resolve()), "sha256": data.sha256})
         self.loaded.append(path)
