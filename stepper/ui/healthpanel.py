@@ -58,14 +58,16 @@ def _exp(value: float) -> str:
     return f"{mantissa}e{int(exponent)}"
 
 
-def health_table(f: HealthFigures, wide: bool) -> list[str]:
-    """The header and one row per layer; ``wide`` adds the ratio gauge and the error signal's size."""
+def health_table(f: HealthFigures, wide: bool, rms: bool | None = None) -> list[str]:
+    """The header and one row per layer; ``wide`` adds the ratio gauge, ``rms`` (as ``wide`` unless
+    given) the error signal's size."""
+    rms = wide if rms is None else rms
     type_width = max(8, *(len(k) for k in f.kinds))
     head = f"{'':<4}{'layer':<{type_width}} {'|weights|':>10} {'|slopes|':>10}  {'update/weight':<16}"
     if wide:
         head += f"{'[ ] ' + _exp(RATIO_LOW) + '..' + _exp(RATIO_HIGH):<15}"
-    head += f"{'units':<10}{'back':>6}"
-    if wide:
+    head += f"{'units':<10}{'vs next':>8}"
+    if rms:
         head += f"{'error rms':>10}"
     lines = [head.rstrip()]
     for e, kind in zip(f.report.layers, f.kinds):
@@ -75,8 +77,8 @@ def health_table(f: HealthFigures, wide: bool) -> list[str]:
                f"{ratio:<16}")
         if wide:
             row += f"{gauge(e.update_ratio):<15}"
-        row += f"{_units(e):<10}{back:>6}"
-        if wide:
+        row += f"{_units(e):<10}{back:>8}"
+        if rms:
             row += f"{e.signal_rms:>10.2e}"
         lines.append(row.rstrip())
     return lines
@@ -84,16 +86,17 @@ def health_table(f: HealthFigures, wide: bool) -> list[str]:
 
 def health_lines(f: HealthFigures, width: int) -> list[str]:
     """The panel's text for a content ``width``: the gauge and the error rms when they fit."""
-    lines = health_table(f, wide=True)
-    if max(len(line) for line in lines) > width:
-        lines = health_table(f, wide=False)
+    for wide, rms in ((True, True), (True, False), (False, False)):
+        lines = health_table(f, wide, rms)
+        if max(len(line) for line in lines) <= width:
+            break
     r = f.report
     wrap = max(width, 40)
     if r.trend in ("single layer", "no signal"):
         trend = f"slopes on the way back: {r.trend}"
     else:
-        trend = (f"slopes on the way back: {r.trend.upper()} (layer 1's error signal is {r.travel:.2g}x "
-                 f"layer {len(r.layers)}'s; back: each layer's over the next one's)")
+        trend = (f"slopes on the way back: {r.trend} (layer 1's error signal is {r.travel:.2g}x "
+                 f"layer {len(r.layers)}'s; vs next: each layer's error signal over the next one's)")
     lines += textwrap.wrap(trend, wrap, subsequent_indent="  ")
     lines += textwrap.wrap(f"update/weight: one plain step at rate {r.rate:g}; {_exp(RATIO_LOW)} to "
                            f"{_exp(RATIO_HIGH)} (around {_exp(RATIO_TYPICAL)}) is common practice, no published "
