@@ -8,8 +8,10 @@ from __future__ import annotations
 import math
 from typing import Sequence
 
+import numpy as np
+
 from stepper.core.descent import Descent
-from stepper.core.metrics import Metrics
+from stepper.core.metrics import Metrics, predicted_labels, true_labels
 from stepper.core.ratetest import RangeResult
 from stepper.core.schedules import Schedule
 from stepper.core.weightdiff import WeightDiff
@@ -40,6 +42,21 @@ def metric_words(m: Metrics | None, short: bool = False) -> str:
             name, LABELS[name])
         parts.append(f"{label} {number(value, 3 if short else 4)}")
     return ", ".join(parts)
+
+
+def row_words(task: str, names: Sequence[str], output: np.ndarray, target: np.ndarray) -> tuple[str, str]:
+    """One row's prediction and target in words: ``marsh (0.812)`` and ``ridge`` for classes,
+    ``0.917+`` and ``no`` for yes/no outputs, the numbers for regression. ``names``: the outputs."""
+    if task == "classes":
+        said = int(predicted_labels(task, output[None, :])[0])
+        true = int(true_labels(task, target[None, :])[0])
+        return f"{names[said]} ({output[said]:.3f})", names[true]
+    if task == "binary":
+        yes = predicted_labels(task, output[None, :])[0]
+        truth = true_labels(task, target[None, :])[0]
+        pred = " ".join(f"{v:.3f}{'+' if y else '-'}" for v, y in zip(output, yes))
+        return pred, " ".join("yes" if t else "no" for t in truth)
+    return " ".join(f"{v:.4g}" for v in output), " ".join(f"{v:.4g}" for v in target)
 
 
 def confusion_lines(m: Metrics, class_names: Sequence[str]) -> list[str]:

@@ -100,5 +100,7 @@ def test_a_change_makes_the_result_stale() -> None:
     s = Session(load_setup(ROOT / "kiln-tiny" / "model.toml"), rate=0.2)
     s.range_test([0.1, 0.2], steps=2)
     assert not s.range_is_stale
+    s.set_rate(0.7)  # the test's rates are its own: a new rate changes nothing it found
+    assert not s.range_is_stale
     s.set_rule("momentum")  # no weight moved, yet the test would now go differently
     assert s.range_is_stale

@@ -106,3 +106,21 @@ def test_an_older_checkpoint_keeps_the_model_files_settings(write_model: WriteMo
     assert with_training.schedule == Schedule("cosine", steps=200, warmup=10)
     assert with_training.last_update is None
     np.testing.assert_array_equal(with_training.theta, s.theta)
+
+
+def test_tracked_metrics_are_kept_in_checkpoints(tmp_path: Path) -> None:
+    # The main figure recorded per step comes back with the history; accuracy by scikit-learn.
+    from sklearn.metrics import accuracy_score
+
+    setup = load_setup(Path(__file__).resolve().parents[1] / "scenarios" / "seed-sorter" / "model.toml")
+    s = Session(setup, rate=0.5)
+    s.step(2)
+    s.set_track_metrics(True)
+    s.step(3)
+    said = np.argmax(s.net.predict(s.theta, setup.data.X), axis=1)
+    assert s.history[-1].train_metric == pytest.approx(accuracy_score(np.argmax(setup.data.Y, axis=1), said))
+    assert s.history[2].train_metric is None and s.history[3].train_metric is not None
+    other = Session(setup)
+    other.load_checkpoint(s.save_checkpoint(tmp_path / "m.safetensors"))
+    assert [h.train_metric for h in other.history] == [h.train_metric for h in s.history]
+    assert [h.val_metric for h in other.history] == [h.val_metric for h in s.history]

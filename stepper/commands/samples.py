@@ -11,11 +11,11 @@ from typing import Any
 import numpy as np
 
 from stepper.commands.common import add_model_argument, load, positive_int
-from stepper.core.metrics import THRESHOLD, Metrics, metrics_document, predicted_labels, true_labels
+from stepper.core.metrics import THRESHOLD, Metrics, metrics_document
 from stepper.core.rows import worst_rows
 from stepper.session.measures import SPLITS
 from stepper.session import RowTable, Session
-from stepper.training_report import confusion_lines, finite_or_none, metric_words, number
+from stepper.training_report import confusion_lines, finite_or_none, metric_words, number, row_words
 
 ORDERS = ("loss", "line")
 
@@ -74,22 +74,6 @@ def handle(args: argparse.Namespace) -> int:
     return 0
 
 
-def _labels(session: Session, output: np.ndarray[Any, Any], target: np.ndarray[Any, Any]) -> tuple[str, str]:
-    """The prediction and target of one row in words."""
-    names = session.setup.data.target_names
-    task = session.task
-    if task == "classes":
-        said = int(predicted_labels(task, output[None, :])[0])
-        true = int(true_labels(task, target[None, :])[0])
-        return f"{names[said]} ({output[said]:.3f})", names[true]
-    if task == "binary":
-        yes = predicted_labels(task, output[None, :])[0]
-        truth = true_labels(task, target[None, :])[0]
-        pred = " ".join(f"{v:.3f}{'+' if y else '-'}" for v, y in zip(output, yes))
-        return pred, " ".join("yes" if t else "no" for t in truth)
-    return " ".join(f"{v:.4g}" for v in output), " ".join(f"{v:.4g}" for v in target)
-
-
 def report(session: Session, table: RowTable, chosen: np.ndarray[Any, Any],
            train: Metrics, validation: Metrics | None) -> str:
     data = session.setup.data
@@ -102,7 +86,7 @@ def report(session: Session, table: RowTable, chosen: np.ndarray[Any, Any],
         lines.append(f"{chosen.size} of {n_rows} rows" + (", largest loss first" if chosen.size < n_rows else ""))
         lines.append(f"{'set':<6}{'line':>6}{'sample':>7}{'loss':>13}  {'prediction':<24}target")
         for i in chosen:
-            pred, target = _labels(session, table.output[i], table.target[i])
+            pred, target = row_words(session.task, names, table.output[i], table.target[i])
             split = "val" if table.validation[i] else "train"
             lines.append(f"{split:<6}{int(table.line[i]):>6}{int(table.index[i]):>7}"
                          f"{number(float(table.loss[i]), 6):>13}  {pred:<24}{target}")

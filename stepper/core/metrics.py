@@ -83,6 +83,16 @@ class Metrics:
         return {name: float(getattr(self, name)) for name in names if getattr(self, name) is not None}
 
 
+#: The one figure that sums up each task (what the app plots beside the cost).
+MAIN_FIGURE = {"classes": "accuracy", "binary": "accuracy", "regression": "r2"}
+
+
+def main_figure(m: Metrics) -> float:
+    """The task's main figure of ``m``: accuracy, or R^2 for regression (NaN when undefined)."""
+    value = getattr(m, MAIN_FIGURE[m.task])
+    return float("nan") if value is None else float(value)
+
+
 def predicted_labels(task: str, output: Array, threshold: float = THRESHOLD) -> NDArray[np.int64]:
     """Per row, the predicted class (``classes``, ``(n,)``) or yes/no labels (``binary``, ``(n, m)``)."""
     if task == "classes":

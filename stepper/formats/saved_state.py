@@ -14,7 +14,9 @@ rarely, so they are stored as runs: ``history.step_runs`` ``(k, 2)`` holds
 ``[first entry, its step]`` of each run of steps counting up by one, and
 ``history.setting_runs`` ``(k, 3)`` holds ``[first entry, rate, rule code]``
 of each run of equal settings (rule codes index ``history_rules`` in the
-metadata).
+metadata). While the session recorded the task's main figure,
+``history.train_metric`` and ``history.val_metric`` hold it (NaN for the
+entries without one).
 """
 
 from __future__ import annotations
@@ -48,6 +50,8 @@ class CostHistory:
         val: validation cost, NaN where there is none.
         rates: the rate in force.
         rules: code of the rule in force (index into :data:`stepper.core.optimizers.RULES`), uint8.
+        train_metric, val_metric: the task's main figure per entry (NaN: none), or None when no
+            entry has one.
     """
 
     steps: NDArray[np.int64]
@@ -55,9 +59,16 @@ class CostHistory:
     val: Array
     rates: Array
     rules: NDArray[np.uint8]
+    train_metric: Array | None = None
+    val_metric: Array | None = None
 
     def __len__(self) -> int:
         return int(self.steps.size)
+
+    def metric_column(self, which: str) -> Array:
+        """``train_metric`` or ``val_metric`` (``which``: ``train`` or ``val``), NaN where there is none."""
+        column = self.train_metric if which == "train" else self.val_metric
+        return np.full(len(self), np.nan) if column is None else column
 
 
 def history_tensors(history: CostHistory) -> tuple[dict[str, NDArray[Any]], dict[str, Any]]:
@@ -66,6 +77,9 @@ def history_tensors(history: CostHistory) -> tuple[dict[str, NDArray[Any]], dict
     tensors: dict[str, NDArray[Any]] = {"history.train": history.train}
     if not np.all(np.isnan(history.val)):
         tensors["history.val"] = history.val
+    if not np.all(np.isnan(history.metric_column("train"))):
+        tensors["history.train_metric"] = history.metric_column("train")
+        tensors["history.val_metric"] = history.metric_column("val")
     idx = np.arange(n)
     new_step_run = np.ones(n, dtype=bool)
     new_step_run[1:] = history.steps[1:] != history.steps[:-1] + 1
@@ -253,8 +267,14 @@ def _history(path: Path, data: CheckpointData, error: Any) -> CostHistory:
     ours = np.array([RULES.index(name) for name in codes], dtype=np.uint8)[rule_codes.astype(np.int64)]
     lengths = np.diff(np.append(setting_starts, n))
     _costs(path, train, val)
-    # (train and val are the reader's own arrays already: no copy)
-    return CostHistory(step_values.astype(np.int64), train, val, np.repeat(rates, lengths), np.repeat(ours, lengths))
+    metrics = [tensor(f"history.{which}_metric", np.float64, (n,)) if f"history.{which}_metric" in tensors
+               else None for which in ("train", "val")]
+    for column in metrics:
+        if column is not None and np.any(np.isinf(column)):
+            raise CheckpointError(f"{path}: the cost history's figures hold an infinite value")
+    # (train, val and the figures are the reader's own arrays already: no copy)
+    return CostHistory(step_values.astype(np.int64), train, val, np.repeat(rates, lengths), np.repeat(ours, lengths),
+                       metrics[0], metrics[1])
 
 
 def _runs(path: Path, starts: NDArray[np.int64], n: int, what: str) -> NDArray[np.int64]:

@@ -120,6 +120,9 @@ class SessionCore:
         self.noise_rng = np.random.default_rng(seed + 1)
         self.check: CheckResult | None = None
         self.refresh_numeric_after_step = False
+        #: Whether each new history entry records the task's main figure (a preference: not undone,
+        #: not journaled; the app turns it on while its metric plot is shown).
+        self.track_metrics = False
         self.runaway = RunawayRule()
         self.dirty = False
         self.last_action: str | None = None
@@ -491,7 +494,15 @@ class SessionCore:
         self.last_action = name
 
     def _entry(self) -> HistoryEntry:
-        return HistoryEntry(self.step_count, self.train_cost(), self.val_cost(), self.rate, self.rule)
+        train_cost, val_cost = self.train_cost(), self.val_cost()
+        if not self.track_metrics:
+            return HistoryEntry(self.step_count, train_cost, val_cost, self.rate, self.rule)
+        train_metric, val_metric = self._main_figures()
+        return HistoryEntry(self.step_count, train_cost, val_cost, self.rate, self.rule, train_metric, val_metric)
+
+    def _main_figures(self) -> tuple[float | None, float | None]:
+        """The task's main figure on the training and validation rows (see :mod:`.measures`)."""
+        raise NotImplementedError
     def close(self) -> None:
         if self.journal is not None:
             self.journal.close()

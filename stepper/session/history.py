@@ -11,7 +11,7 @@ still hold.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Any, Iterable, Iterator, overload
 
 import numpy as np
@@ -25,13 +25,21 @@ _RULE_CODE = {name: code for code, name in enumerate(RULES)}
 
 @dataclass(frozen=True)
 class HistoryEntry:
-    """The cost after one step (entry 0: before any step)."""
+    """The cost after one step (entry 0: before any step).
+
+    ``train_metric`` and ``val_metric`` are the task's main figure (accuracy, or
+    R^2 for regression; :func:`stepper.core.metrics.main_figure`) while the
+    session tracks metrics (``SessionCore.track_metrics``), else None. They are
+    figures to show, not state: equality ignores them.
+    """
 
     step: int
     train_cost: float
     val_cost: float | None
     rate: float
     rule: str
+    train_metric: float | None = field(default=None, compare=False)
+    val_metric: float | None = field(default=None, compare=False)
 
 
 class History:
@@ -44,6 +52,8 @@ class History:
         self._val = np.zeros(16)
         self._rates = np.zeros(16)
         self._rules = np.zeros(16, dtype=np.uint8)
+        self._train_metric = np.full(16, np.nan)
+        self._val_metric = np.full(16, np.nan)
         self.generation = 0
         self.extend(list(entries))
 
@@ -54,8 +64,11 @@ class History:
 
     def _entry(self, i: int) -> HistoryEntry:
         val = float(self._val[i])
+        train_metric, val_metric = float(self._train_metric[i]), float(self._val_metric[i])
         return HistoryEntry(int(self._steps[i]), float(self._train[i]), None if val != val else val,
-                            float(self._rates[i]), RULES[int(self._rules[i])])
+                            float(self._rates[i]), RULES[int(self._rules[i])],
+                            None if train_metric != train_metric else train_metric,
+                            None if val_metric != val_metric else val_metric)
 
     @overload
     def __getitem__(self, index: int) -> HistoryEntry: ...
@@ -87,13 +100,14 @@ class History:
         """Views of entries ``start:`` as arrays (valid until the next change)."""
         n = self._n
         return CostHistory(self._steps[start:n], self._train[start:n], self._val[start:n],
-                           self._rates[start:n], self._rules[start:n])
+                           self._rates[start:n], self._rules[start:n], self._train_metric[start:n],
+                           self._val_metric[start:n])
 
     def segment(self, start: int) -> CostHistory:
         """Copies of entries ``start:`` (for the undo stack)."""
         view = self.columns(start)
         return CostHistory(view.steps.copy(), view.train.copy(), view.val.copy(), view.rates.copy(),
-                           view.rules.copy())
+                           view.rules.copy(), view.metric_column("train").copy(), view.metric_column("val").copy())
 
     # -- changing --------------------------------------------------------------------------
 
@@ -101,9 +115,9 @@ class History:
         if n <= self._steps.size:
             return
         size = max(n, 2 * self._steps.size)
-        for name in ("_steps", "_train", "_val", "_rates", "_rules"):
+        for name in ("_steps", "_train", "_val", "_rates", "_rules", "_train_metric", "_val_metric"):
             old = getattr(self, name)
-            new = np.zeros(size, dtype=old.dtype)
+            new = np.full(size, np.nan) if name.endswith("_metric") else np.zeros(size, dtype=old.dtype)
             new[: self._n] = old[: self._n]
             setattr(self, name, new)
 
@@ -115,6 +129,8 @@ class History:
         self._val[i] = np.nan if entry.val_cost is None else entry.val_cost
         self._rates[i] = entry.rate
         self._rules[i] = _RULE_CODE[entry.rule]
+        self._train_metric[i] = np.nan if entry.train_metric is None else entry.train_metric
+        self._val_metric[i] = np.nan if entry.val_metric is None else entry.val_metric
         self._n += 1
 
     def extend(self, entries: CostHistory | list[HistoryEntry]) -> None:
@@ -130,6 +146,8 @@ class History:
         self._val[self._n : end] = entries.val
         self._rates[self._n : end] = entries.rates
         self._rules[self._n : end] = entries.rules
+        self._train_metric[self._n : end] = entries.metric_column("train")
+        self._val_metric[self._n : end] = entries.metric_column("val")
         self._n = end
 
     def truncate(self, start: int) -> None:
@@ -148,7 +166,8 @@ class History:
 def nbytes(value: Any) -> int:
     """Bytes of a history segment kept on the undo stack."""
     if isinstance(value, CostHistory):
-        return sum(int(a.nbytes) for a in (value.steps, value.train, value.val, value.rates, value.rules))
+        return sum(int(a.nbytes) for a in (value.steps, value.train, value.val, value.rates, value.rules)) + sum(
+            int(a.nbytes) for a in (value.train_metric, value.val_metric) if a is not None)
     return 64 * len(value) if isinstance(value, list) else 64
 
 

@@ -13,7 +13,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from stepper.core.histograms import DEFAULT_BINS, LayerSpread, layer_spreads
-from stepper.core.metrics import THRESHOLD, Metrics, metrics, task_of
+from stepper.core.metrics import THRESHOLD, Metrics, main_figure, metrics, task_of
 from stepper.core.rows import RowLosses, row_losses
 from stepper.core.weightdiff import WeightDiff, compare_weights
 from stepper.formats.checkpoint import load_checkpoint
@@ -94,6 +94,15 @@ class Measures(SessionCore):
             np.concatenate([np.asarray(lines, dtype=np.int64) for _, _, lines in parts]),
         )
 
+    def set_track_metrics(self, on: bool) -> None:
+        """Record the task's main figure in every new history entry (costs a forward pass per step)."""
+        self.track_metrics = bool(on)
+
+    def _main_figures(self) -> tuple[float | None, float | None]:
+        found = self.metrics()
+        val = None if found.validation is None else main_figure(found.validation)
+        return main_figure(found.train), val
+
     def metrics(self, threshold: float = THRESHOLD) -> SetMetrics:
         """Task metrics on the training and validation rows."""
         def compute() -> SetMetrics:
@@ -110,9 +119,16 @@ class Measures(SessionCore):
         return layer_spreads(self.net, self.theta, self.analytic_slopes(), self.last_update, self.setup.data.X,
                              bins)
 
+    def checkpoint_weights(self, path: Path | str) -> NDArray[np.float64]:
+        """The weights of the checkpoint at ``path``, checked against the model; nothing is loaded."""
+        return load_checkpoint(Path(path), self.net.layout).theta
+
     def compare_with(self, path: Path | str, top: int = 10) -> WeightDiff:
         """The checkpoint at ``path`` (as ``a``) against the current weights (as ``b``)."""
-        other = load_checkpoint(Path(path), self.net.layout)
+        return self.compare_to(self.checkpoint_weights(path), top=top)
+
+    def compare_to(self, a: NDArray[np.float64], b: NDArray[np.float64] | None = None, top: int = 10) -> WeightDiff:
+        """Weights ``a`` against ``b`` (default: the current weights), both ``(n_params,)``."""
         data = self.setup.data
-        return compare_weights(self.net, other.theta, self.theta.copy(), data.X, data.Y, data.X_val, data.Y_val,
-                               top)
+        b = self.theta.copy() if b is None else b
+        return compare_weights(self.net, a, b, data.X, data.Y, data.X_val, data.Y_val, top)

@@ -21,7 +21,7 @@ class Rates(SessionCore):
     """The range test; its last result is kept in :attr:`range_result` (not part of the model's state)."""
 
     range_result: RangeResult | None = None
-    _range_version: int = -1
+    _range_key: tuple[object, ...] | None = None
 
     def default_range(self) -> tuple[float, float, int]:
         """Lowest and highest rate and how many, around the current rate."""
@@ -29,8 +29,16 @@ class Rates(SessionCore):
 
     @property
     def range_is_stale(self) -> bool:
-        """True when the state has changed since the last test (or there was none)."""
-        return self.range_result is None or self._range_version != self.changes
+        """True when what the test starts from has changed since the last test (or there was none).
+
+        The current rate is not part of it: every rate of the test is its own.
+        """
+        return self.range_result is None or self._range_key != self._range_state()
+
+    def _range_state(self) -> tuple[object, ...]:
+        """What a range test starts from, in brief (the weights' and rule memory's versions, not their values)."""
+        return (self.version, self.step_count, self.rule, self.rule_state.t, self.batch_size, self.descent,
+                int(np.count_nonzero(self.frozen)), self.l2)
 
     def iter_range_test(
         self, rates: Sequence[float] | None = None, steps: int = DEFAULT_STEPS
@@ -53,14 +61,14 @@ class Rates(SessionCore):
             raise UsageError("every rate of a range test must be a positive number")
         if not 1 <= steps <= MAX_STEPS:
             raise UsageError(f"a range test makes 1 to {MAX_STEPS} steps per rate, not {steps}")
-        version = self.changes
+        key = self._range_state()
         start = Start(self.theta.copy(), self.rule_state.copy(), self.frozen.copy(), self.step_count,
                       self.batch_size, self.batch_rng.bit_generator.state, self.descent, self.epoch_position)
         data = self.setup.data
         result = yield from iter_range_test(self.net, start, data.X, data.Y, data.X_val, data.Y_val, chosen, steps)
-        if version == self.changes:
+        if key == self._range_state():
             self.range_result = result
-            self._range_version = version
+            self._range_key = key
         return result
 
     def range_test(self, rates: Sequence[float] | None = None, steps: int = DEFAULT_STEPS) -> RangeResult:

@@ -37,7 +37,8 @@ class Training(SessionCore):
         """Clip the slopes to this global norm before each update; None turns clipping off."""
         if norm is not None:
             if not (isinstance(norm, (int, float)) and math.isfinite(norm) and norm > 0):
-                raise UsageError(f"clipping norm {norm!r} must be a positive number (or none)")
+                shown = f"{norm:g}" if isinstance(norm, (int, float)) else repr(norm)
+                raise UsageError(f"clipping norm {shown} must be a positive number (or none)")
             norm = float(norm)
         label = "no clipping" if norm is None else f"clip slopes to norm {norm:g}"
         self._setting(label, "clip_norm", norm, {"op": "set_clip_norm", "norm": norm})
