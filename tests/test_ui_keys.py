@@ -27,6 +27,7 @@ from stepper.ui.dialogs import AskScreen, ChoiceScreen, ConfirmScreen, HelpScree
 from stepper.ui.keys import KEYS
 from stepper.ui.panels import JobBar, StatusLine
 from stepper.ui.ratepanel import RatePanel
+from stepper.ui.rowsscreen import RowList, RowsScreen
 from stepper.ui.weights import WeightTable
 
 from pilot_keys import answer, press
@@ -603,9 +604,12 @@ def test_q_then_w_saves_first_and_then_quits(session: Session, tmp_path: Path, d
 def test_every_key_in_the_map_has_an_action() -> None:
     app_actions = {name[len("action_"):] for name in dir(StepperApp) if name.startswith("action_")}
     table_actions = {name[len("action_"):] for name in dir(WeightTable) if name.startswith("action_")}
+    rows_actions = {name[len("action_"):] for name in dir(RowList) if name.startswith("action_")}
+    screen_actions = {name[len("action_"):] for name in dir(RowsScreen) if name.startswith("action_")}
+    actions = {"app": app_actions, "table": table_actions, "rows": rows_actions, "rows-screen": screen_actions}
     for key in KEYS:
         action = key.action.split("(")[0]
-        assert action in (app_actions if key.scope == "app" else table_actions), key
+        assert action in actions[key.scope], key
 
 
 # -- screens ---------------------------------------------------------------------------------

@@ -12,6 +12,9 @@ redraws every widget from a fresh :class:`~stepper.ui.snapshot.Snapshot`.
 - :mod:`stepper.ui.slopes`: the numeric slopes;
 - :mod:`stepper.ui.edits`: changes to weights, undo and redo, and the table's view;
 - :mod:`stepper.ui.why`: the "why" panels;
+- :mod:`stepper.ui.settings`: the training settings (L2 term, decay, clipping, schedule);
+- :mod:`stepper.ui.outcome`: the samples screen, the metric plot, histograms, the comparison;
+- :mod:`stepper.ui.ranges`: the rate range test;
 - :mod:`stepper.ui.files`: checkpoints, help and quit;
 - :mod:`stepper.ui.jobs`: long work in thread workers;
 
@@ -34,28 +37,32 @@ from stepper.formats import user_code
 from stepper.errors import UsageError
 from stepper.session import Session
 from stepper.ui.base import DEFAULT_BUDGET, DEFAULT_NOISE, log
+from stepper.ui.comparepanel import ComparePanel
 from stepper.ui.costplot import CostPlot
 from stepper.ui.descent import DescentKeys
 from stepper.ui.edits import EditKeys, ViewKeys
 from stepper.ui.factorpanel import FactorPanel
 from stepper.ui.files import FileKeys
 from stepper.ui.healthpanel import HealthPanel
-from stepper.ui.jobs import Jobs
+from stepper.ui.histpanel import HistogramPanel
 from stepper.ui.keybar import KeyBar
 from stepper.ui.keys import bindings
+from stepper.ui.metricplot import MetricPlot
 from stepper.ui.panels import JobBar, StatusLine
+from stepper.ui.rangepanel import RangePanel
+from stepper.ui.ranges import RangeKeys
 from stepper.ui.ratepanel import RatePanel
+from stepper.ui.settings import SettingsKeys
 from stepper.ui.slicepanel import SlicePanel
 from stepper.ui.slopes import SlopeKeys
 from stepper.ui.weights import WeightTable
-from stepper.ui.why import WhyKeys
 
 
 #: Columns from which the plot column sits beside the table instead of below it.
 WIDE = 140
 
 
-class StepperApp(DescentKeys, SlopeKeys, EditKeys, ViewKeys, WhyKeys, FileKeys, Jobs):
+class StepperApp(DescentKeys, SlopeKeys, EditKeys, ViewKeys, SettingsKeys, RangeKeys, FileKeys):
     """Debug the slopes and steps of one model with the keyboard.
 
     Every key is listed in :mod:`stepper.ui.keys` (and on the help screen, ``?``).
@@ -73,10 +80,14 @@ class StepperApp(DescentKeys, SlopeKeys, EditKeys, ViewKeys, WhyKeys, FileKeys, 
             yield WeightTable(id="weights")
             with Container(id="side"):
                 yield CostPlot(id="plot")
+                yield MetricPlot(id="metrics")
                 yield RatePanel(id="rates")
                 yield SlicePanel(id="slice", classes="why")
                 yield FactorPanel(id="factors", classes="why")
                 yield HealthPanel(id="health", classes="why")
+                yield HistogramPanel(id="histograms", classes="why")
+                yield RangePanel(id="range", classes="why")
+                yield ComparePanel(id="compare", classes="why")
         yield JobBar(id="job")
         yield KeyBar(id="keys")
 

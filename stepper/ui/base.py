@@ -164,6 +164,7 @@ class AppBase(App[None]):
         self.snapshot = snap
         self.table.show(snap)
         self.plot.show(snap)
+        self.show_metric_plot(snap)
         self._show_status()
         if snap.problem != self._snapshot_problem:
             # Said when it appears (unless the operation's own message just said it), not on every redraw.
@@ -185,7 +186,7 @@ class AppBase(App[None]):
             info = StatusInfo(self.session.refresh_numeric_after_step, self.job, self.note, self.numeric_reason,
                               why, self.session.journal_problem)
             self.query_one(StatusLine).show(self.snapshot, info)
-        context = {self.why} if self.why in ("slice", "factors") else set()
+        context = {self.why} if self.why in ("slice", "factors", "histograms", "range") else set()
         if self.job is not None:
             context.add("job")
         self.query_one(KeyBar).set_context(frozenset(c for c in context if c is not None))
@@ -210,6 +211,18 @@ class AppBase(App[None]):
     def _input_checks_done(self, checks: InputChecks) -> None:
         """Keep the custom layers' input-slope checks (the health panel and the status line's hint read them)."""
         self._input_checks = checks
+
+    def show_metric_plot(self, snap: Snapshot) -> None:
+        """Redraw the metric plot beside the cost when it is shown (:mod:`stepper.ui.outcome`)."""
+        raise NotImplementedError
+
+    def show_side_view(self, snap: Snapshot, index: int | None) -> None:
+        """Draw the shown training view (histograms, range test, comparison; :mod:`stepper.ui.outcome`)."""
+        raise NotImplementedError
+
+    def side_view_note(self, note: str) -> None:
+        """The shown training view says ``note`` instead of figures."""
+        raise NotImplementedError
 
     def check_action(self, action: str, parameters: tuple[object, ...]) -> bool | None:
         """The main screen's keys do nothing while a dialog is open (Textual would still run them)."""

@@ -27,8 +27,9 @@ class Key:
             shows as many as fit the width, in this order, so a narrow screen keeps the first.
         display: how the key is written on screen.
         scope: ``app`` or ``table``.
-        when: the key bar shows it only then: ``job`` (a job runs), ``slice`` or ``factors``
-            (that panel is shown); it then comes first. Empty: always (if ``footer``).
+        when: the key bar shows it only then: ``job`` (a job runs), ``slice``, ``factors``,
+            ``histograms`` or ``range`` (that panel is shown); it then comes first. Empty: always
+            (if ``footer``).
     """
 
     keys: str
@@ -76,6 +77,12 @@ KEYS: tuple[Key, ...] = (
         "candidate rate", "descent", footer=9),
     Key("V", "adopt_best_rate", "best rate", "adopt the rate that the preview finds best", "descent",
         footer=10),
+    Key("b", "range_test", "range test", "rate range test: k steps at each of several rates from here, nothing "
+        "kept; the cost each reaches on a log axis (a job; x cancels)", "descent"),
+    Key("B", "adopt_range_rate", "adopt", "adopt the rate with the lowest cost in the range test", "descent",
+        footer=1, when="range"),
+    Key("k", "training_settings", "settings", "training settings: L2 term, weight decay, clipping by slope "
+        "norm, rate schedule", "descent"),
     # -- slopes ----------------------------------------------------------------------------
     Key("number_sign", "compute_check", "numeric", "recompute the numeric slopes now (a job; x cancels; a model "
         "over 20,000 weights is checked on a sample of 5,000 first)", "slopes", display="#", footer=4),
@@ -110,6 +117,29 @@ KEYS: tuple[Key, ...] = (
     Key("slash", "filter_names", "filter", "show only names matching a pattern (* and ? wildcards, "
         "empty shows all)", "table", display="/"),
     Key("j", "jump", "jump", "jump to a weight by name, e.g. L2.W[0,1]", "table"),
+    # -- training: rows, metrics, histograms -----------------------------------------------
+    Key("d", "show_rows", "samples", "the data rows (samples) with their loss, prediction and target, worst "
+        "first, and the metrics; enter on a training row shows its slope factors", "training"),
+    Key("percent_sign", "toggle_metric_plot", "metric plot", "plot the accuracy (or R2) per step beside the "
+        "cost, from now on", "training", display="%"),
+    Key("H", "toggle_histograms", "histograms", "show or hide histograms of the selected weight's layer: "
+        "weights, slopes, last updates, activations", "training"),
+    Key("semicolon", "next_histogram", "next hist", "histograms: count the next of weights, slopes, last "
+        "updates, activations", "training", display=";", footer=1, when="histograms"),
+    # -- the samples screen (d) -------------------------------------------------------------
+    Key("up", "cursor(-1)", "up", "the row above", "samples", display="up", scope="rows"),
+    Key("down", "cursor(1)", "down", "the row below", "samples", display="down", scope="rows"),
+    Key("pageup", "page(-1)", "page up", "one screen up", "samples", display="pgup", scope="rows"),
+    Key("pagedown", "page(1)", "page down", "one screen down", "samples", display="pgdn", scope="rows"),
+    Key("home", "first", "first", "first row", "samples", scope="rows"),
+    Key("end", "last", "last", "last row", "samples", scope="rows"),
+    Key("o", "next_order", "order", "order by loss, file line or largest error", "samples", scope="rows-screen"),
+    Key("O", "flip_order", "flip", "reverse the order", "samples", scope="rows-screen"),
+    Key("tab", "next_split", "rows", "list training rows, validation rows, or both", "samples",
+        scope="rows-screen"),
+    Key("enter", "choose", "factors", "close and show the selected training row's slope factors", "samples",
+        scope="rows-screen"),
+    Key("escape,d", "close", "close", "close the samples screen", "samples", display="esc", scope="rows-screen"),
     # -- plot and files --------------------------------------------------------------------
     Key("y", "toggle_log", "log cost", "cost plot: log or linear y axis", "plot"),
     Key("w", "save", "save", "save a checkpoint, or export the weights (asks for the path)", "files",
@@ -117,6 +147,8 @@ KEYS: tuple[Key, ...] = (
     Key("l", "load", "load", "load a checkpoint (asks for the path)", "files"),
     Key("question_mark,f1", "help", "help", "this list of keys", "app", footer=-2, display="?"),
     Key("q", "quit", "quit", "quit (asks first when there are unsaved changes)", "app", footer=-1),
+    Key("D", "compare_checkpoint", "diff", "compare the current weights with a checkpoint (asks for the "
+        "path), as stepper diff does: costs, each layer's change, the weights that moved most", "files"),
     # -- why ---------------------------------------------------------------------------------
     Key("t", "toggle_slice", "slice", "show or hide the cost along the selected weight: its tangent, "
         "its curvature, and where one step at the current rate lands", "why", footer=13),
@@ -139,7 +171,7 @@ KEYS: tuple[Key, ...] = (
 )
 
 #: Help-screen headings in order.
-GROUPS = ("descent", "slopes", "why", "weights", "table", "plot", "files", "app")
+GROUPS = ("descent", "slopes", "why", "training", "weights", "table", "samples", "plot", "files", "app")
 
 
 def bindings(scope: str) -> list[Binding]:

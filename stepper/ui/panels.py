@@ -12,6 +12,8 @@ from textual.app import ComposeResult
 from textual.containers import Horizontal
 from textual.widgets import Label, ProgressBar, Static
 
+from stepper.core.metrics import main_figure
+from stepper.training_report import number
 from stepper.ui.snapshot import Snapshot
 
 F = TypeVar("F")
@@ -96,7 +98,14 @@ def status_fields(snap: Snapshot, info: StatusInfo) -> list[str]:
     fields += [f"step {snap.step_count}", f"train {cost_text(snap.train_cost)}"]
     if snap.val_cost is not None:
         fields.append(f"val {cost_text(snap.val_cost)}")
-    fields += [f"rate {snap.rate:.4g}", snap.rule, f"{snap.slope_source} slopes"]
+    figure = figure_text(snap)
+    if figure:
+        fields.append(figure)
+    rate = f"rate {snap.rate:.4g}"
+    if snap.schedule.kind != "constant" and snap.rate:
+        rate += f" x{snap.scheduled_rate / snap.rate:.2g}"
+    fields += [rate, snap.rule, f"{snap.slope_source} slopes"]
+    fields += training_flags(snap)
     if snap.batch_size is not None:
         fields.append(f"batch {snap.batch_size}")
     fields.append(check_field(snap, info))
@@ -118,6 +127,32 @@ def message_text(snap: Snapshot, info: StatusInfo) -> str:
     if info.note is not None:
         return f"{'problem' if info.note.error else 'last'}: {info.note.text}"
     return f"last: {snap.last_action}" if snap.last_action else "last: nothing yet"
+
+
+def figure_text(snap: Snapshot) -> str:
+    """``acc 83%/80%`` (train/validation) or ``R2 0.91/0.88``: the task's main figure, or ""."""
+    if snap.metrics is None:
+        return ""
+    train, val = snap.metrics.train, snap.metrics.validation
+    figures = [main_figure(train)] + ([] if val is None else [main_figure(val)])
+    if snap.task == "regression":
+        return "R2 " + "/".join(number(f, 2) for f in figures)
+    return "acc " + "/".join("-" if f != f else f"{100 * f:.0f}%" for f in figures)
+
+
+def training_flags(snap: Snapshot) -> list[str]:
+    """The training settings that are on: ``L2 0.001 (4.2% of cost)``, ``decay 0.01``, ``clip 1``, the schedule."""
+    parts = []
+    if snap.l2:
+        share = snap.penalty / snap.train_cost if snap.train_cost else math.nan
+        parts.append(f"L2 {snap.l2:g} ({100 * share:.2g}% of cost)" if math.isfinite(share) else f"L2 {snap.l2:g}")
+    if snap.weight_decay:
+        parts.append(f"decay {snap.weight_decay:g}")
+    if snap.clip_norm is not None:
+        parts.append(f"clip {snap.clip_norm:g}")
+    if snap.schedule.kind != "constant":
+        parts.append(snap.schedule.text())
+    return parts
 
 
 def pack(fields: list[str], width: int, sep: str = "  ") -> list[str]:

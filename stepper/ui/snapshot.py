@@ -17,7 +17,7 @@ names and layer numbers are the layout's own (they never change).
 from __future__ import annotations
 
 import os
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from functools import lru_cache
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, Callable, Sequence
@@ -27,13 +27,14 @@ from numpy.typing import NDArray
 
 from stepper.core.compare import VERDICTS
 from stepper.core.names import WeightNames
+from stepper.core.schedules import CONSTANT, Schedule
 from stepper.errors import StepperError
 from stepper.formats.custom_layer import CustomLayer
 from stepper.scenarios import scenarios_root
 
 if TYPE_CHECKING:
     from stepper.core.gradcheck import CheckResult
-    from stepper.session import History, Session
+    from stepper.session import History, Session, SetMetrics
 
 Array = NDArray[np.float64]
 
@@ -77,6 +78,13 @@ class Snapshot:
         version: the session's parameter version (changes whenever a weight does).
         problem: why the slopes or costs could not be computed (a custom layer raised, say);
             the missing numbers are NaN. None when all is well.
+        task: ``classes``, ``binary`` or ``regression`` (:func:`stepper.core.metrics.task_of`).
+        metrics: the task's figures on the training and validation rows now (None when they
+            could not be computed).
+        train_metric, val_metric: the task's main figure per history entry, NaN where not tracked.
+        l2, penalty: the L2 strength and the L2 term's part of the training cost.
+        weight_decay, clip_norm, schedule, scheduled_rate: the other training settings, and the
+            rate the next step will use.
     """
 
     name: str
@@ -112,6 +120,16 @@ class Snapshot:
     undo_levels: int
     version: int
     problem: str | None
+    task: str = "regression"
+    metrics: SetMetrics | None = None
+    train_metric: Array = field(default_factory=lambda: np.zeros(0))
+    val_metric: Array = field(default_factory=lambda: np.zeros(0))
+    l2: float = 0.0
+    penalty: float = 0.0
+    weight_decay: float = 0.0
+    clip_norm: float | None = None
+    schedule: Schedule = CONSTANT
+    scheduled_rate: float = 0.0
 
     @property
     def n_params(self) -> int:
@@ -141,6 +159,8 @@ class HistoryArrays:
         self._steps = np.zeros(0, dtype=np.int64)
         self._train = np.zeros(0)
         self._val = np.zeros(0)
+        self._train_metric = np.zeros(0)
+        self._val_metric = np.zeros(0)
 
     def arrays(self, history: History) -> tuple[NDArray[np.int64], Array, Array]:
         """``(steps, train, val)`` for ``history``; ``val`` is NaN where there is none."""
@@ -149,13 +169,21 @@ class HistoryArrays:
         if key != self._generation or n > len(history):
             n = 0
             self._steps, self._train, self._val = np.zeros(0, dtype=np.int64), np.zeros(0), np.zeros(0)
+            self._train_metric, self._val_metric = np.zeros(0), np.zeros(0)
         if len(history) > n:
             new = history.columns(n)
             self._steps = np.concatenate([self._steps, new.steps])
             self._train = np.concatenate([self._train, new.train])
             self._val = np.concatenate([self._val, new.val])
+            self._train_metric = np.concatenate([self._train_metric, new.metric_column("train")])
+            self._val_metric = np.concatenate([self._val_metric, new.metric_column("val")])
         self._generation = key
         return self._steps, self._train, self._val
+
+    def metric_arrays(self) -> tuple[Array, Array]:
+        """The main figure per entry, ``(train, val)``, as of the last :meth:`arrays` call (NaN: none)."""
+        return self._train_metric, self._val_metric
+
 
 
 def take(session: Session, history: HistoryArrays | None = None) -> Snapshot:
@@ -169,13 +197,17 @@ def take(session: Session, history: HistoryArrays | None = None) -> Snapshot:
     n = net.n_params
     check = session.check
     numeric, rel, codes, counts, n_checked = _check_arrays(check, n)
-    steps, train, val = (history or HistoryArrays()).arrays(session.history)
+    arrays = history or HistoryArrays()
+    steps, train, val = arrays.arrays(session.history)
+    train_metric, val_metric = arrays.metric_arrays()
     # A custom layer's code may raise at these weights: the frame still draws, with NaN
     # where a number is missing and the message in ``problem`` (never a crash of the app).
     problems: list[str] = []
     analytic = _or_nan(session.analytic_slopes, np.full(n, np.nan), problems)
     train_cost = _or_nan(session.train_cost, np.nan, problems)
     val_cost = _or_nan(session.val_cost, np.nan, problems)
+    metrics = _or_nan(session.metrics, None, problems)
+    penalty = _or_nan(session.penalty, np.nan, problems)
     return Snapshot(
         name=session.setup.name,
         source=_shown_path(str(session.setup.path), os.getcwd()),
@@ -210,6 +242,16 @@ def take(session: Session, history: HistoryArrays | None = None) -> Snapshot:
         undo_levels=int(session.undo_levels),
         version=int(session.version),
         problem=problems[0] if problems else None,
+        task=session.task,
+        metrics=metrics,
+        train_metric=train_metric,
+        val_metric=val_metric,
+        l2=float(session.l2),
+        penalty=float(penalty),
+        weight_decay=float(session.weight_decay),
+        clip_norm=session.clip_norm,
+        schedule=session.schedule,
+        scheduled_rate=float(session.scheduled_rate()),
     )
 
 

@@ -16,8 +16,11 @@ from stepper.ui.slicepanel import SlicePanel
 from stepper.ui.snapshot import Snapshot
 from stepper.ui.weights import WeightTable
 
-#: The "why" panels by name (the slice, the slope factors, the layer health) and their keys.
-WHY_KEY = {"slice": "t", "factors": "i", "health": "h"}
+#: The panels shown in place of the cost plot, by name, and their keys: the "why" panels (the
+#: slice, the slope factors, the layer health) and the training views of stepper.ui.outcome.
+WHY_KEY = {"slice": "t", "factors": "i", "health": "h", "histograms": "H", "range": "V", "compare": "C"}
+#: The panels this module draws; the others are drawn by :meth:`AppBase.show_side_view`.
+OWN = ("slice", "factors", "health")
 
 
 class WhyKeys(AppBase):
@@ -51,7 +54,7 @@ class WhyKeys(AppBase):
 
     @on(WeightTable.Selected)
     def _selected(self, event: WeightTable.Selected) -> None:
-        if self.why in ("slice", "factors") and event.index != self._shown_index:
+        if self.why in ("slice", "factors", "histograms") and event.index != self._shown_index:
             self._show_why()
 
     # -- the slice's span ------------------------------------------------------------------
@@ -150,6 +153,9 @@ class WhyKeys(AppBase):
                                         "code runs on one thread at a time)")
             return
         self._shown_index = index
+        if self.why not in OWN:
+            self.show_side_view(snap, index)
+            return
         try:
             if self.why == "slice":
                 self._show_slice(snap, index)
@@ -163,6 +169,9 @@ class WhyKeys(AppBase):
 
     def _why_note(self, snap: Snapshot, index: int | None, note: str) -> None:
         """The shown "why" panel says ``note`` instead of figures."""
+        if self.why not in OWN:
+            self.side_view_note(note)
+            return
         name = "" if index is None else f" {snap.names[index]}"
         panel: SlicePanel | FactorPanel | HealthPanel
         if self.why == "slice":
