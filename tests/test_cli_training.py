@@ -226,3 +226,11 @@ def test_run_plot_writes_histograms_and_never_over_an_input(tmp_path: Path,
     assert "is also an input" in bad_input(capsys, "run", str(BAKERY), "--resume", str(ck), "--steps", "1",
                                            "--plot", str(ck))
     assert ck.read_bytes() == before
+
+
+def test_open_takes_the_training_options() -> None:
+    parser = cli.build_parser()
+    args = parser.parse_args(cli.route(parser, ["seed-sorter", "--l2", "0.01", "--clip-norm", "off",
+                                                "--schedule", "step:every=5,factor=0.5"]))
+    assert (args.command, args.l2, args.clip_norm, args.weight_decay) == ("open", 0.01, "off", None)
+    assert args.schedule.text() == "step:every=5,factor=0.5"

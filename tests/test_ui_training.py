@@ -1,5 +1,5 @@
 """The training views of the app at 80x24: samples (d), metric plot (%), histograms (H ;),
-range test (V B), comparison with a checkpoint (C) and the training settings (k).
+range test (V B), comparison with a checkpoint (D) and the training settings (k).
 
 Each test drives the real app headless and checks what the screen shows
 against an outside reference where there is one: scikit-learn's
@@ -32,6 +32,7 @@ from stepper.ui.metricplot import MetricPlot
 from stepper.ui.rangepanel import RangePanel
 from stepper.ui.rowsscreen import RowList, RowsScreen
 from stepper.ui.panels import StatusLine
+from test_ui_keys import answer, errors, press
 
 SCENARIOS = Path(__file__).resolve().parents[1] / "scenarios"
 SIZE = (80, 24)
@@ -40,24 +41,6 @@ SIZE = (80, 24)
 @pytest.fixture
 def sorter() -> Session:
     return Session(load_setup(SCENARIOS / "seed-sorter" / "model.toml"), rate=0.5)
-
-
-async def press(app: StepperApp, pilot: Pilot[Any], *keys: str) -> None:
-    for key in keys:
-        await pilot.press(key)
-        if app.workers:
-            await app.workers.wait_for_complete()
-        await pilot.pause()
-
-
-async def answer(app: StepperApp, pilot: Pilot[Any], text: str) -> None:
-    assert isinstance(app.screen, AskScreen), app.screen
-    app.screen.query_one("#answer").value = text  # type: ignore[attr-defined]
-    await press(app, pilot, "enter")
-
-
-def errors(said: list[tuple[str, str]]) -> list[str]:
-    return [message for message, severity in said if severity == "error"]
 
 
 def accuracies(session: Session) -> tuple[float, float]:
@@ -241,7 +224,7 @@ def test_compare_with_a_checkpoint(sorter: Session, drive, tmp_path: Path) -> No
     async def check(app: StepperApp, pilot: Pilot[Any], said: list[tuple[str, str]]) -> None:
         await press(app, pilot, "n")
         await answer(app, pilot, "5")
-        await press(app, pilot, "C")
+        await press(app, pilot, "D")
         await answer(app, pilot, str(saved))
         text = str(app.query_one(ComparePanel).content)
         change = sorter.theta - a
@@ -249,7 +232,7 @@ def test_compare_with_a_checkpoint(sorter: Session, drive, tmp_path: Path) -> No
         assert f"{sorter.history[0].train_cost:.8g}" in text and f"{sorter.train_cost():.8g}" in text
         await press(app, pilot, "s")  # the panel follows the weights
         assert f"{sorter.train_cost():.8g}" in str(app.query_one(ComparePanel).content)
-        await press(app, pilot, "C")
+        await press(app, pilot, "D")
         await answer(app, pilot, str(tmp_path / "missing.safetensors"))
         assert any("no such file" in m for m in errors(said))
 

@@ -20,6 +20,7 @@ from stepper.commands.common import (
     runaway_rule,
     sample_limit,
 )
+from stepper.commands.session_options import add_training_options, apply_training_options
 from stepper.errors import UsageError
 from stepper.formats.model_file import Setup
 from stepper.formats.outputs import check_output
@@ -46,6 +47,7 @@ def add_parser(subs: Any) -> None:
     add_model_argument(p)
     add_resume_option(p, help="start from a checkpoint (its weights, settings and cost history)")
     add_step_options(p, "to start with")
+    add_training_options(p)
     add_samples_option(p, help="train on the first N training samples only (not with --journal)")
     p.add_argument("--journal", type=Path, default=None, metavar="PATH",
                    help="append every operation to this journal file, for stepper replay (default: "
@@ -122,6 +124,7 @@ def handle(args: argparse.Namespace) -> int:
         if args.resume is not None:
             session.load_checkpoint(args.resume)
             apply_step_options(session, args)
+        apply_training_options(session, args)  # undoable changes, journaled: replay makes them too
         session.set_runaway(runaway_rule(args))
         session.set_refresh_after_step(bool(args.check_every_step))
         return run_app(session, log_file, noise=args.noise, numeric_budget=args.numeric_budget / 1000.0)

@@ -46,7 +46,7 @@ class ComparePanel(FiguresPanel[CompareFigures]):
     """The comparison with a checkpoint; the app feeds it after every change of the weights."""
 
     def figures_title(self, figures: CompareFigures) -> str:
-        return f"now (b) against {figures.path.name} (a) | C: another checkpoint"
+        return f"now (b) against {figures.path.name} (a) | D: another checkpoint"
 
     def figures_lines(self, figures: CompareFigures, width: int) -> list[str]:
         return compare_lines(figures, self.content_size.height)

@@ -26,7 +26,7 @@ from stepper.ui.why import WhyKeys
 
 
 class OutcomeKeys(WhyKeys):
-    """The samples screen (d), the metric plot (%), histograms (H, ;), the comparison (C)."""
+    """The samples screen (d), the metric plot (%), histograms (H, ;), the comparison (D)."""
 
     #: What the histogram panel counts (one of QUANTITIES); a view setting.
     quantity = QUANTITIES[0]
@@ -131,7 +131,7 @@ class OutcomeKeys(WhyKeys):
     def _show_compare(self, snap: Snapshot) -> None:
         panel = self.query_one(ComparePanel)
         if self.compare_path is None or self._compare_theta is None:
-            panel.show_note("compare with a checkpoint", "C asks for the checkpoint to compare with")
+            panel.show_note("compare with a checkpoint", "D asks for the checkpoint to compare with")
             return
         if self._compare_shown == (snap.version, self.compare_path):
             return

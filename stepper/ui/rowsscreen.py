@@ -17,18 +17,17 @@ from numpy.typing import NDArray
 from rich.segment import Segment
 from rich.style import Style
 from rich.text import Text
-from textual import events
 from textual.app import ComposeResult
 from textual.binding import BindingType
 from textual.containers import Vertical
 from textual.geometry import Size
 from textual.screen import ModalScreen
-from textual.scroll_view import ScrollView
 from textual.strip import Strip
 from textual.widgets import Label, Static
 
 from stepper.session import RowTable, SetMetrics
 from stepper.training_report import confusion_lines, metric_words, number, row_words
+from stepper.ui.cursorview import CursorView
 from stepper.ui.keys import bindings
 
 #: Orders of the list: key, words for the title.
@@ -58,7 +57,7 @@ def order_rows(table: RowTable, key: str, reverse: bool, split: str) -> NDArray[
     return out[::-1].copy() if reverse else out
 
 
-class RowList(ScrollView, can_focus=True):
+class RowList(CursorView, can_focus=True):
     """The rows, one per line, with a cursor; the screen sets what is listed."""
 
     BINDINGS: ClassVar[list[BindingType]] = bindings("rows")  # type: ignore[assignment]
@@ -95,8 +94,8 @@ class RowList(ScrollView, can_focus=True):
         return int(self.rows[self.cursor]) if self.rows.size else None
 
     @property
-    def page_rows(self) -> int:
-        return max(1, self.scrollable_content_region.height - 1)
+    def row_count(self) -> int:
+        return int(self.rows.size)
 
     def move_to(self, row: int) -> None:
         self.cursor = min(max(row, 0), max(int(self.rows.size) - 1, 0))
@@ -106,22 +105,6 @@ class RowList(ScrollView, can_focus=True):
         elif self.cursor >= top + self.page_rows:
             self.scroll_to(y=self.cursor - self.page_rows + 1, animate=False, immediate=True)
         self.refresh()
-
-    def action_cursor(self, delta: int) -> None:
-        self.move_to(self.cursor + delta)
-
-    def action_page(self, delta: int) -> None:
-        self.move_to(self.cursor + delta * self.page_rows)
-
-    def action_first(self) -> None:
-        self.move_to(0)
-
-    def action_last(self) -> None:
-        self.move_to(int(self.rows.size) - 1)
-
-    def on_click(self, event: events.Click) -> None:
-        if event.y >= 1:
-            self.move_to(round(self.scroll_y) + event.y - 1)
 
     def row_text(self, position: int) -> str:
         """The text of row ``position`` of the table (without the cursor mark)."""

@@ -22,13 +22,12 @@ import numpy as np
 from numpy.typing import NDArray
 from rich.segment import Segment
 from rich.style import Style
-from textual import events
 from textual.binding import BindingType
 from textual.geometry import Size
 from textual.message import Message
-from textual.scroll_view import ScrollView
 from textual.strip import Strip
 
+from stepper.ui.cursorview import CursorView
 from stepper.ui.keys import bindings
 from stepper.ui.snapshot import STALE_TEXT, VERDICT_CODE, VERDICT_TEXT, Snapshot
 
@@ -120,7 +119,7 @@ def sort_order(snap: Snapshot, key: str, descending: bool, rows: IntArray) -> In
     return rows[order]
 
 
-class WeightTable(ScrollView, can_focus=True):
+class WeightTable(CursorView, can_focus=True):
     """Every weight of the network, one per row, with a cursor.
 
     | Key | Does |
@@ -379,8 +378,8 @@ class WeightTable(ScrollView, can_focus=True):
     # -- cursor ----------------------------------------------------------------------------
 
     @property
-    def page_rows(self) -> int:
-        return max(1, self.scrollable_content_region.height - 1)
+    def row_count(self) -> int:
+        return int(self.rows.size)
 
     def move_to(self, row: int, force: bool = False) -> None:
         """Put the cursor on ``row`` (a position in the shown order) and keep it in view."""
@@ -399,22 +398,6 @@ class WeightTable(ScrollView, can_focus=True):
             if self.sources is not None:
                 self.border_title = self.describe()
             self.post_message(self.Selected(self, self._selected))
-
-    def action_cursor(self, delta: int) -> None:
-        self.move_to(self.cursor + delta)
-
-    def action_page(self, delta: int) -> None:
-        self.move_to(self.cursor + delta * self.page_rows)
-
-    def action_first(self) -> None:
-        self.move_to(0)
-
-    def action_last(self) -> None:
-        self.move_to(int(self.rows.size) - 1)
-
-    def on_click(self, event: events.Click) -> None:
-        if event.y >= 1:
-            self.move_to(round(self.scroll_y) + event.y - 1)
 
     # -- drawing ---------------------------------------------------------------------------
 
