@@ -67,7 +67,7 @@ def test_status_shows_accuracy_as_sklearn_counts_it(sorter: Session, drive) -> N
         await press(app, pilot, "s", "s")
         train, val = accuracies(sorter)
         line = str(app.query_one(StatusLine).content).splitlines()[1]
-        assert line.startswith(f"acc {train:.3g}/{val:.3g} | "), line
+        assert line.startswith(f"acc {100 * train:.0f}%/{100 * val:.0f}% | "), line
 
     drive(sorter, check, SIZE)
 
