@@ -1,5 +1,5 @@
 """The training views of the app at 80x24: samples (d), metric plot (%), histograms (H ;),
-range test (V B), comparison with a checkpoint (D) and the training settings (k).
+range test (E B), comparison with a checkpoint (D) and the training settings (k).
 
 Each test drives the real app headless and checks what the screen shows
 against an outside reference where there is one: scikit-learn's
@@ -32,7 +32,8 @@ from stepper.ui.metricplot import MetricPlot
 from stepper.ui.rangepanel import RangePanel
 from stepper.ui.rowsscreen import RowList, RowsScreen
 from stepper.ui.panels import StatusLine
-from test_ui_keys import answer, errors, press
+from pilot_keys import answer, press
+from test_ui_keys import errors
 
 SCENARIOS = Path(__file__).resolve().parents[1] / "scenarios"
 SIZE = (80, 24)
@@ -66,8 +67,8 @@ def test_status_shows_accuracy_as_sklearn_counts_it(sorter: Session, drive) -> N
     async def check(app: StepperApp, pilot: Pilot[Any], said: list[tuple[str, str]]) -> None:
         await press(app, pilot, "s", "s")
         train, val = accuracies(sorter)
-        line = str(app.query_one(StatusLine).content).splitlines()[1]
-        assert line.startswith(f"acc {100 * train:.0f}%/{100 * val:.0f}% | "), line
+        text = " ".join(str(app.query_one(StatusLine).content).split())
+        assert f" acc {100 * train:.0f}%/{100 * val:.0f}% rate 0.5 " in text, text
 
     drive(sorter, check, SIZE)
 
@@ -118,7 +119,7 @@ def test_metric_plot_records_accuracy_from_then_on(sorter: Session, drive) -> No
         await press(app, pilot, "percent_sign")
         plot = app.query_one(MetricPlot)
         assert plot.display and sorter.track_metrics
-        await press(app, pilot, "n")
+        await press(app, pilot, "S")
         await answer(app, pilot, "4")
         assert sorter.history[1].train_metric is None
         last = sorter.history[-1]
@@ -167,7 +168,7 @@ def test_histograms_count_the_selected_layer(sorter: Session, drive) -> None:
 def test_range_test_runs_as_a_job_changes_nothing_and_b_adopts(sorter: Session, drive) -> None:
     async def check(app: StepperApp, pilot: Pilot[Any], said: list[tuple[str, str]]) -> None:
         sorter.set_batch_size(32)
-        await press(app, pilot, "s", "V")
+        await press(app, pilot, "s", "E")
         before = state(sorter)
         assert isinstance(app.screen, AskScreen)
         await answer(app, pilot, "0.01 3 4 6")
@@ -189,7 +190,7 @@ def test_range_test_runs_as_a_job_changes_nothing_and_b_adopts(sorter: Session, 
 def test_range_test_is_cancelled_with_x(sorter: Session, drive) -> None:
     async def check(app: StepperApp, pilot: Pilot[Any], said: list[tuple[str, str]]) -> None:
         before = state(sorter)
-        await pilot.press("V")
+        await pilot.press("E")
         await pilot.pause()
         app.screen.query_one("#answer").value = "0.001 1 8 20000"  # type: ignore[attr-defined]
         await pilot.press("enter")
@@ -205,11 +206,11 @@ def test_range_test_is_cancelled_with_x(sorter: Session, drive) -> None:
 
 def test_range_test_refuses_bad_input(sorter: Session, drive) -> None:
     async def check(app: StepperApp, pilot: Pilot[Any], said: list[tuple[str, str]]) -> None:
-        await press(app, pilot, "V")
+        await press(app, pilot, "E")
         await answer(app, pilot, "1 0.1 4 5")
         await press(app, pilot, "B")
         assert errors(said) == ["range test: rates 1 to 0.1 must be positive, the first no larger",
-                                "no range test yet: V runs one"]
+                                "no range test yet: E runs one"]
 
     drive(sorter, check, SIZE)
 
@@ -222,7 +223,7 @@ def test_compare_with_a_checkpoint(sorter: Session, drive, tmp_path: Path) -> No
     a = sorter.theta.copy()
 
     async def check(app: StepperApp, pilot: Pilot[Any], said: list[tuple[str, str]]) -> None:
-        await press(app, pilot, "n")
+        await press(app, pilot, "S")
         await answer(app, pilot, "5")
         await press(app, pilot, "D")
         await answer(app, pilot, str(saved))

@@ -15,7 +15,8 @@ from rich.segment import Segment
 from rich.style import Style
 from textual.strip import Strip
 
-from stepper.ui.plotwidget import PlotWidget, plotext_figure
+from stepper.plots import plotext_figure
+from stepper.ui.plotwidget import PlotWidget
 
 Drawing = Callable[[Any], None]
 

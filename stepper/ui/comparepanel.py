@@ -11,6 +11,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Sequence
 
 from stepper.core.weightdiff import WeightDiff
 from stepper.training_report import diff_lines
@@ -29,7 +30,7 @@ class CompareFigures:
 
     path: Path
     diff: WeightDiff
-    names: tuple[str, ...]
+    names: Sequence[str]
 
 
 def compare_lines(f: CompareFigures, height: int) -> list[str]:

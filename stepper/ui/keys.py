@@ -77,7 +77,7 @@ KEYS: tuple[Key, ...] = (
         "candidate rate", "descent", footer=9),
     Key("V", "adopt_best_rate", "best rate", "adopt the rate that the preview finds best", "descent",
         footer=10),
-    Key("b", "range_test", "range test", "rate range test: k steps at each of several rates from here, nothing "
+    Key("E", "range_test", "explore rates", "rate range test: k steps at each of several rates from here, nothing "
         "kept; the cost each reaches on a log axis (a job; x cancels)", "descent"),
     Key("B", "adopt_range_rate", "adopt", "adopt the rate with the lowest cost in the range test", "descent",
         footer=1, when="range"),

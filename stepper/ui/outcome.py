@@ -161,7 +161,7 @@ class OutcomeKeys(WhyKeys):
             return
         result = self.session.range_result
         if result is None:
-            panel.show_note("rate range test", "V runs a range test: k steps at each of several rates from the "
+            panel.show_note("rate range test", "E runs a range test: k steps at each of several rates from the "
                                                "current state, nothing kept")
             return
         panel.show(result, self.session.range_is_stale)

@@ -1,6 +1,6 @@
 """The range-test panel: the cost each rate reached after k steps, on a log axis, the lowest marked.
 
-The test itself runs as a job (``V``, with progress and ``x`` to cancel) on the
+The test itself runs as a job (``E``, with progress and ``x`` to cancel) on the
 session (:meth:`~stepper.session.Session.iter_range_test`), which changes
 nothing; ``B`` adopts the lowest rate. The plot is :func:`stepper.charts.draw_range`;
 below it, one line names the lowest rate and its costs, and whether the state
@@ -28,16 +28,16 @@ def range_summary(result: RangeResult, stale: bool) -> str:
     diverged = sum(d is not None for d in result.diverged_at)
     tail = f"; {diverged} diverged" if diverged else ""
     if best is None:
-        line = f"every rate diverged{tail}: V again with lower rates"
+        line = f"every rate diverged{tail}: E again with lower rates"
     else:
         val = "" if result.val is None else f", validation {number(float(result.val[best]), 5)}"
         line = (f"lowest: rate {result.rates[best]:.3g} -> train {number(float(result.train[best]), 5)}{val} "
                 f"(from {number(result.start_cost, 5)}){tail} | B adopts it")
         if result.rates.size > 1 and best in (0, result.rates.size - 1):
             edge = "highest" if best == result.rates.size - 1 else "lowest"
-            line += f" | it is the {edge} rate tried: V again with the range moved past it"
+            line += f" | it is the {edge} rate tried: E again with the range moved past it"
     if stale:
-        line += " | the state changed since this test (V again)"
+        line += " | the state changed since this test (E again)"
     return line
 
 
@@ -57,7 +57,7 @@ class RangePanel(Vertical):
 
     def show(self, result: RangeResult, stale: bool) -> None:
         self.border_title = (f"rate range test: {result.steps} steps at each of {result.rates.size} rates, "
-                             "nothing kept | B adopt, V again")
+                             "nothing kept | B adopt, E again")
 
         def draw(fig: Any) -> None:
             draw_range(fig, result)

@@ -1,4 +1,4 @@
-"""Keys of the rate range test: run it as a job (V), adopt its lowest rate (B).
+"""Keys of the rate range test: run it as a job (E), adopt its lowest rate (B).
 
 The test runs in a thread worker on the session's progress generator
 (:meth:`~stepper.session.Session.iter_range_test`), with the job bar and ``x``
@@ -72,17 +72,17 @@ class RangeKeys(OutcomeKeys, Jobs):
             return
         result = self.session.range_result
         if result is None:
-            self.say("no range test yet: V runs one", error=True)
+            self.say("no range test yet: E runs one", error=True)
             return
         best = result.best
         if best is None:
-            self.say("every rate of the range test diverged: nothing to adopt (V again with lower rates)",
+            self.say("every rate of the range test diverged: nothing to adopt (E again with lower rates)",
                      error=True)
             return
         rate = float(result.rates[best])
         if math.isclose(rate, self.session.rate, rel_tol=1e-12):
             self.say(f"the rate is already {rate:g}, the range test's lowest")
             return
-        stale = " (the state changed since the test: V again to be sure)" if self.session.range_is_stale else ""
+        stale = " (the state changed since the test: E again to be sure)" if self.session.range_is_stale else ""
         if self.apply(lambda: self.session.set_rate(rate)):
             self.say(f"rate {rate:g} from the range test{stale}")

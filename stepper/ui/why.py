@@ -18,7 +18,7 @@ from stepper.ui.weights import WeightTable
 
 #: The panels shown in place of the cost plot, by name, and their keys: the "why" panels (the
 #: slice, the slope factors, the layer health) and the training views of stepper.ui.outcome.
-WHY_KEY = {"slice": "t", "factors": "i", "health": "h", "histograms": "H", "range": "V", "compare": "D"}
+WHY_KEY = {"slice": "t", "factors": "i", "health": "h", "histograms": "H", "range": "E", "compare": "D"}
 #: The panels this module draws; the others are drawn by :meth:`AppBase.show_side_view`.
 OWN = ("slice", "factors", "health")
 
