@@ -252,7 +252,7 @@ def open_app(session: Session, log_file: str | Path | None = None) -> int:
 
     The app draws on the terminal: call it from a terminal, not from a notebook.
     """
-    from stepper.commands.open import default_log_file
+    from stepper.commands.parsers import default_log_file
     from stepper.ui.app import run_app
 
     return run_app(session, Path(log_file) if log_file is not None else default_log_file())

@@ -1,12 +1,13 @@
 """Command line: ``stepper open | check | run | ...``.
 
-Each subcommand lives in its own module under :mod:`stepper.commands` and
-exposes ``add_parser(subparsers)`` and ``run(args) -> int``. This module wires
-them up and is the boundary where user-facing errors become one line on
-stderr. Exit codes: 0 ok, 1 check failed (or a step was refused, or a runaway
+Each subcommand's options are in :mod:`stepper.commands.parsers` and its work in
+``stepper/commands/NAME.py`` (``handle(args) -> int``), imported only once its
+arguments have parsed: ``stepper --help`` and a mistyped option import neither
+numpy nor Textual. This module wires them up and is the boundary where
+user-facing errors become one line on stderr. Exit codes: 0 ok, 1 check failed (or a step was refused, or a runaway
 cost stopped a run), 2 bad input.
 
-One vocabulary holds in every subcommand (see ``commands/common.py``):
+One vocabulary holds in every subcommand (see ``commands/options.py``):
 ``--resume CK`` starts from a checkpoint, ``--samples N`` limits the rows,
 ``--delta H`` is the finite-difference step. Options are never abbreviated
 (``--sample`` is not ``--samples``); an unknown command or option is answered
@@ -27,11 +28,11 @@ import argparse  # noqa: E402
 import difflib
 import re
 import sys
-from importlib import import_module
 from pathlib import Path
 from typing import Any, Iterable, NoReturn, Sequence
 
 from stepper import __version__
+from stepper.commands.parsers import PARSERS
 from stepper.errors import StepperError, UsageError
 
 #: Subcommand modules, in the order ``--help`` lists them.
@@ -156,13 +157,7 @@ def build_parser() -> argparse.ArgumentParser:
     parser.add_argument("--version", action="version", version=f"stepper {__version__}")
     subs = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
     for name in COMMANDS:
-        try:
-            module = import_module(f"stepper.commands.{name}")
-        except ModuleNotFoundError as exc:
-            if exc.name == f"stepper.commands.{name}":
-                continue
-            raise
-        module.add_parser(subs)
+        PARSERS[name](subs)
     return parser
 
 
@@ -221,13 +216,13 @@ def _use_cores() -> None:
 def main(argv: Sequence[str] | None = None) -> int:
     """Run the command line; returns the exit code."""
     args_list = list(sys.argv[1:] if argv is None else argv)
-    _use_cores()
     try:
         parser = build_parser()
         args = parser.parse_args(route(parser, args_list))
         if args.command is None:
             parser.print_help()
             return 2
+        _use_cores()  # only now: it imports the numeric core
         code: int = args.handler(args)
         return code
     except StepperError as exc:

@@ -10,7 +10,8 @@ from pathlib import Path
 import pytest
 
 from stepper.cli import build_parser, main
-from stepper.commands.open import cut_samples, default_log_file
+from stepper.commands.open import cut_samples
+from stepper.commands.parsers import default_log_file
 from stepper.errors import UsageError
 from stepper.formats.model_file import load_setup
 from stepper.scenarios import default_model

@@ -1,1 +1,1 @@
-"""One module per subcommand; each has ``add_parser(subparsers)`` and a handler."""
+"""One module per subcommand, each with ``handle(args) -> int``; their options are in :mod:`stepper.commands.parsers`."""

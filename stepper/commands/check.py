@@ -10,24 +10,15 @@ from typing import Any
 
 import numpy as np
 
-from stepper.commands.common import (
-    add_model_argument,
-    add_resume_option,
-    add_slope_options,
-    positive_float,
-    load,
-    positive_int,
-    progress_bar,
-    resumed_weights,
-    sample_limit,
-)
+from stepper.commands.common import load, progress_bar, resumed_weights, sample_limit
+from stepper.commands.parsers import HEALTH_RATE
 from stepper.commands.check_rows import WeightRows, dump_document, mark, name_width, write_table_rows
 from stepper.core.compare import AGREE_BELOW, DISAGREE_ABOVE, VERDICTS
 from stepper.core.diagnosis import Hint, diagnose
 from stepper.core.directional import DirectionalCheck, iter_directional_check
 from stepper.core.gradcheck import CheckResult, iter_check
 from stepper.core.health import RATIO_TYPICAL, HealthReport, layer_health
-from stepper.core.input_slopes import DEFAULT_SAMPLES, InputSlopeCheck, check_input_slopes
+from stepper.core.input_slopes import InputSlopeCheck, check_input_slopes
 from stepper.core.gemm import ScaledDense
 from stepper.core.layers import Dense
 from stepper.core.names import name_at
@@ -37,42 +28,8 @@ from stepper.core.selection import WeightChoice, choose, every_weight
 from stepper.errors import UsageError
 from stepper.formats.model_file import Setup
 
-#: Rate for the layer health when neither --rate nor a checkpoint gives one (common practice).
-HEALTH_RATE = 0.1
 
 
-def add_parser(subs: Any) -> None:
-    p = subs.add_parser(
-        "check",
-        help="check every slope against finite differences (exit 1 unless every one agrees)",
-        description="Compute each weight's slope by backpropagation and by finite "
-        "differences, and report where they disagree. Exit code: 0 every slope agrees "
-        "(slopes at a kink are not judged), 1 some disagree, are only doubtful or cannot be resolved "
-        "at this step size, 2 bad input.",
-    )
-    add_model_argument(p)
-    add_slope_options(p)
-    add_resume_option(p, help="check the slopes at a checkpoint's weights instead of the model's start")
-    p.add_argument("--rate", type=positive_float, default=None, metavar="R",
-                   help=f"rate for the layer health's update-to-weight ratios (default {HEALTH_RATE}, "
-                   "common practice, or the checkpoint's with --resume)")
-    p.add_argument("--input-samples", type=positive_int, default=DEFAULT_SAMPLES, metavar="N",
-                   help=f"samples on which custom layers' input slopes are checked (default {DEFAULT_SAMPLES})")
-    p.add_argument("--weights", default=None, metavar="SPEC",
-                   help="check only some weights: a share (1%%), a count (500), or a name pattern "
-                   "(L2.*, L1.b[*]); a share or count is a seeded random draw from every array "
-                   "(default: every weight, or none with --directions)")
-    p.add_argument("--directions", type=positive_int, default=None, metavar="K",
-                   help="check each parameter array along K random directions (2K cost evaluations "
-                   "per array): a quick check of the whole model")
-    p.add_argument("--seed", type=int, default=0,
-                   help="seed of the random weights of --weights and of the --directions (default 0)")
-    p.add_argument("--json", action="store_true", help="print one JSON document instead of a table")
-    p.add_argument("--worst", type=positive_int, default=None, metavar="N",
-                   help="list only the N weights with the largest relative error")
-    p.add_argument("--problems-only", action="store_true",
-                   help="list only the weights whose verdict is not agree (table and JSON)")
-    p.set_defaults(handler=handle)
 
 
 def weight_choice(args: argparse.Namespace, net: Network) -> WeightChoice | None:

@@ -1,9 +1,9 @@
-"""Options and helpers shared by several subcommands.
+"""Helpers shared by several subcommands' handlers: loading the model, weights from a checkpoint,
+progress bars, plots written to a file.
 
-The command-line vocabulary is fixed here, so that every subcommand speaks it
-the same way: ``--resume CK`` starts from a checkpoint's weights,
-``--samples N`` uses the first N training samples, ``--delta H`` is the
-finite-difference step, ``--method`` central or forward differences.
+The options themselves, the command-line vocabulary, are in
+:mod:`stepper.commands.options` (imported without the numeric core, so that
+``--help`` is quick).
 """
 
 from __future__ import annotations
@@ -18,76 +18,26 @@ from typing import TYPE_CHECKING, Any, Callable, Iterator, Sequence
 
 import numpy as np
 
-from stepper.commands.graph_data import add_graph_data_options, load_graph_setup, wants_graph
-from stepper.core.numeric import METHODS
+from stepper.commands.graph_data import load_graph_setup, wants_graph
 from stepper.errors import UsageError
 from stepper.formats.atomic import write_atomic
 from stepper.formats.model_file import Setup, load_setup
 from stepper.formats.outputs import check_output
 from stepper.scenarios import resolve_model
-from stepper.session.runaway import GROWTH, RISES, RUN_ON, RunawayRule
+from stepper.session.runaway import RUN_ON, RunawayRule
 
 if TYPE_CHECKING:
     from stepper.session import Session
 
 
-def add_model_argument(parser: argparse.ArgumentParser) -> None:
-    parser.add_argument(
-        "model",
-        nargs="?",
-        help="model file (TOML), a scenario folder, a bundled scenario name, or an ONNX file "
-        "(with --data, --targets, --loss); default: the bundled default scenario",
-    )
-    add_graph_data_options(parser)
 
 
-def add_slope_options(parser: argparse.ArgumentParser) -> None:
-    parser.add_argument("--method", choices=METHODS, default="central",
-                        help="finite differences: central (default) or forward")
-    parser.add_argument("--delta", type=positive_float, default=None, metavar="H",
-                        help="finite-difference step h, absolute (default: cube root of machine "
-                        "epsilon for central, square root for forward)")
-    add_samples_option(parser)
 
 
-def add_samples_option(parser: argparse.ArgumentParser, help: str = "use only the first N training samples") -> None:
-    parser.add_argument("--samples", type=positive_int, default=None, metavar="N", help=help)
 
 
-def add_resume_option(parser: argparse.ArgumentParser, help: str = "start from a checkpoint's weights "
-                      "instead of the model's initial values") -> None:
-    parser.add_argument("--resume", type=Path, default=None, metavar="CHECKPOINT", help=help)
 
 
-def add_step_options(parser: argparse.ArgumentParser, purpose: str, runaway: bool = True) -> None:
-    """How steps are made, the same in ``open`` and ``run``: rate, rule, slopes, batch and its seed.
-
-    With ``runaway``, also when a run of steps stops a runaway cost (leave it out
-    for a command whose steps no runaway rule stops).
-    """
-    from stepper.core.optimizers import RULES
-    from stepper.session import SLOPE_SOURCES
-
-    parser.add_argument("--rate", type=positive_float, default=None, metavar="R",
-                        help=f"learning rate {purpose} (default 0.1, or the checkpoint's with --resume)")
-    parser.add_argument("--rule", choices=RULES, default=None,
-                        help=f"update rule {purpose} (default gd, or the checkpoint's)")
-    parser.add_argument("--slopes", choices=SLOPE_SOURCES, default=None,
-                        help="slopes from backpropagation (analytic, default) or finite differences (numeric)")
-    parser.add_argument("--batch", type=positive_int, default=None, metavar="N",
-                        help="mini-batches of N samples, drawn with a seeded shuffle (default: full batch)")
-    parser.add_argument("--seed", type=non_negative_int, default=0,
-                        help="seed for the mini-batch order and the noise (0 or more; default 0)")
-    if not runaway:
-        return
-    parser.add_argument("--runaway-growth", type=_growth, default=GROWTH, metavar="F",
-                        help=f"stop a run of steps once the cost exceeds F x its value at the run's start "
-                        f"(default {GROWTH:g})")
-    parser.add_argument("--runaway-rises", type=_rises, default=RISES, metavar="K",
-                        help=f"stop a run of steps once the cost rose K steps in a row and is above its "
-                        f"start (default {RISES}; 0: never)")
-    parser.add_argument("--run-on", action="store_true",
-                        help="no runaway rule: only a step that would be non-finite stops a run")
 
 
 def runaway_rule(args: argparse.Namespace) -> RunawayRule:
@@ -118,44 +68,16 @@ def apply_step_options(session: Session, args: argparse.Namespace) -> None:
             session.set_batch_size(batch)
 
 
-def _growth(text: str) -> float:
-    value = positive_float(text)
-    if value <= 1.0:
-        raise argparse.ArgumentTypeError(f"{text!r} must be above 1")
-    return value
 
 
-def _rises(text: str) -> int:
-    return _whole(text, 0, "must be 0 (never) or more")
 
 
-def positive_float(text: str) -> float:
-    try:
-        value = float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"{text!r} is not a number") from None
-    if not math.isfinite(value) or value <= 0:
-        raise argparse.ArgumentTypeError(f"{text!r} must be a positive number")
-    return value
 
 
-def positive_int(text: str) -> int:
-    return _whole(text, 1, "must be at least 1")
 
 
-def _whole(text: str, least: int, too_small: str) -> int:
-    """``text`` as a whole number of at least ``least``; else an argparse error ending in ``too_small``."""
-    try:
-        value = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"{text!r} is not a whole number") from None
-    if value < least:
-        raise argparse.ArgumentTypeError(f"{text!r} {too_small}")
-    return value
 
 
-def non_negative_int(text: str) -> int:
-    return _whole(text, 0, "must be 0 or more")
 
 
 def load(args: argparse.Namespace) -> Setup:

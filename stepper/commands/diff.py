@@ -11,7 +11,6 @@ from typing import Any
 
 import numpy as np
 
-from stepper.commands.common import positive_int
 from stepper.core.weightdiff import WeightDiff, compare_weights
 from stepper.errors import UsageError
 from stepper.formats.checkpoint import load_checkpoint, read_meta
@@ -21,23 +20,6 @@ from stepper.session import Session
 from stepper.training_report import diff_lines, finite_or_none
 
 
-def add_parser(subs: Any) -> None:
-    p = subs.add_parser(
-        "diff",
-        help="compare two checkpoints: costs, each layer's change, the weights that moved most",
-        description="Compare the weights of A and B (checkpoints of one model; a model file, folder or "
-        "bundled name stands for its starting weights): the cost of each, each layer's norm of change, "
-        "the weights that moved most, and the cosine between the change and the slope.",
-    )
-    p.add_argument("points", nargs="+", metavar="A B",
-                   help="the earlier and the later checkpoint (a model stands for its starting weights); "
-                   "with --resume A, only B")
-    p.add_argument("--resume", default=None, metavar="CK", help="the earlier checkpoint A (then give only B)")
-    p.add_argument("--model", default=None, metavar="MODEL",
-                   help="the model both belong to (default: the one the checkpoints name)")
-    p.add_argument("--top", type=positive_int, default=10, metavar="N", help="list the N weights that moved most")
-    p.add_argument("--json", action="store_true", help="print one JSON document instead of text")
-    p.set_defaults(handler=handle)
 
 
 def _is_checkpoint(text: str) -> bool:

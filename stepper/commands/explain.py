@@ -9,38 +9,15 @@ from typing import Any
 
 import numpy as np
 
-from stepper.commands.common import (
-    add_model_argument,
-    add_resume_option,
-    add_samples_option,
-    load,
-    resumed_weights,
-    sample_limit,
-)
-from stepper.commands.slice import DEFAULT_RATE, weight_index
+from stepper.commands.common import load, resumed_weights, sample_limit
+from stepper.commands.parsers import DEFAULT_RATE
+from stepper.commands.slice import weight_index
 from stepper.core.breakdown import Breakdown, slope_breakdown
 from stepper.errors import UsageError
 from stepper.formats.model_file import Setup
 from stepper.report import at_z_reason, factor_names, weight_place
 
 
-def add_parser(subs: Any) -> None:
-    p = subs.add_parser(
-        "explain",
-        help="take one weight's slope apart: error signal x activation slope x input, per sample",
-        description="Show the factors whose product, summed over samples, is one weight's slope: the "
-        "error signal at the unit it feeds, that unit's activation slope, and the input it carries; "
-        "averaged over samples and for one sample, with the usual reasons a slope vanishes or explodes.",
-    )
-    add_model_argument(p)
-    p.add_argument("weight", help="the weight's name, e.g. L1.W[0,2] or L2.b[0]")
-    p.add_argument("--sample-index", type=int, default=None, metavar="K",
-                   help="show training sample K (0-based) on its own (default: the one that "
-                   "contributes most)")
-    add_samples_option(p)
-    add_resume_option(p, help="take the weights from a checkpoint instead of the model's start")
-    p.add_argument("--json", action="store_true", help="print one JSON document instead of text")
-    p.set_defaults(handler=handle)
 
 
 def handle(args: argparse.Namespace) -> int:

@@ -5,33 +5,12 @@ from __future__ import annotations
 import argparse
 import sys
 from pathlib import Path
-from typing import Any
 
-from stepper.commands.common import add_model_argument, load
+from stepper.commands.common import load
 from stepper.formats.checkpoint import load_checkpoint
 from stepper.formats.export import export_weights
-from stepper.formats.weight_sources import DTYPES
-from stepper.formats.weights_export import LAYOUTS
 
 
-def add_parser(subs: Any) -> None:
-    p = subs.add_parser(
-        "export",
-        help="write the weights as ONNX, or as safetensors in PyTorch's or Stepper's layout",
-        description="Write a model's weights (its starting ones, or a checkpoint's with --resume) for "
-        "another program: an ONNX file of the whole network that onnxruntime runs, or a safetensors "
-        "file in PyTorch's layout (the names and arrangement the weights came in, or an nn.Sequential's "
-        "0.weight (out, in), 0.bias, ...) or in Stepper's own (L1.W (in, out), L1.b). The format follows "
-        "the suffix of --to. Exit code: 0 written, 2 bad input.",
-    )
-    add_model_argument(p)
-    p.add_argument("--resume", type=Path, default=None, metavar="CK", help="the weights of this checkpoint")
-    p.add_argument("--to", type=Path, required=True, metavar="PATH", help="the file to write: .onnx or .safetensors")
-    p.add_argument("--layout", choices=LAYOUTS, default=None,
-                   help="safetensors only: torch (default) or stepper")
-    p.add_argument("--dtype", choices=DTYPES, default=None,
-                   help="float type written (default: the one the weights came in; float64 for Stepper's own)")
-    p.set_defaults(handler=handle)
 
 
 def handle(args: argparse.Namespace) -> int:

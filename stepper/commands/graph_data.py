@@ -13,23 +13,12 @@ import json
 from pathlib import Path
 from typing import Any
 
-from stepper.core.losses import LOSSES
 from stepper.errors import UsageError
 from stepper.formats.model_file import Setup, setup_from_doc
 
 OPTIONS = ("data", "targets", "inputs", "loss")
 
 
-def add_graph_data_options(parser: argparse.ArgumentParser) -> None:
-    group = parser.add_argument_group(
-        "an ONNX file named directly (instead of a model file)",
-        "give the data and the loss that a model file would give; see README.md, Bring your own model")
-    group.add_argument("--data", type=Path, default=None, metavar="CSV", help="the data: a CSV file with a header row")
-    group.add_argument("--targets", default=None, metavar="COLS",
-                       help="target columns, comma-separated (one column of class numbers for a softmax output)")
-    group.add_argument("--inputs", default=None, metavar="COLS",
-                       help="input columns, comma-separated (default: every column that is not a target)")
-    group.add_argument("--loss", choices=LOSSES, default=None, help="the loss")
 
 
 def wants_graph(args: argparse.Namespace, model: Path) -> bool:

@@ -4,76 +4,20 @@ from __future__ import annotations
 
 import argparse
 import dataclasses
-import math
 import sys
-from pathlib import Path
-from typing import Any
 
-from stepper.commands.common import (
-    add_model_argument,
-    add_resume_option,
-    add_samples_option,
-    add_step_options,
-    apply_step_options,
-    load,
-    positive_float,
-    runaway_rule,
-    sample_limit,
-)
-from stepper.commands.session_options import add_training_options, apply_training_options
+from stepper.commands.common import apply_step_options, load, runaway_rule, sample_limit
+from stepper.commands.parsers import default_log_file
+from stepper.commands.session_options import apply_training_options
 from stepper.errors import UsageError
 from stepper.formats.model_file import Setup
 from stepper.formats.outputs import check_output
 
 
-def default_log_file() -> Path:
-    """Where the app logs while it runs: the user's state folder (platformdirs), ``stepper/open.log``.
-
-    On Linux that is ``$XDG_STATE_HOME/stepper/open.log`` (``~/.local/state`` by default).
-    """
-    import platformdirs
-
-    return Path(platformdirs.user_state_path("stepper")) / "open.log"
 
 
-def add_parser(subs: Any) -> None:
-    p = subs.add_parser(
-        "open",
-        help="open the app: every weight's slopes, a cost plot, descent by hand (the default)",
-        description="Open the terminal app on a model: a table of every weight with its analytic "
-        "and numeric slope, a cost plot, and keys to step, change the rate, freeze, perturb, undo "
-        "and save. Press ? in the app for the list of keys.",
-    )
-    add_model_argument(p)
-    add_resume_option(p, help="start from a checkpoint (its weights, settings and cost history)")
-    add_step_options(p, "to start with")
-    add_training_options(p)
-    add_samples_option(p, help="train on the first N training samples only (not with --journal)")
-    p.add_argument("--journal", type=Path, default=None, metavar="PATH",
-                   help="append every operation to this journal file, for stepper replay (default: "
-                   "a new journal-<time>.jsonl beside the checkpoints)")
-    p.add_argument("--no-journal", action="store_true", help="keep no journal")
-    p.add_argument("--noise", type=positive_float, default=0.01, metavar="SCALE",
-                   help="standard deviation of the noise the perturb keys add (default 0.01)")
-    p.add_argument("--check-every-step", action="store_true",
-                   help="recompute the numeric slopes after every step (a key turns it on and off)")
-    p.add_argument("--numeric-budget", type=_budget, default=50.0, metavar="MS",
-                   help="milliseconds a numeric pass may take to be redone by itself after every change "
-                   "(default 50; 0: only when asked, with #)")
-    p.add_argument("--log", type=Path, default=None, metavar="PATH",
-                   help=f"log file while the app runs (default {default_log_file()})")
-    p.set_defaults(handler=handle)
 
 
-def _budget(text: str) -> float:
-    """A budget in milliseconds: a finite number, 0 or more."""
-    try:
-        value = float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"{text!r} is not a number of milliseconds") from None
-    if not (math.isfinite(value) and value >= 0):
-        raise argparse.ArgumentTypeError(f"{text!r} must be 0 or more milliseconds")
-    return value
 
 
 def cut_samples(setup: Setup, n: int) -> Setup:

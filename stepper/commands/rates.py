@@ -9,11 +9,10 @@ from pathlib import Path
 from typing import Any
 
 from stepper.charts import range_text
-from stepper.commands.common import (add_model_argument, check_plot_target, positive_float, positive_int,
-                                     progress_bar, write_plot)
-from stepper.commands.session_options import add_session_options, open_session, settings_document
+from stepper.commands.common import check_plot_target, progress_bar, write_plot
+from stepper.commands.session_options import open_session, settings_document
 from stepper.core.numeric import run_to_end
-from stepper.core.ratetest import DEFAULT_STEPS, RangeResult, log_rates
+from stepper.core.ratetest import RangeResult, log_rates
 from stepper.errors import UsageError
 from stepper.session import Session
 from stepper.scenarios import resolve_model
@@ -21,28 +20,6 @@ from stepper.session.rates import MAX_RATES
 from stepper.training_report import finite_or_none, range_lines
 
 
-def add_parser(subs: Any) -> None:
-    p = subs.add_parser(
-        "rates",
-        help="rate range test: a few steps at each of several rates from one state; which ends lowest",
-        description="From the model's start (or --resume CK), make --steps updates at each of --count "
-        "rates spaced evenly on a log axis from --low to --high, each from the same state, and report the "
-        "cost each reaches. Nothing is saved: the test changes no state. Slopes come from backpropagation "
-        "(whatever --slopes says), and no runaway rule stops a rate early: each makes every step it can.",
-    )
-    add_model_argument(p)
-    p.add_argument("--low", type=positive_float, default=None, metavar="R",
-                   help="lowest rate (default: the rate / 100)")
-    p.add_argument("--high", type=positive_float, default=None, metavar="R",
-                   help="highest rate (default: the rate x 10)")
-    p.add_argument("--count", type=positive_int, default=None, metavar="N", help="how many rates (default 8)")
-    p.add_argument("--steps", type=positive_int, default=DEFAULT_STEPS, metavar="K",
-                   help=f"steps at each rate (default {DEFAULT_STEPS})")
-    add_session_options(p, "around which the rates are spread", runaway=False)
-    p.add_argument("--plot", default=None, metavar="FILE",
-                   help="write the cost against the rate (log axis) as plain text ('-' for standard output)")
-    p.add_argument("--json", action="store_true", help="print one JSON document instead of text")
-    p.set_defaults(handler=handle)
 
 
 def handle(args: argparse.Namespace) -> int:

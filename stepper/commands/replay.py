@@ -19,25 +19,6 @@ from stepper.formats.reading import CHECKPOINT_LIMIT, read_limited
 from stepper.session import Session
 
 
-def add_parser(subs: Any) -> None:
-    p = subs.add_parser(
-        "replay",
-        help="rebuild a session from its journal (after a crash) and save it as a checkpoint",
-        description="Re-run every operation recorded in a journal, starting from the model "
-        "file the journal names, and report (and optionally save) the resulting state. "
-        "CAUTION: the model file may name custom layers, whose Python code replay runs; "
-        "replay lists them first, and runs code that is not in the model file's own folder "
-        "only with --run-code. Ctrl-C stops a long replay (and still saves with --save).",
-    )
-    p.add_argument("journal", type=Path, help="journal file (.jsonl)")
-    p.add_argument("--model", type=Path, default=None,
-                   help="model file to start from (default: the one the journal names)")
-    p.add_argument("--save", type=Path, default=None, metavar="PATH", help="write the rebuilt state as a checkpoint")
-    p.add_argument("--force", action="store_true",
-                   help="replay even if the model file, its data or code, or a loaded checkpoint has changed")
-    p.add_argument("--run-code", action="store_true",
-                   help="allow running custom-layer code that is not in the model file's folder")
-    p.set_defaults(handler=handle)
 
 
 def _sha256(path: Path) -> str | None:

@@ -12,8 +12,8 @@ from typing import Any
 import numpy as np
 
 from stepper.charts import spreads_text
-from stepper.commands.common import StopFlag, add_model_argument, check_plot_target, progress_bar, write_plot
-from stepper.commands.session_options import add_session_options, open_session, settings_document
+from stepper.commands.common import StopFlag, check_plot_target, progress_bar, write_plot
+from stepper.commands.session_options import open_session, settings_document
 from stepper.core.metrics import metrics_document
 from stepper.core.numeric import run_to_end
 from stepper.errors import CustomLayerError, DivergenceError, RunawayError
@@ -22,37 +22,8 @@ from stepper.session import Session, SetMetrics
 from stepper.training_report import metric_words, settings_words
 
 
-def add_parser(subs: Any) -> None:
-    p = subs.add_parser(
-        "run",
-        help="make gradient-descent steps without the app, optionally saving a checkpoint",
-        description="Step gradient descent headless. Ctrl-C stops after the current step "
-        "(and still saves with --save). A cost that runs away stops the run, keeping its steps "
-        "(--runaway-growth, --runaway-rises, --run-on). Exit code: 0 ok, 1 a step was refused "
-        "as divergent or the cost ran away, 2 bad input.",
-    )
-    add_model_argument(p)
-    p.add_argument("--steps", type=_steps, default=100, metavar="N",
-                   help="number of updates (default 100; 0 makes none and reports the state)")
-    add_session_options(p, "for the run")
-    p.add_argument("--save", type=Path, default=None, metavar="PATH", help="write a checkpoint at the end")
-    p.add_argument("--journal", type=Path, default=None, metavar="PATH",
-                   help="append every operation to this journal file (for stepper replay)")
-    p.add_argument("--plot", default=None, metavar="FILE",
-                   help="write histograms of each layer's weights, slopes, last updates and activations "
-                   "at the end, as plain text ('-' for standard output)")
-    p.add_argument("--json", action="store_true", help="print one JSON document at the end")
-    p.set_defaults(handler=handle)
 
 
-def _steps(text: str) -> int:
-    try:
-        value = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"{text!r} is not a whole number") from None
-    if value < 0:
-        raise argparse.ArgumentTypeError(f"{text!r} must be 0 or more")
-    return value
 
 
 def handle(args: argparse.Namespace) -> int:

@@ -5,51 +5,20 @@ from __future__ import annotations
 import argparse
 import json
 import sys
-from pathlib import Path
 from typing import Any
 
 import numpy as np
 
-from stepper.commands.common import add_model_argument, load, positive_int
-from stepper.core.metrics import THRESHOLD, Metrics, metrics_document
+from stepper.commands.common import load
+from stepper.core.metrics import Metrics, metrics_document
 from stepper.core.rows import worst_rows
-from stepper.session.measures import SPLITS
 from stepper.session import RowTable, Session
 from stepper.training_report import confusion_lines, finite_or_none, metric_words, number, row_words
 
-ORDERS = ("loss", "line")
 
 
-def add_parser(subs: Any) -> None:
-    p = subs.add_parser(
-        "samples",
-        help="the loss of every data row (sample), worst first, with prediction, target and metrics",
-        description="List the rows of the data with their loss, the network's output and the target, "
-        "the worst first; then the task's metrics (accuracy and confusion matrix, precision and recall, "
-        "or R2 and mean absolute error) on the training and validation rows.",
-    )
-    add_model_argument(p)
-    p.add_argument("--resume", type=Path, default=None, metavar="CK", help="take the weights from a checkpoint")
-    p.add_argument("--worst", type=positive_int, default=10, metavar="N", help="list the N worst rows (default 10)")
-    p.add_argument("--all", action="store_true", help="list every row")
-    p.add_argument("--split", choices=SPLITS, default="both",
-                   help="training rows, validation rows or both (default both)")
-    p.add_argument("--sort", choices=ORDERS, default="loss",
-                   help="order of the listed rows: largest loss first (default) or file line")
-    p.add_argument("--threshold", type=_threshold, default=THRESHOLD, metavar="T",
-                   help=f"for yes/no outputs: an output at or above T says yes (default {THRESHOLD})")
-    p.add_argument("--json", action="store_true", help="print one JSON document instead of text")
-    p.set_defaults(handler=handle)
 
 
-def _threshold(text: str) -> float:
-    try:
-        value = float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"{text!r} is not a number") from None
-    if not 0.0 < value < 1.0:
-        raise argparse.ArgumentTypeError(f"{text!r} must be between 0 and 1")
-    return value
 
 
 def handle(args: argparse.Namespace) -> int:

@@ -11,29 +11,14 @@ from typing import Any
 
 import numpy as np
 
-from stepper.commands.common import (
-    add_model_argument,
-    add_resume_option,
-    add_samples_option,
-    load,
-    positive_float,
-    positive_int,
-    resumed_weights,
-    sample_limit,
-    write_plot,
-)
+from stepper.commands.common import load, resumed_weights, sample_limit, write_plot
+from stepper.commands.parsers import DEFAULT_RATE, PLOT_SIZE
 from stepper.core.nearest import unknown_name
-from stepper.core.slice import DEFAULT_POINTS, CostSlice, cost_slice
+from stepper.core.slice import CostSlice, cost_slice
 from stepper.errors import UsageError
 from stepper.formats.model_file import Setup
 from stepper.formats.outputs import check_output
 
-#: Rate used when neither --rate nor a checkpoint gives one (common practice, no published source).
-DEFAULT_RATE = 0.1
-PLOT_SIZE = (76, 24)
-#: Largest plot drawn: far wider than any terminal, and a few seconds at most
-#: (plotext took 86 s and 15 GB for 5000x5000 and aborted at 100000x100000).
-MAX_PLOT_SIZE = (1000, 400)
 
 SOURCE = ('LeCun, Bottou, Orr & Mueller, "Efficient BackProp" (1998), section 5.1 on the optimal '
           "learning rate (recalled from memory)")
@@ -51,31 +36,6 @@ _MEANING = {
 }
 
 
-def add_parser(subs: Any) -> None:
-    p = subs.add_parser(
-        "slice",
-        help="sweep one weight with the others fixed: cost, tangent, curvature, and the rate it allows",
-        description="Hold every other weight fixed and sweep one weight around its value. Prints the "
-        "cost, the analytic slope (the tangent), the curvature (a numeric second derivative) and what "
-        "rate x curvature implies for plain gradient descent; --plot writes the picture as text.",
-    )
-    add_model_argument(p)
-    p.add_argument("weight", help="the weight's name, e.g. L1.W[0,2] or L2.b[0]")
-    p.add_argument("--rate", type=positive_float, default=None, metavar="R",
-                   help=f"descent rate for the step and the verdict (default {DEFAULT_RATE}, "
-                   "or the checkpoint's)")
-    p.add_argument("--span", type=positive_float, default=None, metavar="S",
-                   help="sweep the weight over value +- S (default: max(1, |value|, 1.5 |rate x slope|))")
-    p.add_argument("--points", type=_at_least_two, default=DEFAULT_POINTS, metavar="N",
-                   help=f"number of sweep points (default {DEFAULT_POINTS})")
-    add_samples_option(p)
-    add_resume_option(p, help="take the weights (and rate) from a checkpoint instead of the model's start")
-    p.add_argument("--plot", default=None, metavar="FILE",
-                   help="write the plot as plain text to FILE ('-' for standard output)")
-    p.add_argument("--size", type=_size, default=PLOT_SIZE, metavar="WxH",
-                   help=f"plot size in characters (default {PLOT_SIZE[0]}x{PLOT_SIZE[1]})")
-    p.add_argument("--json", action="store_true", help="print one JSON document instead of text")
-    p.set_defaults(handler=handle)
 
 
 def handle(args: argparse.Namespace) -> int:
@@ -180,22 +140,4 @@ def render_plot(s: CostSlice, name: str, width: int = PLOT_SIZE[0], height: int 
     return "\n".join(line.ljust(width) for line in lines).rstrip()
 
 
-def _at_least_two(text: str) -> int:
-    value = positive_int(text)
-    if value < 2:
-        raise argparse.ArgumentTypeError(f"{text!r} must be at least 2")
-    return value
 
-
-def _size(text: str) -> tuple[int, int]:
-    parts = text.lower().split("x")
-    try:
-        width, height = (int(p) for p in parts)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"{text!r} is not a size like 76x24") from None
-    if width < 30 or height < 10:
-        raise argparse.ArgumentTypeError(f"{text!r} is too small (at least 30x10)")
-    if width > MAX_PLOT_SIZE[0] or height > MAX_PLOT_SIZE[1]:
-        raise argparse.ArgumentTypeError(
-            f"{text!r} is too large (at most {MAX_PLOT_SIZE[0]}x{MAX_PLOT_SIZE[1]} characters)")
-    return width, height
