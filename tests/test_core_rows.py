@@ -86,3 +86,13 @@ def test_worst_rows_are_the_largest_first() -> None:
     big = rng.integers(0, 50, 5000).astype(float)
     np.testing.assert_array_equal(worst_rows(big, 300), np.argsort(-big, kind="stable")[:300])
     assert worst_rows(big, 0).size == 0
+
+
+@pytest.mark.parametrize("units", [1, 3, 32, 40])
+def test_row_max_is_numpys_max(units: int) -> None:
+    # numpy.max over the last axis is the reference, NaN included (both propagate it).
+    from stepper.core.activations import row_max
+
+    Z = np.random.default_rng(units).normal(size=(4, 7, units))
+    Z[1, 2, 0] = np.nan
+    np.testing.assert_array_equal(row_max(Z), np.max(Z, axis=-1, keepdims=True))
