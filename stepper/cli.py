@@ -25,10 +25,8 @@ import os
 os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
 
 import argparse  # noqa: E402
-import difflib
 import re
 import sys
-from pathlib import Path
 from typing import Any, Iterable, NoReturn, Sequence
 
 from stepper import __version__
@@ -56,6 +54,8 @@ def closest(word: str, known: Iterable[str], cutoff: float = 0.6) -> list[str]:
     ratio, leading dashes left out); only those within 0.1 of the closest are kept.
     """
     # Options are compared without their dashes, which every one of them shares.
+    import difflib  # only for a mistake: not on the way of a command that parses
+
     scored = sorted(((difflib.SequenceMatcher(None, word.lstrip("-"), k.lstrip("-")).ratio(), k)
                      for k in set(known)),
                     key=lambda rk: (-rk[0], rk[1]))
@@ -200,6 +200,8 @@ def _looks_like_model(word: str) -> bool:
     if "/" in word or os.sep in word or word.endswith(".toml") or word in scenario_names():
         return True
     try:
+        from pathlib import Path
+
         return Path(word).exists()
     except (OSError, ValueError):
         return False

@@ -17,8 +17,10 @@ from __future__ import annotations
 
 import argparse
 import math
-from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
+
+if TYPE_CHECKING:
+    from pathlib import Path
 
 # -- the choices offered elsewhere (each equal to its source; see the module docstring) --------------
 
@@ -50,6 +52,13 @@ DTYPES = ("float32", "float64")
 
 
 # -- argument types -----------------------------------------------------------------------------------
+
+
+def path(text: str) -> Path:
+    """A file name as a ``pathlib.Path`` (pathlib is imported only when a path is given: a tenth of --help)."""
+    from pathlib import Path
+
+    return Path(text)
 
 
 def positive_float(text: str) -> float:
@@ -136,7 +145,7 @@ def add_graph_data_options(parser: argparse.ArgumentParser) -> None:
     group = parser.add_argument_group(
         "an ONNX file named directly (instead of a model file)",
         "give the data and the loss that a model file would give; see README.md, Bring your own model")
-    group.add_argument("--data", type=Path, default=None, metavar="CSV", help="the data: a CSV file with a header row")
+    group.add_argument("--data", type=path, default=None, metavar="CSV", help="the data: a CSV file with a header row")
     group.add_argument("--targets", default=None, metavar="COLS",
                        help="target columns, comma-separated (one column of class numbers for a softmax output)")
     group.add_argument("--inputs", default=None, metavar="COLS",
@@ -159,7 +168,7 @@ def add_samples_option(parser: argparse.ArgumentParser, help: str = "use only th
 
 def add_resume_option(parser: argparse.ArgumentParser, help: str = "start from a checkpoint's weights "
                       "instead of the model's initial values") -> None:
-    parser.add_argument("--resume", type=Path, default=None, metavar="CHECKPOINT", help=help)
+    parser.add_argument("--resume", type=path, default=None, metavar="CHECKPOINT", help=help)
 
 
 def add_step_options(parser: argparse.ArgumentParser, purpose: str, runaway: bool = True) -> None:

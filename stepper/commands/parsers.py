@@ -16,8 +16,7 @@ from __future__ import annotations
 import argparse
 import math
 from importlib import import_module
-from pathlib import Path
-from typing import Any, Callable
+from typing import TYPE_CHECKING, Any, Callable
 
 from stepper.commands.options import (
     DTYPES,
@@ -34,10 +33,14 @@ from stepper.commands.options import (
     add_slope_options,
     add_step_options,
     add_training_options,
+    path,
     positive_float,
     positive_int,
     whole,
 )
+
+if TYPE_CHECKING:
+    from pathlib import Path
 
 #: Rate for check's layer health when neither --rate nor a checkpoint gives one (common practice).
 HEALTH_RATE = 0.1
@@ -68,6 +71,8 @@ def default_log_file() -> Path:
 
     On Linux that is ``$XDG_STATE_HOME/stepper/open.log`` (``~/.local/state`` by default).
     """
+    from pathlib import Path
+
     import platformdirs
 
     return Path(platformdirs.user_state_path("stepper")) / "open.log"
@@ -132,7 +137,7 @@ def add_open(subs: Any) -> None:
     add_step_options(p, "to start with")
     add_training_options(p)
     add_samples_option(p, help="train on the first N training samples only (not with --journal)")
-    p.add_argument("--journal", type=Path, default=None, metavar="PATH",
+    p.add_argument("--journal", type=path, default=None, metavar="PATH",
                    help="append every operation to this journal file, for stepper replay (default: "
                    "a new journal-<time>.jsonl beside the checkpoints)")
     p.add_argument("--no-journal", action="store_true", help="keep no journal")
@@ -143,8 +148,9 @@ def add_open(subs: Any) -> None:
     p.add_argument("--numeric-budget", type=_budget, default=50.0, metavar="MS",
                    help="milliseconds a numeric pass may take to be redone by itself after every change "
                    "(default 50; 0: only when asked, with #)")
-    p.add_argument("--log", type=Path, default=None, metavar="PATH",
-                   help=f"log file while the app runs (default {default_log_file()})")
+    p.add_argument("--log", type=path, default=None, metavar="PATH",
+                   help="log file while the app runs (default: open.log in the user's state folder, "
+                   "~/.local/state/stepper on Linux)")
     p.set_defaults(handler=_handler("open"))
 
 
@@ -195,8 +201,8 @@ def add_run(subs: Any) -> None:
     p.add_argument("--steps", type=_steps, default=100, metavar="N",
                    help="number of updates (default 100; 0 makes none and reports the state)")
     add_session_options(p, "for the run")
-    p.add_argument("--save", type=Path, default=None, metavar="PATH", help="write a checkpoint at the end")
-    p.add_argument("--journal", type=Path, default=None, metavar="PATH",
+    p.add_argument("--save", type=path, default=None, metavar="PATH", help="write a checkpoint at the end")
+    p.add_argument("--journal", type=path, default=None, metavar="PATH",
                    help="append every operation to this journal file (for stepper replay)")
     p.add_argument("--plot", default=None, metavar="FILE",
                    help="write histograms of each layer's weights, slopes, last updates and activations "
@@ -215,10 +221,10 @@ def add_replay(subs: Any) -> None:
         "replay lists them first, and runs code that is not in the model file's own folder "
         "only with --run-code. Ctrl-C stops a long replay (and still saves with --save).",
     )
-    p.add_argument("journal", type=Path, help="journal file (.jsonl)")
-    p.add_argument("--model", type=Path, default=None,
+    p.add_argument("journal", type=path, help="journal file (.jsonl)")
+    p.add_argument("--model", type=path, default=None,
                    help="model file to start from (default: the one the journal names)")
-    p.add_argument("--save", type=Path, default=None, metavar="PATH", help="write the rebuilt state as a checkpoint")
+    p.add_argument("--save", type=path, default=None, metavar="PATH", help="write the rebuilt state as a checkpoint")
     p.add_argument("--force", action="store_true",
                    help="replay even if the model file, its data or code, or a loaded checkpoint has changed")
     p.add_argument("--run-code", action="store_true",
@@ -283,8 +289,8 @@ def add_export(subs: Any) -> None:
         "the suffix of --to. Exit code: 0 written, 2 bad input.",
     )
     add_model_argument(p)
-    p.add_argument("--resume", type=Path, default=None, metavar="CK", help="the weights of this checkpoint")
-    p.add_argument("--to", type=Path, required=True, metavar="PATH", help="the file to write: .onnx or .safetensors")
+    p.add_argument("--resume", type=path, default=None, metavar="CK", help="the weights of this checkpoint")
+    p.add_argument("--to", type=path, required=True, metavar="PATH", help="the file to write: .onnx or .safetensors")
     p.add_argument("--layout", choices=LAYOUTS, default=None,
                    help="safetensors only: torch (default) or stepper")
     p.add_argument("--dtype", choices=DTYPES, default=None,
@@ -301,7 +307,7 @@ def add_samples(subs: Any) -> None:
         "or R2 and mean absolute error) on the training and validation rows.",
     )
     add_model_argument(p)
-    p.add_argument("--resume", type=Path, default=None, metavar="CK", help="take the weights from a checkpoint")
+    p.add_argument("--resume", type=path, default=None, metavar="CK", help="take the weights from a checkpoint")
     p.add_argument("--worst", type=positive_int, default=10, metavar="N", help="list the N worst rows (default 10)")
     p.add_argument("--all", action="store_true", help="list every row")
     p.add_argument("--split", choices=SPLITS, default="both",

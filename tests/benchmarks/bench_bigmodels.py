@@ -125,10 +125,19 @@ def goal(ok: bool) -> str:
 
 # -- figures -------------------------------------------------------------------------------------
 
-def bench_help(rounds: int) -> None:
-    res = interleaved({"help": [str(BIN / "stepper"), "--help"],
-                       "error": [str(BIN / "stepper"), "check", "--no-such-option"],
-                       "python": [sys.executable, "-c", "pass"]}, rounds)
+def bench_help(rounds: int, stepper: Path) -> None:
+    """``stepper --help`` and an argument error against the same interpreter doing nothing.
+
+    An editable install (``pip install -e``) adds its import hooks to every
+    start of that venv's interpreter (about 40 ms here); ``--stepper`` can point
+    at the command of a plain install (``pip install --no-deps .`` into a fresh
+    venv is enough: --help imports nothing else).
+    """
+    python = stepper.parent / "python"
+    res = interleaved({"help": [str(stepper), "--help"],
+                       "error": [str(stepper), "check", "--no-such-option"],
+                       "python": [str(python), "-c", "pass"]}, rounds)
+    print(f"{stepper}:")
     h, e, p = (med(res[k], 0) * 1000 for k in ("help", "error", "python"))
     print(f"stepper --help: median {h:.0f} ms, peak {med(res['help'], 1):.0f} MB; an argument error: "
           f"{e:.0f} ms; python -c pass: {p:.0f} ms; --help / python = {h / p:.1f}x "
@@ -255,6 +264,8 @@ def main() -> None:
                         choices=["help", "check", "directions", "json", "app", "app10k"])
     parser.add_argument("--quick", action="store_true", help="fewer rounds")
     parser.add_argument("--sizes", nargs="*", default=["1k", "100k", "1M"], choices=list(WIDTHS))
+    parser.add_argument("--stepper", type=Path, default=BIN / "stepper",
+                        help="the stepper command whose --help is timed (default: this venv's)")
     args = parser.parse_args()
     only = set(args.only or ["help", "check", "directions", "json", "app", "app10k"])
     rounds = 3 if args.quick else 5
@@ -262,7 +273,7 @@ def main() -> None:
     with tempfile.TemporaryDirectory() as tmp:
         models = {size: write_model(Path(tmp) / size, WIDTHS[size]) for size in WIDTHS}
         if "help" in only:
-            bench_help(rounds * 4)
+            bench_help(rounds * 4, args.stepper)
         if "check" in only:
             for size in args.sizes:
                 bench_check(models, size, rounds, [["--weights", "1%"]])
