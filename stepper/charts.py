@@ -8,6 +8,8 @@ the whole process: call these from one thread at a time (the app's own).
 
 from __future__ import annotations
 
+import sys
+import types
 from typing import Any, Sequence
 
 import numpy as np
@@ -16,10 +18,31 @@ from stepper.core.histograms import QUANTITIES, Histogram, LayerSpread
 from stepper.core.ratetest import RangeResult
 
 
+def _plotext() -> Any:
+    """plotext, imported without building its documentation object.
+
+    plotext's package import formats its whole documentation (``plotext.doc``),
+    about a tenth of a second and a tenth of the app's start-up; Stepper never
+    reads it, so a placeholder stands in for that one module. Should a plotext
+    laid out otherwise refuse the placeholder, it is imported whole.
+    """
+    docs = "plotext._doc.doc"
+    if "plotext" not in sys.modules and docs not in sys.modules:
+        placeholder = types.ModuleType(docs)
+        placeholder.docs = None  # type: ignore[attr-defined]
+        sys.modules[docs] = placeholder
+        try:
+            import plotext  # type: ignore[import-untyped]  # noqa: F401
+        except ImportError:
+            del sys.modules[docs]
+    import plotext
+
+    return plotext
+
+
 def figure(width: int, height: int) -> Any:
     """plotext's figure, cleared, colourless and ``width`` x ``height`` cells, whatever the terminal."""
-    import plotext  # type: ignore[import-untyped]
-
+    plotext = _plotext()
     fig: Any = plotext.figure
     plotext.terminal.limit(False, False)
     fig.clear()
