@@ -17,6 +17,7 @@ import numpy as np
 import pytest
 
 from stepper.core.network import Network
+from stepper.core.rows import row_losses
 from stepper.formats.model_file import load_setup
 from stepper.session import Session
 
@@ -59,10 +60,13 @@ def test_full_batch_steps_match_plain_descent_with_one_forward_pass_each(setup: 
     assert calls == {f"{data.n_train} rows": 4, f"{data.n_val} rows": 4}
     assert s.theta.tobytes() == theta.tobytes()
     assert [h.train_cost for h in s.history[1:]] == costs
-    # The slopes shown after the last step come from the same pass: no further pass runs.
+    # The slopes and the rows' losses shown after the last step come from the same pass: no further
+    # pass runs on the training rows.
     slopes = s.analytic_slopes()
+    rows = s.rows()
     assert calls[f"{data.n_train} rows"] == 4
     assert slopes.tobytes() == setup.network.cost_and_slopes(theta, data.X, data.Y)[1].tobytes()
+    assert rows.loss.tobytes() == row_losses(setup.network, theta, data.X, data.Y).loss.tobytes()
 
 
 def test_mini_batches_still_take_the_cost_on_every_row(setup: Any, monkeypatch: pytest.MonkeyPatch) -> None:

@@ -53,6 +53,13 @@ def row_losses(net: Network, theta: Array, X: Array, Y: Array) -> RowLosses:
     if n == 0:
         return RowLosses(np.empty(0), np.empty((0, net.n_outputs)), Y)
     A, cache = net.forward(theta, X)[-1]
+    return rows_of_output(net, A, cache, Y)
+
+
+def rows_of_output(net: Network, A: Array, cache: object, Y: Array) -> RowLosses:
+    """:func:`row_losses` from a forward pass already made: the last layer's output ``A``
+    ``(n_samples, n_outputs)`` and cache, against ``Y``."""
+    n = A.shape[0]
     fused = net.fused
     with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
         if fused is not None and isinstance(cache, DenseCache) and net.loss == "categorical_cross_entropy":

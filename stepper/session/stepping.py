@@ -22,13 +22,14 @@ from __future__ import annotations
 
 import math
 import time
-from typing import Iterable, Iterator
+from typing import Any, Iterable, Iterator
 
 import numpy as np
 
 from stepper.core.descent import Update, descent_update, next_batch
 from stepper.core.numeric import Progress, numeric_slopes, run_to_end
 from stepper.core.optimizers import RuleState
+from stepper.core.rows import rows_of_output
 from stepper.errors import CheckpointError, DivergenceError, RunawayError, StepperError, UsageError
 from stepper.formats.journal import STEP_LINE_SECONDS
 from stepper.session.core import Array, SessionCore, StepReport, _Change
@@ -74,7 +75,7 @@ class Stepping(SessionCore):
         # (_batch replaces batch_order when an epoch begins, never changes it in place.)
         saved = (self.batch_rng.bit_generator.state, self.batch_order, self.batch_cursor, self.epoch)
         try:
-            theta, state, cost, slopes = self._next_update()
+            theta, state, cost, passed = self._next_update()
         except BaseException:
             self.batch_rng.bit_generator.state = saved[0]
             self.batch_order, self.batch_cursor, self.epoch = saved[1:]
@@ -85,23 +86,24 @@ class Stepping(SessionCore):
         self.step_count += 1
         self._version += 1
         self._cache["train"] = (self._version, float(cost))
-        if slopes is not None:
-            self._cache["slopes"] = (self._version, slopes)
+        for key, value in passed.items():
+            self._cache[key] = (self._version, value)
         self.history.append(self._entry())
 
-    def _next_update(self) -> tuple[Array, RuleState, float, Array | None]:
+    def _next_update(self) -> tuple[Array, RuleState, float, dict[str, Any]]:
         """The parameters, rule state and training cost after one update; nothing is changed.
 
         Where the next step's slopes are backpropagated on the whole training set
         (the same rows as the cost), the one forward pass at the new parameters
-        gives both: the slopes are returned too (else None), and the next step
-        or redraw does not run the network forward again.
+        gives the cost, those slopes and the training rows' losses: the last two
+        are returned too (a dict of cached values by key, else empty), and the
+        next step or redraw does not run the network forward again.
 
         Raises DivergenceError when the update would make a weight or the cost non-finite.
         """
         X, Y = self._batch()
         data = self.setup.data
-        next_slopes: Array | None = None
+        passed: dict[str, Any] = {}
         with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
             # Overflow is expected on the way to divergence; it is caught just below.
             slopes = self._slopes(X, Y)
@@ -112,7 +114,7 @@ class Stepping(SessionCore):
             if bad.any():
                 cost = math.nan
             elif self.slope_source == "analytic" and self.batch_size is None:
-                cost, next_slopes = self._cost_and_slopes_at(theta)
+                cost, passed = self._cost_and_slopes_at(theta)
             else:
                 cost = self.net.cost(theta, data.X, data.Y)
         if bad.any() or not math.isfinite(cost):
@@ -124,21 +126,24 @@ class Stepping(SessionCore):
                 culprits = tuple(self.names[i] for i in order)
                 what = f"the cost would become non-finite (largest moves: {', '.join(culprits)})"
             raise DivergenceError(f"step refused at rate {update.rate:g}: {what}", culprits)
-        return theta, state, float(cost), next_slopes
+        return theta, state, float(cost), passed
 
-    def _cost_and_slopes_at(self, theta: Array) -> tuple[float, Array | None]:
-        """Training cost at ``theta`` ``(n_params,)``, with the slopes when backpropagation gives them.
+    def _cost_and_slopes_at(self, theta: Array) -> tuple[float, dict[str, Any]]:
+        """Training cost at ``theta`` ``(n_params,)``, and what the same forward pass gives besides.
 
-        A custom layer whose backward raises there does not stop the step (its
-        forward pass worked): the slopes are left for later, as before.
+        The values are by cache key: the training rows' losses (``rows``) and the
+        slopes by backpropagation (``slopes``). A custom layer whose backward
+        raises there does not stop the step (its forward pass worked): the slopes
+        are left for later, as before.
         """
         data = self.setup.data
         trace = self.net.forward(theta, data.X)
+        passed: dict[str, Any] = {"rows": rows_of_output(self.net, trace[-1][0], trace[-1][1], data.Y)}
         try:
-            cost, slopes, _ = self.net.backward(theta, trace, data.Y)
+            cost, passed["slopes"], _ = self.net.backward(theta, trace, data.Y)
         except StepperError:
-            return float(self.net.output_cost(trace[-1][0], trace[-1][1], data.Y)) + self.net.penalty(theta), None
-        return cost, slopes
+            return float(self.net.output_cost(trace[-1][0], trace[-1][1], data.Y)) + self.net.penalty(theta), passed
+        return cost, passed
 
     def _update(self, slopes: Array, rate: float) -> Update:
         """The next step's update at base rate ``rate`` (clipping, rule, schedule, decay); nothing changes."""
