@@ -104,7 +104,8 @@ def draw_range(fig: Any, result: RangeResult) -> None:
         fig.ruler("x").scale("log")
         fig.ruler("x").lim(low / 1.2, high * 1.2)
     pad = 0.05 * (top - lo)
-    fig.ruler("y").lim(lo - pad, top + pad)
+    # Costs are never negative here: keep the axis from showing negative values for them.
+    fig.ruler("y").lim(max(lo - pad, 0.0) if lo >= 0.0 else lo - pad, top + pad)
 
 
 def spreads_text(spreads: Sequence[LayerSpread], width: int = 76, height: int = 12,
