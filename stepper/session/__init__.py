@@ -64,7 +64,7 @@ __all__ = [
 ]
 
 
-class Session(Stepping, Edits, Files, Training, Rates, Measures):
+class Session(Stepping, Training, Edits, Files, Rates, Measures):
     """State of one debugging session over one model.
 
     Attributes (read them, never assign or mutate them from outside):

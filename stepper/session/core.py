@@ -176,14 +176,6 @@ class SessionCore:
         """Clipping, decoupled decay and schedule, as the update uses them."""
         return Descent(self.weight_decay, self.clip_norm, self.schedule)
 
-    def scheduled_rate(self) -> float:
-        """The rate the next step will use: the rate times the schedule's factor."""
-        return self.rate * self.schedule.factor_at(self.step_count)
-
-    def penalty(self) -> float:
-        """The L2 term's part of the training cost."""
-        return self.net.penalty(self.theta)
-
     @property
     def names(self) -> WeightNames:
         """Every weight's name, built when asked for (stepper.core.names)."""
@@ -469,24 +461,6 @@ class SessionCore:
         if "history" not in change.before:
             return ""
         return f": cost {before:.6g} -> {self.history[-1].train_cost:.6g}"
-    def _manual_change(self, name: str, before: dict[str, Any], after: dict[str, Any],
-                       journal: dict[str, Any]) -> None:
-        """Apply ``after``, add the new cost to the history as a point of its own, and commit.
-
-        If the new cost cannot be computed (a custom layer raising on the new
-        values), ``before`` is put back and the error passes on: nothing changed.
-        """
-        start = len(self.history)
-        self._restore(after)
-        try:
-            entry = self._entry()
-        except BaseException:
-            self._restore(before)
-            raise
-        self.history.append(entry)
-        self._commit(_Change(name, {**before, "history": (start, [])}, {**after, "history": (start, [entry])}),
-                     journal)
-
     def _setting(self, name: str, field: str, value: Any, journal: dict[str, Any]) -> None:
         before = self._snapshot([field])
         setattr(self, field, value)

@@ -119,6 +119,24 @@ class Edits(SessionCore):
         after = {"theta_at": (idx, values.copy())}
         self._manual_change(name, before, after, journal)
 
+    def _manual_change(self, name: str, before: dict[str, Any], after: dict[str, Any],
+                       journal: dict[str, Any]) -> None:
+        """Apply ``after``, add the new cost to the history as a point of its own, and commit.
+
+        If the new cost cannot be computed (a custom layer raising on the new
+        values), ``before`` is put back and the error passes on: nothing changed.
+        """
+        start = len(self.history)
+        self._restore(after)
+        try:
+            entry = self._entry()
+        except BaseException:
+            self._restore(before)
+            raise
+        self.history.append(entry)
+        self._commit(_Change(name, {**before, "history": (start, [])}, {**after, "history": (start, [entry])}),
+                     journal)
+
     def set_value(self, index: int, value: float) -> None:
         """Set one parameter to a typed value."""
         if not math.isfinite(value):

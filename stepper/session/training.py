@@ -13,11 +13,19 @@ from typing import Any
 from stepper.core.descent import check_setting
 from stepper.core.schedules import Schedule, ScheduleError, from_dict
 from stepper.errors import UsageError
-from stepper.session.core import SessionCore
+from stepper.session.edits import Edits
 
 
-class Training(SessionCore):
+class Training(Edits):
     """The L2 term, decoupled weight decay, clipping by global slope norm, the rate schedule."""
+
+    def scheduled_rate(self) -> float:
+        """The rate the next step will use: the rate times the schedule's factor."""
+        return self.rate * self.schedule.factor_at(self.step_count)
+
+    def penalty(self) -> float:
+        """The L2 term's part of the training cost."""
+        return self.net.penalty(self.theta)
 
     def set_l2(self, l2: float) -> None:
         """Strength of the L2 term ``(l2 / 2) * sum(w^2)`` over the weights (0 turns it off)."""
