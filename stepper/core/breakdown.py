@@ -30,7 +30,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from stepper.core.health import MOST, SATURATED_BELOW, error_at_inputs
-from stepper.core.layers import Dense, DenseCache
+from stepper.core.layers import Builtin, Dense, DenseCache
 from stepper.core.network import Network
 
 Array = NDArray[np.float64]
@@ -135,13 +135,17 @@ def slope_breakdown(
         sample: the sample to show on its own; default the one with the largest ``|product|``.
 
     Raises:
-        ValueError: the parameter belongs to a custom layer (no unit structure).
+        ValueError: the parameter belongs to a layer other than a dense one (a
+            custom layer, a convolution, a norm, an embedding); the message says why.
         IndexError: ``index`` or ``sample`` is out of range.
     """
     if not 0 <= index < net.n_params:
         raise IndexError(index)
     block = net.layout.block_of(index)
     lay = net.layers[block.layer]
+    if isinstance(lay, Builtin) and not isinstance(lay, Dense):
+        raise ValueError(f"{net.layout.names[index]} belongs to layer {block.layer + 1} ({lay.label}): "
+                         f"{lay.why_no_breakdown()}")
     if not isinstance(lay, Dense):
         raise ValueError(f"{net.layout.names[index]} belongs to a custom layer ({lay.label}), "
                          "which has no units to break its slope down by")

@@ -15,8 +15,14 @@ Per layer (see :class:`LayerHealth`):
   unit does not shrink (it is then merely confident);
 - for ReLU layers, the fraction of dead units: output zero on every sample,
   so no slope reaches their incoming weights;
+- for convolutions the same per output channel: a channel is saturated when
+  its activation slope is below :data:`SATURATED_BELOW` on at least
+  :data:`MOST` of its entries (samples times positions), dead when its ReLU
+  output is zero at every position of every sample (no slope then reaches any
+  of its kernel weights);
 - the root mean square of the error signal at the units' inputs
-  (``dCost/dZ`` for a dense layer, ``dCost/dOut`` for a custom one), and its
+  (``dCost/dZ`` for a dense layer or a convolution, ``dCost/dOut`` for the
+  others), and its
   ratio to the next layer's, which shows whether slopes shrink or grow on the
   way back from the output (the effect studied by Glorot & Bengio, 2010,
   "Understanding the difficulty of training deep feedforward neural networks";
@@ -33,7 +39,7 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
-from stepper.core.layers import Dense, DenseCache
+from stepper.core.layers import Conv, ConvCache, Dense, DenseCache
 from stepper.core.network import Network
 
 Array = NDArray[np.float64]
@@ -63,12 +69,14 @@ class LayerHealth:
         slope_norm: Euclidean norm of the slopes of those arrays.
         update_ratio: ``rate * slope_norm / weight_norm`` (NaN when the weights are all zero
             or the layer has none).
-        saturation: per unit, fraction of samples with activation slope below
-            :data:`SATURATED_BELOW`, ``(n_out,)``; None when the activation cannot saturate.
-        active: per unit, fraction of samples with a positive pre-activation, ``(n_out,)``;
-            None unless the activation is ReLU.
+        saturation: per unit (per channel for a convolution), fraction of samples (times
+            positions) with activation slope below :data:`SATURATED_BELOW`, ``(n_out,)``
+            or ``(channels,)``; None when the activation cannot saturate.
+        active: per unit (or channel), fraction of samples (times positions) with a positive
+            pre-activation; None unless the activation is ReLU.
         signal_rms: root mean square of the error signal at the units' inputs.
         signal_change: ``signal_rms`` over the next layer's (NaN for the last layer).
+        per: ``"unit"``, or ``"channel"`` for a convolution.
     """
 
     index: int
@@ -80,6 +88,7 @@ class LayerHealth:
     active: Array | None
     signal_rms: float
     signal_change: float
+    per: str = "unit"
 
     @property
     def saturated_units(self) -> NDArray[np.int64]:
@@ -164,6 +173,9 @@ def error_at_inputs(net: Network, layer: int, cache: Any, output_slope: Array, Y
     ``dCost/dOut`` is returned and the flag is False.
     """
     lay = net.layers[layer]
+    if isinstance(lay, Conv) and isinstance(cache, ConvCache):
+        dZ = lay.activation.vjp(cache.Z, cache.A, output_slope.reshape(cache.Z.shape))
+        return dZ.reshape(output_slope.shape), True
     if not isinstance(lay, Dense) or not isinstance(cache, DenseCache):
         return output_slope, False
     fused = net.fused
@@ -191,14 +203,19 @@ def layer_health(net: Network, theta: Array, X: Array, Y: Array, rate: float) ->
         saturation: Array | None = None
         active: Array | None = None
         cache = trace[i][1]
-        if isinstance(lay, Dense) and isinstance(cache, DenseCache):
+        per = "unit"
+        if isinstance(lay, (Dense, Conv)) and isinstance(cache, (DenseCache, ConvCache)):
             act = lay.activation
             fused_output = i == len(net.layers) - 1 and net.fused is not None
+            # Dense: (n, units), reduced over samples; convolution: (n, channels, positions),
+            # reduced over samples and positions.
+            axes = (0,) if isinstance(cache, DenseCache) else (0, 2)
+            per = "unit" if isinstance(cache, DenseCache) else "channel"
             if act.saturates and act.derivative is not None and not fused_output:
-                saturation = np.mean(act.derivative(cache.Z, cache.A) < SATURATED_BELOW, axis=0)
+                saturation = np.mean(act.derivative(cache.Z, cache.A) < SATURATED_BELOW, axis=axes)
             if act.name == "relu":
-                active = np.mean(cache.Z > 0.0, axis=0)
+                active = np.mean(cache.Z > 0.0, axis=axes)
         change = signals[i] / signals[i + 1] if i + 1 < len(signals) and signals[i + 1] > 0 else float("nan")
-        out.append(LayerHealth(i, lay.label, w_norm, g_norm, ratio, saturation, active, signals[i], change))
+        out.append(LayerHealth(i, lay.label, w_norm, g_norm, ratio, saturation, active, signals[i], change, per))
     travel = signals[0] / signals[-1] if len(signals) > 1 and signals[-1] > 0 else float("nan")
     return HealthReport(float(rate), tuple(out), travel)

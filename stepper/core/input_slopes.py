@@ -25,7 +25,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from stepper.core.compare import Thresholds, judge, noise_level, verdict_counts
-from stepper.core.layers import Dense, DenseCache
+from stepper.core.layers import Builtin, DenseCache
 from stepper.core.network import Network
 from stepper.core.numeric import METHODS, default_step
 
@@ -136,10 +136,8 @@ def check_input_slopes(
     rows = spread_samples(X_in.shape[0], n_samples)
     n = X_in.shape[0]
     base = per_sample_costs(net, trace[-1][0], trace[-1][1], Y)
-    kinked_layers = [
-        i for i in range(layer + 1, len(net.layers))
-        if isinstance(net.layers[i], Dense) and net.layers[i].activation.kink  # type: ignore[attr-defined]
-    ]
+    kinked_layers = [i for i in range(layer + 1, len(net.layers))
+                     if isinstance(net.layers[i], Builtin) and net.layers[i].has_kinks]  # type: ignore[attr-defined]
     numeric = np.empty((rows.size, lay.n_in))
     kink = np.zeros((rows.size, lay.n_in), dtype=bool)
     work = np.array(X_in, dtype=np.float64, copy=True)
@@ -180,7 +178,8 @@ def _moved(
     run = net.forward(theta, work, start=layer)
     crossed = False
     for index in kinked_layers:
-        Z_now = run[index - layer][1].Z
-        crossed = crossed or bool(np.any((Z_now > 0.0) != (trace[index][1].Z > 0.0)))
+        lay = net.layers[index]
+        assert isinstance(lay, Builtin)
+        crossed = crossed or bool(lay.crossed(trace[index][1], run[index - layer][1], 1)[0])
     A, cache = run[-1]
     return per_sample_costs(net, A, cache, Y), crossed

@@ -22,6 +22,7 @@ do, so the check compares slopes of the same cost).
 
 from __future__ import annotations
 
+import copy
 import math
 import re
 from dataclasses import dataclass, field
@@ -31,7 +32,7 @@ from typing import TYPE_CHECKING, Any, Sequence
 import numpy as np
 from numpy.typing import NDArray
 
-from stepper.core.layers import Dense, DenseCache, Layer, Params
+from stepper.core.layers import Builtin, Dense, DenseCache, Dropout, Layer, Mode, ParamSpec, Params
 from stepper.core.losses import FUSED, LOSSES, FusedLoss, Loss
 
 if TYPE_CHECKING:
@@ -47,9 +48,11 @@ class Block:
     Attributes:
         layer: 0-based layer index.
         key: array key inside the layer (``"W"``, ``"b"``, ...).
-        kind: ``"weight"`` or ``"bias"``.
+        kind: ``"weight"`` or ``"bias"`` (``"state"`` for a layer's kept arrays).
         shape: the array's shape.
         start: offset of its first entry in ``theta``.
+        fans: ``(fan_in, fan_out)`` for the initialisation schemes, or None.
+        fill: a constant starting value, or None.
     """
 
     layer: int
@@ -57,6 +60,8 @@ class Block:
     kind: str
     shape: tuple[int, ...]
     start: int
+    fans: tuple[int, int] | None = None
+    fill: float | None = None
 
     @cached_property
     def size(self) -> int:
@@ -75,15 +80,23 @@ class Block:
 _NAME = re.compile(r"^L(\d+)\.(\w+)\[([\d,\s]+)\]$")
 
 
-class ParamLayout:
-    """Where each layer's arrays sit in the flat parameter vector."""
+def _state_specs(layer: Layer) -> tuple[ParamSpec, ...]:
+    return layer.state_specs() if isinstance(layer, Builtin) else ()
 
-    def __init__(self, layers: Sequence[Layer]) -> None:
+
+class ParamLayout:
+    """Where each layer's arrays sit in the flat parameter vector.
+
+    With ``state=True``, the layout of the arrays layers keep besides their
+    weights instead (a batch norm's running statistics, ``L2.running_mean``).
+    """
+
+    def __init__(self, layers: Sequence[Layer], state: bool = False) -> None:
         blocks: list[Block] = []
         start = 0
         for index, layer in enumerate(layers):
-            for spec in layer.param_specs():
-                block = Block(index, spec.key, spec.kind, tuple(spec.shape), start)
+            for spec in (_state_specs(layer) if state else layer.param_specs()):
+                block = Block(index, spec.key, spec.kind, tuple(spec.shape), start, spec.fans, spec.fill)
                 blocks.append(block)
                 start = block.stop
         self.blocks: tuple[Block, ...] = tuple(blocks)
@@ -168,18 +181,36 @@ class Network:
         layers: the layers in order; layer ``i`` feeds layer ``i + 1``.
         loss: key into :data:`stepper.core.losses.LOSSES`.
         l2: strength of the L2 term in the cost (0: none); see the module docstring.
+        input_shape: how each input row is read by shaped layers (channels
+            first, e.g. ``(1, 8, 8)``); ``(n_inputs,)`` when flat.
+        mode: how the network runs (training at step 0 unless made by :meth:`at`).
+        layout: where each parameter sits in ``theta``.
+        state_layout: where each kept array (running statistics) sits in a state vector.
     """
 
     n_inputs: int
     layers: list[Layer]
     loss: str
     l2: float = 0.0
+    input_shape: tuple[int, ...] | None = None
+    mode: Mode = field(default_factory=Mode)
     layout: ParamLayout = field(init=False)
+    state_layout: ParamLayout = field(init=False)
 
     def __post_init__(self) -> None:
         self.layout = ParamLayout(self.layers)
+        self.state_layout = ParamLayout(self.layers, state=True)
         if self.loss not in LOSSES:
             raise KeyError(self.loss)
+        if self.input_shape is None:
+            self.input_shape = (self.n_inputs,)
+        if math.prod(self.input_shape) != self.n_inputs:
+            raise ValueError(f"input shape {self.input_shape} does not hold {self.n_inputs} inputs")
+        width = self.n_inputs
+        for index, layer in enumerate(self.layers):
+            if layer.n_in != width:
+                raise ValueError(f"layer {index + 1} takes {layer.n_in} inputs but receives {width}")
+            width = layer.n_out
 
     @property
     def n_params(self) -> int:
@@ -206,6 +237,65 @@ class Network:
         while len(views) < len(self.layers):
             views.append({})
         return views
+
+    # -- modes and kept state ----------------------------------------------------------------
+
+    @property
+    def has_state(self) -> bool:
+        """True when some layer keeps arrays besides its weights (batch norm's running statistics)."""
+        return self.state_layout.size > 0
+
+    @property
+    def varies_by_step(self) -> bool:
+        """True when the training cost depends on the step count (dropout masks)."""
+        return any(isinstance(layer, Dropout) and layer.rate > 0 for layer in self.layers)
+
+    def initial_state(self) -> Array:
+        """The kept arrays at the start, ``(n_state,)``: running means 0, running variances 1."""
+        state = np.zeros(self.state_layout.size)
+        for block in self.state_layout.blocks:
+            state[block.start : block.stop] = block.fill or 0.0
+        return state
+
+    def state_views(self, state: Array) -> list[Params]:
+        views = self.state_layout.views(state)
+        while len(views) < len(self.layers):
+            views.append({})
+        return views
+
+    def at(self, training: bool = True, step: int = 0, state: Array | None = None) -> "Network":
+        """This network as it runs in training (at update ``step``) or in evaluation, with kept arrays ``state``.
+
+        The copy shares the layout; only layers that depend on the mode change
+        (dropout masks, batch norm's statistics). ``state`` defaults to
+        :meth:`initial_state`.
+        """
+        mode = Mode(training, step)
+        views = self.state_views(self.initial_state() if state is None else state)
+        twin = copy.copy(self)
+        twin.mode = mode
+        twin.layers = [layer.bind(mode, views[i]) if isinstance(layer, Builtin) else layer
+                       for i, layer in enumerate(self.layers)]
+        return twin
+
+    def next_state(self, theta: Array, X: Array, state: Array) -> Array:
+        """The kept arrays after one training step on ``X`` ``(n, n_inputs)`` at ``theta``; ``(n_state,)``.
+
+        Runs the forward pass in training mode (the batch statistics of the
+        step) and lets each layer update what it keeps.
+        """
+        if not self.has_state:
+            return state
+        net = self.at(True, self.mode.step, state)
+        trace = net.forward(theta, X)
+        out = state.copy()
+        new_views = self.state_views(out)
+        old_views = self.state_views(state)
+        for index, layer in enumerate(net.layers):
+            if isinstance(layer, Builtin) and old_views[index]:
+                for key, value in layer.next_state(trace[index][1], old_views[index]).items():
+                    new_views[index][key][...] = value
+        return out
 
     # -- forward ---------------------------------------------------------------------------
 
@@ -322,11 +412,10 @@ class Network:
         return cost, grads, output_slopes
 
     def _layer_backward(self, index: int, params: list[Params], cache: Any, dOut: Array) -> tuple[Params, Array]:
-        """One layer's backward; a dense first layer skips its unused input slopes ``dX``."""
+        """One layer's backward; a built-in first layer skips its unused input slopes ``dX``."""
         layer = self.layers[index]
-        if index == 0 and isinstance(layer, Dense) and isinstance(cache, DenseCache):
-            dZ = layer.activation.vjp(cache.Z, cache.A, dOut)
-            return layer.backward_from_z(params[0], cache, dZ, input_slopes=False)
+        if isinstance(layer, Builtin):
+            return layer.backward(params[index], cache, dOut, need_dx=index > 0)
         return layer.backward(params[index], cache, dOut)
 
     @staticmethod

@@ -21,7 +21,11 @@ column ``j`` of that layer's pre-activation, by ``h * X[:, i]``. So the layers
 before ``l`` are never recomputed (their outputs are cached), layer ``l`` is
 updated one column at a time, the next dense layer receives a rank-one change,
 and only the layers after that are run in full -- for a whole chunk of
-perturbations at once, stacked on a leading axis. Parameters of custom layers
+perturbations at once, stacked on a leading axis. Parameters of other built-in
+layers (convolutions, norms, embeddings) and of dense layers followed by them
+take the general stacked path of :mod:`stepper.core.stacked`: the layers before
+are never recomputed either, the perturbed layer makes all copies' outputs at
+once, and every later layer runs once per chunk. Parameters of custom layers
 fall back to re-running the network from that layer on, one at a time.
 
 Memory. The stacked arrays of a chunk live in two buffers that are reused from
@@ -43,8 +47,10 @@ from typing import Any, Callable, Generator, Iterable, Iterator, TypeVar
 import numpy as np
 from numpy.typing import NDArray
 
-from stepper.core.layers import Dense, DenseCache
+from stepper.core.layers import Builtin, Dense, DenseCache
 from stepper.core.network import Network
+from stepper.core.stacked import chunk_size as stacked_chunk_size
+from stepper.core.stacked import stacked_costs
 
 Array = NDArray[np.float64]
 T = TypeVar("T")
@@ -209,26 +215,21 @@ def iter_numeric_slopes(
         if in_block.size == 0:
             continue
         layer = net.layers[block.layer]
-        if isinstance(layer, Dense):
-            if block.layer + 1 < len(net.layers):
-                _prepare_reach(net, params, trace, block.layer, work.reach)
-            chunk = _chunk_size(net, block.layer, X.shape[0])
-            pieces = [in_block[lo : lo + chunk] for lo in range(0, in_block.size, chunk)]
-
-            def one_piece(
-                idx: NDArray[np.int64], space: _Workspace, block: Any = block
-            ) -> tuple[NDArray[np.int64], Array, NDArray[np.bool_]]:
-                plus, kink_p = _dense_costs(net, params, trace, block, idx, +step, Y, space)
-                plus = plus + net.penalty_at(theta, base_penalty, idx, +step)
-                if method == "central":
-                    minus, kink_m = _dense_costs(net, params, trace, block, idx, -step, Y, space)
-                    minus = minus + net.penalty_at(theta, base_penalty, idx, -step)
-                    return idx, (plus - minus) / (2.0 * step), kink_p | kink_m
-                return idx, (plus - base_cost) / step, kink_p
-
+        later = net.layers[block.layer :]
+        if isinstance(layer, Builtin):
             # Several threads only where no custom layer follows: a user's
             # layer is never run from two threads at once.
-            parallel = all(isinstance(later, Dense) for later in net.layers[block.layer :])
+            parallel = all(isinstance(lay, Builtin) for lay in later)
+            if all(isinstance(lay, Dense) for lay in later):
+                if block.layer + 1 < len(net.layers):
+                    _prepare_reach(net, params, trace, block.layer, work.reach)
+                chunk = _chunk_size(net, block.layer, X.shape[0])
+                one_piece = _dense_piece(net, params, trace, block, step, method, base_cost, Y, theta, base_penalty)
+            else:
+                chunk = stacked_chunk_size(net, block.layer, X.shape[0])
+                one_piece = _stacked_piece(net, params, trace, inputs, block, step, method, base_cost, Y, theta,
+                                           base_penalty)
+            pieces = [in_block[lo : lo + chunk] for lo in range(0, in_block.size, chunk)]
             for idx, values, kinks in _pieces(one_piece, pieces, spaces if parallel else spaces[:1]):
                 slopes[idx] = values
                 kink[idx] = kinks
@@ -251,6 +252,47 @@ def iter_numeric_slopes(
                     yield done, total
     del params
     return NumericSlopes(slopes, kink, method, step, computed)
+
+
+Piece = Callable[[NDArray[np.int64], "_Workspace"], tuple[NDArray[np.int64], Array, NDArray[np.bool_]]]
+
+
+def _dense_piece(net: Network, params: list[dict[str, Array]], trace: list[tuple[Array, Any]], block: Any,
+                 step: float, method: str, base_cost: float, Y: Array, theta: Array, base_penalty: float) -> Piece:
+    """Slopes of one chunk of a dense block followed only by dense layers (the rank-one path).
+
+    The costs include the L2 term at each moved point (``base_penalty`` is its value at ``theta``).
+    """
+
+    def one_piece(idx: NDArray[np.int64], space: _Workspace) -> tuple[NDArray[np.int64], Array, NDArray[np.bool_]]:
+        plus, kink_p = _dense_costs(net, params, trace, block, idx, +step, Y, space)
+        plus = plus + net.penalty_at(theta, base_penalty, idx, +step)
+        if method == "central":
+            minus, kink_m = _dense_costs(net, params, trace, block, idx, -step, Y, space)
+            minus = minus + net.penalty_at(theta, base_penalty, idx, -step)
+            return idx, (plus - minus) / (2.0 * step), kink_p | kink_m
+        return idx, (plus - base_cost) / step, kink_p
+
+    return one_piece
+
+
+def _stacked_piece(net: Network, params: list[dict[str, Array]], trace: list[tuple[Array, Any]],
+                   inputs: list[Array], block: Any, step: float, method: str, base_cost: float,
+                   Y: Array, theta: Array, base_penalty: float) -> Piece:
+    """Slopes of one chunk of any other built-in block (:mod:`stepper.core.stacked`), with the L2 term."""
+
+    def one_piece(idx: NDArray[np.int64], space: _Workspace) -> tuple[NDArray[np.int64], Array, NDArray[np.bool_]]:
+        local = idx - block.start
+        moves = np.full(idx.size, step)
+        plus, kink_p = stacked_costs(net, params, trace, inputs, block.layer, block.key, local, moves, Y)
+        plus = plus + net.penalty_at(theta, base_penalty, idx, +step)
+        if method == "central":
+            minus, kink_m = stacked_costs(net, params, trace, inputs, block.layer, block.key, local, -moves, Y)
+            minus = minus + net.penalty_at(theta, base_penalty, idx, -step)
+            return idx, (plus - minus) / (2.0 * step), kink_p | kink_m
+        return idx, (plus - base_cost) / step, kink_p
+
+    return one_piece
 
 
 #: Threads that evaluate chunks of perturbations side by side (see :func:`set_workers`).
@@ -465,12 +507,6 @@ def _dense_costs(
             return net.output_cost(A, DenseCache(_NOTHING, Z, A), Y), kinked
         A = dense.activation.apply_in_place(Z)
         index += 1
-        while not isinstance(net.layers[index], Dense):
-            custom = net.layers[index]
-            A = np.stack([custom.forward(params[index], A[i])[0] for i in range(k)])
-            if index == n_layers - 1:
-                return net.output_cost(A, None, Y), kinked
-            index += 1
         dense = net.layers[index]
         assert isinstance(dense, Dense)
         slot = 1 - slot

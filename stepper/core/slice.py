@@ -23,18 +23,21 @@ of that one, ``C(w)``, around its current value ``w0``:
 
 All sweep points are evaluated together: for a weight of a dense layer only
 that layer's pre-activation column changes, so the layers before it run once
-and the layers after it run on all points stacked on a leading axis.
+and the layers after it run on all points stacked on a leading axis; the other
+built-in layers do the same through :mod:`stepper.core.stacked`.
 """
 
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
 
-from stepper.core.layers import Dense, DenseCache
-from stepper.core.network import Network
+from stepper.core.layers import Builtin, Dense, DenseCache
+from stepper.core.network import Block, Network
+from stepper.core.stacked import chunk_size, stacked_costs
 
 Array = NDArray[np.float64]
 
@@ -200,8 +203,10 @@ def costs_at_offsets(
     for a bias); when its activation is elementwise and a dense layer follows,
     that layer's pre-activation gets a rank-one change; the rest of the network
     runs on all offsets stacked.
-    Parameters of other layers are moved one offset at a time. The costs include
-    the network's L2 term at each moved point.
+    Parameters of other built-in layers, or of a dense layer followed by them,
+    go through :func:`stepper.core.stacked.stacked_costs`; parameters of custom
+    layers are moved one offset at a time. The costs include the network's L2
+    term at each moved point.
     """
     offsets = np.asarray(offsets, dtype=np.float64).ravel()
     data = _data_costs_at_offsets(net, theta, X, Y, index, offsets)
@@ -216,8 +221,10 @@ def _data_costs_at_offsets(
     layer = net.layers[block.layer]
     trace = net.forward(theta, X)
     inputs = X if block.layer == 0 else trace[block.layer - 1][0]
-    if not isinstance(layer, Dense):
+    if not isinstance(layer, Builtin):
         return _costs_one_by_one(net, theta, inputs, Y, block.layer, index, offsets)
+    if not (isinstance(layer, Dense) and all(isinstance(lay, Dense) for lay in net.layers[block.layer:])):
+        return _stacked(net, theta, X, trace, block, index, offsets, Y)
     cache: DenseCache = trace[block.layer][1]
     local = index - block.start
     if block.key == "W":
@@ -256,14 +263,25 @@ def _data_costs_at_offsets(
             start = nxt
         for later in range(start, len(net.layers)):
             lay = net.layers[later]
-            if isinstance(lay, Dense):
-                Z = lay.pre_activation(params[later], A)
-                A = lay.activation.fn(Z)
-                last = DenseCache(np.empty(0), Z, A)
-            else:
-                A = np.stack([lay.forward(params[later], A[i])[0] for i in range(part.size)])
-                last = None
+            assert isinstance(lay, Dense)
+            Z = lay.pre_activation(params[later], A)
+            A = lay.activation.fn(Z)
+            last = DenseCache(np.empty(0), Z, A)
         out[lo : lo + part.size] = net.output_cost(A, last, Y)
+    return out
+
+
+def _stacked(net: Network, theta: Array, X: Array, trace: list[tuple[Array, Any]], block: Block, index: int,
+             offsets: Array, Y: Array) -> Array:
+    """Costs at every offset of one parameter of a built-in layer, a chunk of offsets at a time."""
+    params = net.views(theta)
+    inputs = [X] + [out for out, _ in trace[:-1]]
+    chunk = chunk_size(net, block.layer, X.shape[0])
+    out = np.empty(offsets.size)
+    for lo in range(0, offsets.size, chunk):
+        part = offsets[lo : lo + chunk]
+        local = np.full(part.size, index - block.start, dtype=np.int64)
+        out[lo : lo + part.size] = stacked_costs(net, params, trace, inputs, block.layer, block.key, local, part, Y)[0]
     return out
 
 

@@ -1,62 +1,20 @@
-"""Layers: the dense layer, and the interface every layer (built-in or custom) meets.
+"""The dense (fully connected) layer.
 
-Shapes: a layer maps inputs ``X`` of shape ``(n_samples, n_in)`` to outputs of
-shape ``(n_samples, n_out)``. The dense layer also accepts extra leading axes,
-``(k, n_samples, n_in)``, which the numeric slopes use to push many perturbed
-copies through the network in one numpy call.
+Shapes: inputs ``X`` of shape ``(n_samples, n_in)`` to outputs of shape
+``(n_samples, n_out)``; extra leading axes, ``(k, n_samples, n_in)``, are
+accepted so that many perturbed copies of a network run in one numpy call.
 """
 
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Any, Protocol
+from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
 
 from stepper.core.activations import Activation
-
-Array = NDArray[np.float64]
-Params = dict[str, Array]
-
-
-@dataclass(frozen=True)
-class ParamSpec:
-    """One named parameter array of a layer.
-
-    Attributes:
-        key: short name inside the layer, e.g. ``"W"`` or ``"b"``.
-        shape: array shape.
-        kind: ``"weight"`` or ``"bias"``.
-    """
-
-    key: str
-    shape: tuple[int, ...]
-    kind: str = "weight"
-
-
-class Layer(Protocol):
-    """What the network needs from a layer.
-
-    ``forward`` returns the output and an opaque cache; ``backward`` takes that
-    cache and the slope of the cost w.r.t. the output, and returns the slopes
-    w.r.t. each parameter (same shapes as the parameters) and w.r.t. the input.
-    """
-
-    @property
-    def n_in(self) -> int: ...
-
-    @property
-    def n_out(self) -> int: ...
-
-    @property
-    def label(self) -> str: ...
-
-    def param_specs(self) -> tuple[ParamSpec, ...]: ...
-
-    def forward(self, params: Params, X: Array) -> tuple[Array, Any]: ...
-
-    def backward(self, params: Params, cache: Any, dOut: Array) -> tuple[Params, Array]: ...
+from stepper.core.layers.base import Array, Builtin, Flags, ParamSpec, Params, differs
 
 
 @dataclass(frozen=True)
@@ -75,7 +33,7 @@ class DenseCache:
 
 
 @dataclass(frozen=True)
-class Dense:
+class Dense(Builtin):
     """A fully connected layer ``A = activation(X @ W + b)``.
 
     ``W`` has shape ``(n_in, n_out)``: ``W[i, j]`` carries input ``i`` to unit ``j``.
@@ -87,12 +45,30 @@ class Dense:
     activation: Activation
     bias: bool = True
 
+    type_name = "dense"
+
+    @property
+    def in_shape(self) -> tuple[int, ...]:
+        return (self.n_in,)
+
+    @property
+    def out_shape(self) -> tuple[int, ...]:
+        return (self.n_out,)
+
+    @property
+    def has_kinks(self) -> bool:  # type: ignore[override]
+        return self.activation.kink
+
     @property
     def label(self) -> str:
         return f"dense {self.n_in}->{self.n_out} {self.activation.name}"
 
+    @property
+    def kind(self) -> str:
+        return f"{self.activation.name} {self.n_in}->{self.n_out}"
+
     def param_specs(self) -> tuple[ParamSpec, ...]:
-        specs = [ParamSpec("W", (self.n_in, self.n_out), "weight")]
+        specs = [ParamSpec("W", (self.n_in, self.n_out), "weight", fans=(self.n_in, self.n_out))]
         if self.bias:
             specs.append(ParamSpec("b", (self.n_out,), "bias"))
         return tuple(specs)
@@ -114,9 +90,9 @@ class Dense:
         A = self.activation.fn(Z)
         return A, DenseCache(X, Z, A)
 
-    def backward(self, params: Params, cache: DenseCache, dOut: Array) -> tuple[Params, Array]:
+    def backward(self, params: Params, cache: DenseCache, dOut: Array, need_dx: bool = True) -> tuple[Params, Array]:
         dZ = self.activation.vjp(cache.Z, cache.A, dOut)
-        return self.backward_from_z(params, cache, dZ)
+        return self.backward_from_z(params, cache, dZ, need_dx)
 
     def backward_from_z(
         self, params: Params, cache: DenseCache, dZ: Array, input_slopes: bool = True
@@ -130,3 +106,29 @@ class Dense:
         if self.bias:
             grads["b"] = dZ.sum(axis=0)
         return grads, (dZ @ params["W"].T if input_slopes else np.empty((0, self.n_in)))
+
+    def crossed(self, base: DenseCache, moved: DenseCache, k: int) -> Flags:
+        if not self.activation.kink:
+            return np.zeros(k, dtype=bool)
+        return differs(base.Z > 0.0, moved.Z > 0.0, k)
+
+    def perturbed(
+        self, params: Params, X: Array, cache: Any, key: str, local: NDArray[np.int64], delta: Array
+    ) -> tuple[Array, Flags]:
+        """Each copy changes one column of ``Z``: by ``delta * X[:, i]`` for ``W[i, j]``, ``delta`` for ``b[j]``."""
+        k = local.size
+        if key == "W":
+            rows, units = np.divmod(local, self.n_out)
+            column = X.T[rows] * delta[:, None]  # (k, n)
+        else:
+            units = local
+            column = np.broadcast_to(delta[:, None], (k, X.shape[0]))
+        Z = np.broadcast_to(cache.Z, (k,) + cache.Z.shape).copy()  # (k, n, n_out)
+        copies = np.arange(k)
+        z_base = Z[copies, :, units]  # (k, n)
+        z_col = z_base + column
+        Z[copies, :, units] = z_col
+        kinked = np.zeros(k, dtype=bool)
+        if self.activation.kink:
+            kinked = np.any((z_col > 0.0) != (z_base > 0.0), axis=1)
+        return self.activation.apply_in_place(Z), kinked
