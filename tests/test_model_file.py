@@ -167,8 +167,7 @@ MISTAKES = [
      "layers[0].activation (L1): unknown 'relu6' (expected one of: identity, sigmoid, tanh, relu, leaky_relu, "
      "softplus, softmax)"),
     ('activation = "tanh"', 'activation = "tanh"\nshape = "round"',
-     "layers[0].shape (L1): unknown key (allowed: activation, bias, biases, class, file, options, type, units, "
-     "weights)"),
+     "layers[0].shape (L1): unknown key (a dense layer takes: activation, bias, biases, type, units, weights)"),
     ("units = 4", 'units = "three"', "layers[0].units (L1): expected an integer, got the string 'three'"),
     ("units = 4", "units = 4.0", "layers[0].units (L1): expected an integer, got a number"),
     ("units = 4", "units = true", "layers[0].units (L1): expected an integer, got a boolean"),
@@ -179,7 +178,8 @@ MISTAKES = [
     ('activation = "tanh"', 'activation = "tanh"\nclass = "Mine"',
      'layers[0].class (L1): only a layer with type = "custom" takes this key'),
     ('activation = "tanh"', 'activation = "tanh"\ntype = "conv"',
-     "layers[0].type (L1): unknown 'conv' (expected one of: dense, custom)"),
+     "layers[0].type (L1): unknown 'conv' (expected one of: dense, conv1d, conv2d, max_pool, avg_pool, "
+     "flatten, dropout, layer_norm, batch_norm, embedding, custom)"),
     ("units = 1\n", "units = 2\n",
      "layers[1].units (L2): the last layer has 2 units but [data].targets names 1 column(s); they must match; "
      "if 'y' holds class numbers, end with a softmax layer of 2 units and Stepper builds the one-hot targets "
@@ -198,8 +198,8 @@ MISTAKES = [
      "data.seed: -2 is negative (a seed is a whole number, 0 or more)"),
     ('targets = ["y"]', 'targets = ["y"]\nstandardize = 1', "data.standardize: expected true or false, got an integer"),
     ("[data]\n", "[data]\nrows = 3\n",
-     "data.rows: unknown key (allowed: file, inputs, seed, standardize, targets, validation_column, "
-     "validation_file, validation_fraction)"),
+     "data.rows: unknown key (allowed: file, input_shape, inputs, seed, standardize, targets, "
+     "validation_column, validation_file, validation_fraction)"),
     ('[init]\nscheme = "glorot_uniform"\nseed = 4\n', "", "init: missing: give [init] scheme and seed, or "
      "inline weights for every layer"),
     ('scheme = "glorot_uniform"', 'scheme = "zeros"',

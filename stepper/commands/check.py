@@ -20,7 +20,7 @@ from stepper.core.gradcheck import CheckResult, iter_check
 from stepper.core.health import RATIO_TYPICAL, HealthReport, layer_health
 from stepper.core.input_slopes import InputSlopeCheck, check_input_slopes
 from stepper.core.gemm import ScaledDense
-from stepper.core.layers import Dense
+from stepper.core.layers import Builtin, Dense, is_builtin
 from stepper.core.names import name_at
 from stepper.core.network import Network
 from stepper.core.numeric import run_to_end
@@ -70,7 +70,7 @@ def handle(args: argparse.Namespace) -> int:
         health = layer_health(net, theta, X, Y, rate)
         inputs = [
             check_input_slopes(net, theta, X, Y, i, args.input_samples, args.method, args.delta)
-            for i, layer in enumerate(net.layers) if not isinstance(layer, (Dense, ScaledDense))
+            for i, layer in enumerate(net.layers) if not is_builtin(layer)
         ]
     passed = ((result is None or result.passed) and (directions is None or directions.passed)
               and all(c.passed for c in inputs) and doubtful_count(result, directions, inputs) == 0)
@@ -110,7 +110,7 @@ def listed_rows(result: CheckResult | None, choice: WeightChoice | None, worst: 
 
 
 def layer_summary(net: Network) -> list[dict[str, Any]]:
-    """Per layer: inputs, units, activation (or custom class), bias."""
+    """Per layer: inputs, units, type (dense with its activation and bias, a built-in layer's shapes, or custom)."""
     out: list[dict[str, Any]] = []
     n_in = net.n_inputs
     for i, layer in enumerate(net.layers):
@@ -119,6 +119,9 @@ def layer_summary(net: Network) -> list[dict[str, Any]]:
             entry.update(type="dense", activation=layer.activation.name, bias=layer.bias)
             if isinstance(layer, ScaledDense):
                 entry.update(alpha=layer.alpha, beta=layer.beta)
+        elif isinstance(layer, Builtin):
+            entry.update(type=layer.type_name, label=layer.label, input_shape=list(layer.in_shape),
+                         output_shape=list(layer.out_shape), bias=any(s.kind == "bias" for s in layer.param_specs()))
         else:
             entry.update(type="custom", label=layer.label, bias=False)
         out.append(entry)

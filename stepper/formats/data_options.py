@@ -12,6 +12,7 @@ Keys (see also :mod:`stepper.formats.model_file`)::
     seed = 7                          #   (seeds that share)
     validation_file = "val.csv"       # optional: the user's own validation rows
     validation_column = "holdout"     # optional: 1 marks a validation row, 0 a training row
+    input_shape = [1, 8, 8]           # optional: how convolutions read each row (channels first)
 
 At most one of ``validation_fraction``, ``validation_file`` and
 ``validation_column`` is given. :func:`fit_data` then fits the data to the
@@ -29,16 +30,22 @@ import numpy as np
 from numpy.typing import NDArray
 
 from stepper.core.network import Network
+from stepper.errors import DataFileError
 from stepper.formats.dataset import Dataset, Table, build_dataset, read_columns
 
 Array = NDArray[np.float64]
 
 DATA_KEYS = {"file", "inputs", "targets", "standardize", "validation_fraction", "seed",
-             "validation_file", "validation_column"}
+             "validation_file", "validation_column", "input_shape"}
 
 
-def load_data(model_path: Path, keys: Any) -> Dataset:
-    """The dataset that ``[data]`` describes; ``keys`` is its ``model_file._Keys``."""
+def load_data(model_path: Path, keys: Any, categories: tuple[list[str], int] | None = None) -> Dataset:
+    """The dataset that ``[data]`` describes; ``keys`` is its ``model_file._Keys``.
+
+    ``categories``: an embedding's category columns and category count, if the
+    first layer is one; those columns must hold category numbers, and are never
+    standardized.
+    """
     csv_path = _file(model_path, keys, "file")
     targets = keys.names("targets")
     column = keys.get("validation_column", str, None)
@@ -87,7 +94,23 @@ def load_data(model_path: Path, keys: Any) -> Dataset:
         holdout = np.concatenate([np.zeros(len(table.values), bool), np.ones(len(val.values), bool)])
         table = Table(table.header, np.concatenate([table.values, val.values]), tuple(wanted))
         source = f"{csv_path} (validation rows: {val_path})"
-    return build_dataset(table, inputs, targets, standardize, fraction, seed, source, holdout)
+    raw: list[str] = []
+    if categories is not None:
+        raw = [c for c in categories[0] if c in inputs]
+        _check_categories(table, raw, categories[1], source)
+    return build_dataset(table, inputs, targets, standardize, fraction, seed, source, holdout, raw)
+
+
+def _check_categories(table: Table, columns: list[str], count: int, label: str) -> None:
+    """Every cell of ``columns`` is a whole number from 0 to ``count - 1``; else a DataFileError naming it."""
+    for name in columns:
+        values = table.values[:, table.columns.index(name)]
+        bad = np.flatnonzero((values != np.round(values)) | (values < 0) | (values >= count))
+        if bad.size:
+            row = int(bad[0])
+            raise DataFileError(f"{label}: line {row + 2}, column '{name}': {values[row]:g} is not a category "
+                                f"number of the embedding in layers[0] (expected a whole number from 0 to "
+                                f"{count - 1})")
 
 
 def _file(model_path: Path, keys: Any, key: str) -> Path:

@@ -13,6 +13,7 @@ import io
 import math
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import Sequence
 
 import numpy as np
 from numpy.typing import NDArray
@@ -163,12 +164,14 @@ def build_dataset(
     seed: int,
     source: str,
     holdout: NDArray[np.bool_] | None = None,
+    raw: Sequence[str] = (),
 ) -> Dataset:
     """Split a table into inputs and targets, hold out a validation part, standardize.
 
     The validation rows are the rows where ``holdout`` (``(n_rows,)``) is True,
     or else a seeded random choice of ``round(fraction * n)`` rows;
-    standardization statistics come from the training rows only.
+    standardization statistics come from the training rows only. Input
+    columns named in ``raw`` (category numbers) are never standardized.
     """
     order = {name: i for i, name in enumerate(table.columns)}
     lines = table.lines if table.lines is not None else np.arange(table.values.shape[0], dtype=np.int64) + 2
@@ -192,6 +195,8 @@ def build_dataset(
             mean = X.mean(axis=0)
             scale = X.std(axis=0)
             scale[scale == 0.0] = 1.0
+            keep = [inputs.index(c) for c in raw]
+            mean[keep], scale[keep] = 0.0, 1.0
             X_std, X_val_std = (X - mean) / scale, (X_val - mean) / scale
         fine = np.isfinite(mean) & np.isfinite(scale) & np.all(np.isfinite(X_std), axis=0) \
             & np.all(np.isfinite(X_val_std), axis=0)

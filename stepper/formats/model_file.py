@@ -12,6 +12,8 @@ Schema (every key is checked; unknown keys are refused so typos surface)::
     standardize = true                    # optional, default false
     validation_fraction = 0.2             # optional, default 0
     seed = 7                              # optional, seeds the validation split
+    input_shape = [1, 8, 8]               # optional: each row's inputs as [channels, (height,) width],
+                                          # channels first; the product must equal len(inputs)
 
     [init]
     scheme = "glorot_uniform"             # uniform | glorot_uniform | glorot_normal
@@ -25,6 +27,13 @@ Schema (every key is checked; unknown keys are refused so typos surface)::
     bias = true                           # optional, default true
     weights = [[...], ...]                # optional inline values, n_in rows x units
     biases = [...]                        # optional inline values, units entries
+
+    [[layers]]                            # other built-in layers: conv1d, conv2d, max_pool,
+    type = "conv2d"                       # avg_pool, flatten, dropout, layer_norm, batch_norm,
+    channels = 8                          # embedding; their keys are in
+    kernel = 3                            # stepper.formats.layer_keys
+    padding = "same"
+    activation = "relu"
 
     [[layers]]                            # a custom layer: RUNS the named Python file
     type = "custom"                       # (stepper.formats.custom_layer)
@@ -68,8 +77,8 @@ from numpy.typing import NDArray
 
 from stepper.core.activations import ACTIVATIONS
 from stepper.core.descent import Descent
-from stepper.core.init import SCHEMES, initial_params
-from stepper.core.layers import Dense, Layer
+from stepper.core.init import SCHEMES, fill_constants, initial_params
+from stepper.core.layers import Dense, Layer, is_builtin
 from stepper.core.losses import LOSSES
 from stepper.core.network import Network
 from stepper.core.schedules import CONSTANT, ScheduleError
@@ -78,6 +87,7 @@ from stepper.errors import ModelFileError
 from stepper.formats.data_options import DATA_KEYS, fit_data, load_data
 from stepper.formats.dataset import Dataset
 from stepper.formats.reading import MODEL_FILE_LIMIT, collect_reads, read_limited
+from stepper.formats.layer_keys import TYPES, build_layer, category_columns, check_keys, need_flat
 from stepper.formats.weight_sources import WeightOrigin
 
 if TYPE_CHECKING:
@@ -88,7 +98,6 @@ Array = NDArray[np.float64]
 TOP_KEYS = {"name", "loss", "data", "init", "layers", "network", "training"}
 TRAINING_KEYS = {"l2", "weight_decay", "clip_norm", "schedule"}
 INIT_KEYS = {"scheme", "seed", "range", "file", "names", "layout"}
-LAYER_KEYS = {"units", "activation", "bias", "weights", "biases", "type", "file", "class", "options"}
 
 #: Most parameters a model file may describe. Stepper lists, checks and steps
 #: every weight, which is only practical for small networks; the limit turns a
@@ -276,8 +285,12 @@ def setup_from_doc(doc: Any, path: Path, raw: bytes, data: Dataset | None = None
     top = _Keys(label, "", doc, TOP_KEYS)
     name = top.get("name", str, path.parent.name or path.stem)
     loss = top.choice("loss", LOSSES)
+    input_shape = None
     if data is None:
-        data = load_data(path, _Keys(label, "data", top.get("data", dict), DATA_KEYS))
+        data_keys = _Keys(label, "data", top.get("data", dict), DATA_KEYS)
+        first = top.table.get("layers")
+        data = load_data(path, data_keys, category_columns(first[0] if isinstance(first, list) and first else None))
+        input_shape = _input_shape(data_keys, len(data.input_names))
     elif top.has("data"):
         top.fail("data", "not used when the data come as arrays")
     origin = None
@@ -290,38 +303,45 @@ def setup_from_doc(doc: Any, path: Path, raw: bytes, data: Dataset | None = None
         network, theta0, origin = graph_network(top, path, loss)
         digest = hashlib.sha256(raw + (origin.graph or b"")).hexdigest()
     else:
-        network, theta0, origin = _described_network(label, top, path, data, loss)
+        network, theta0, origin = _described_network(label, top, path, data, loss, input_shape)
         digest = hashlib.sha256(raw).hexdigest()
     data = fit_data(top, network, data)
     network.l2, descent = _training(label, top)
     return Setup(path, name, network, theta0, data, digest, origin, descent=descent)
 
 
-def _described_network(label: str, top: _Keys, path: Path, data: Dataset,
-                       loss: str) -> tuple[Network, Array, WeightOrigin | None]:
-    """The network that ``[[layers]]`` describe, and its starting values."""
+def _described_network(label: str, top: _Keys, path: Path, data: Dataset, loss: str,
+                       input_shape: tuple[int, ...] | None = None) -> tuple[Network, Array, WeightOrigin | None]:
+    """The network that ``[[layers]]`` describe, and its starting values.
+
+    ``input_shape`` is how ``[data].input_shape`` reads each row (flat when None).
+    """
     layer_list = top.get("layers", list)
     if not layer_list:
         top.fail("layers", "expected at least one [[layers]] table")
     torch = _torch_state(label, top, len(layer_list))
     layers: list[Layer] = []
     inline: list[tuple[int, _Keys]] = []
-    n_in = len(data.input_names)
+    shape = input_shape or (len(data.input_names),)
     n_params = 0
     for i, entry in enumerate(layer_list):
-        keys = _Keys(label, f"layers[{i}]", entry, LAYER_KEYS)
-        layer = _build_layer(keys, n_in, path, None if torch is None else torch.linears[i])
+        keys = _Keys(label, f"layers[{i}]", entry, set(entry) if isinstance(entry, dict) else set())
+        kind = keys.choice("type", TYPES, "dense")
+        if torch is None:
+            layer = build_layer(keys, kind, i, shape, path, data.input_names)
+        else:
+            layer = _torch_dense(keys, kind, i, shape, torch.linears[i])
         n_params += sum(math.prod(spec.shape) for spec in layer.param_specs())
         if n_params > MAX_PARAMETERS:
-            keys.fail("units" if keys.has("units") else "",
+            keys.fail(next((k for k in ("units", "channels", "categories") if keys.has(k)), ""),
                       f"the network would have {n_params:,} parameters up to this layer; "
                       f"Stepper handles at most {MAX_PARAMETERS:,}")
         layers.append(layer)
         if keys.has("weights") or keys.has("biases"):
             inline.append((i, keys))
-        n_in = layer.n_out
+        shape = layer.out_shape if is_builtin(layer) else (layer.n_out,)  # type: ignore[attr-defined]
     _check_output_pair(top, loss, layers)
-    network = Network(len(data.input_names), layers, loss)
+    network = Network(len(data.input_names), layers, loss, input_shape=input_shape)
     theta0, origin = _initial_values(label, top, network, inline, torch)
     return network, theta0, origin
 
@@ -403,26 +423,32 @@ def _torch_state(label: str, top: _Keys, n_layers: int) -> TorchState | None:
     return torch
 
 
-def _build_layer(keys: _Keys, n_in: int, model_path: Path, linear: TorchLinear | None = None) -> Layer:
-    kind = keys.choice("type", ("dense", "custom"), "dense")
-    if kind == "custom":
-        if linear is not None:
-            keys.fail("type", "layout = \"torch\" maps Linear layers to dense layers only")
-        from stepper.formats.custom_layer import build_custom_layer
-
-        return build_custom_layer(keys, n_in, model_path)
-    for key in ("file", "class", "options"):
-        if keys.has(key):
-            keys.fail(key, "only a layer with type = \"custom\" takes this key")
-    if linear is None:
-        units = keys.get("units", int)
-        bias = keys.get("bias", bool, True)
-    else:
-        units, bias = _torch_shape(keys, n_in, linear)
+def _torch_dense(keys: _Keys, kind: str, index: int, shape: tuple[int, ...], linear: TorchLinear) -> Layer:
+    """A dense layer whose units and bias come from a state_dict's Linear layer (``layout = "torch"``)."""
+    if kind != "dense":
+        keys.fail("type", "layout = \"torch\" maps Linear layers to dense layers only")
+    check_keys(keys, kind)
+    need_flat(keys, kind, shape, index)
+    units, bias = _torch_shape(keys, shape[0], linear)
     if units < 1:
         keys.fail("units", f"{units} is not a positive number of units")
     activation = keys.choice("activation", ACTIVATIONS)
-    return Dense(n_in, units, ACTIVATIONS[activation], bias)
+    return Dense(shape[0], units, ACTIVATIONS[activation], bias)
+
+
+def _input_shape(keys: _Keys, n_inputs: int) -> tuple[int, ...] | None:
+    """``[data].input_shape`` checked against the number of input columns; None when not given."""
+    if not keys.has("input_shape"):
+        return None
+    value = keys.get("input_shape", list)
+    if not 1 <= len(value) <= 3 or not all(isinstance(v, int) and not isinstance(v, bool) and v >= 1
+                                           for v in value):
+        keys.fail("input_shape", "expected 1 to 3 positive whole numbers: [channels, length] for signals, "
+                                 "[channels, height, width] for images")
+    if math.prod(value) != n_inputs:
+        keys.fail("input_shape", f"{value} holds {math.prod(value)} values per row, but [data].inputs names "
+                                 f"{n_inputs} column(s); the two must match")
+    return tuple(value)
 
 
 def _torch_shape(keys: _Keys, n_in: int, linear: TorchLinear) -> tuple[int, bool]:
@@ -444,9 +470,9 @@ def _initial_values(label: str, top: _Keys, network: Network, inline: list[tuple
                     torch: TorchState | None = None) -> tuple[Array, WeightOrigin | None]:
     inline_layers = {i for i, _ in inline}
     # Custom layers draw their own starting values (stepper.formats.custom_layer).
-    own_values = {i for i, layer in enumerate(network.layers) if not isinstance(layer, Dense)}
+    own_values = {i for i, layer in enumerate(network.layers) if not is_builtin(layer)}
     needs_scheme = any(
-        block.layer not in inline_layers | own_values for block in network.layout.blocks
+        block.layer not in inline_layers | own_values and block.fans is not None for block in network.layout.blocks
     )
     theta = np.zeros(network.n_params)
     seed = 0
@@ -470,6 +496,8 @@ def _initial_values(label: str, top: _Keys, network: Network, inline: list[tuple
             theta = initial_params(network, scheme, seed, spread)
     elif needs_scheme:
         top.fail("init", "missing: give [init] scheme and seed, or inline weights for every layer")
+    else:
+        fill_constants(network, theta)
     if own_values and not imported:
         from stepper.formats.custom_layer import fill_initial_values
 

@@ -24,7 +24,7 @@ from stepper.core.diagnosis import diagnose
 from stepper.core.gradcheck import CheckResult
 from stepper.core.health import HealthReport, layer_health
 from stepper.core.input_slopes import InputSlopeCheck, check_input_slopes
-from stepper.core.layers import Dense
+from stepper.core.layers import Builtin, is_builtin
 from stepper.core.network import Network
 from stepper.core.slice import CostSlice, cost_slice
 from stepper.formats.dataset import Dataset
@@ -117,10 +117,9 @@ class Figures:
     def __init__(self, net: Network, data: Dataset) -> None:
         self.net = net
         self.data = data
-        self.custom = tuple(i for i, layer in enumerate(net.layers) if not isinstance(layer, Dense))
+        self.custom = tuple(i for i, layer in enumerate(net.layers) if not is_builtin(layer))
         self.kinds = tuple(
-            f"{layer.activation.name} {layer.n_in}->{layer.n_out}" if isinstance(layer, Dense)
-            else f"custom {layer.n_in}->{layer.n_out}"
+            layer.kind if isinstance(layer, Builtin) else f"custom {layer.n_in}->{layer.n_out}"
             for layer in net.layers
         )
         self._last: dict[str, tuple[tuple[Any, ...], Any]] = {}
