@@ -198,29 +198,15 @@ def test_the_base_files_are_valid(write_model: WriteModel) -> None:
     assert abs(table.data.X[:, 1].mean()) < 1e-12
 
 
-@pytest.mark.parametrize("old,new,expected", IMAGE_MISTAKES)
-def test_image_model_mistakes(write_model: WriteModel, capsys: pytest.CaptureFixture[str], old: str, new: str,
-                              expected: str) -> None:
-    assert old in IMAGE
-    assert check_error(write_model, capsys, IMAGE.replace(old, new, 1), image_data()) == \
-        f"stepper: model.toml: {expected}\n"
-
-
-@pytest.mark.parametrize("old,new,expected", [
+SIGNAL_MISTAKES = [
     ("kernel = 3", "kernel = [3, 3]", "layers[0].kernel: expected a whole number or a list of 1 whole numbers"),
     ("input_shape = [2, 8]", "input_shape = [16]",
      "layers[0].type: a conv1d layer takes rows of shape [channels, length], but its input (the data's rows) has "
      "shape 16 (set [data] input_shape, e.g. [1, 8, 8] for 8x8 images of one channel)"),
     ("size = 2", "size = 9", "layers[2].size: a 9 window does not fit the input's 8 positions (8 with padding)"),
-])
-def test_signal_model_mistakes(write_model: WriteModel, capsys: pytest.CaptureFixture[str], old: str, new: str,
-                               expected: str) -> None:
-    assert old in SIGNAL
-    assert check_error(write_model, capsys, SIGNAL.replace(old, new, 1), image_data()) == \
-        f"stepper: model.toml: {expected}\n"
+]
 
-
-@pytest.mark.parametrize("old,new,expected", [
+TABLE_MISTAKES = [
     ('columns = ["kind"]', "", "layers[0].columns: missing"),
     ('columns = ["kind"]', 'columns = ["colour"]',
      "layers[0].columns: 'colour' is not one of [data].inputs (kind, size)"),
@@ -233,12 +219,19 @@ def test_signal_model_mistakes(write_model: WriteModel, capsys: pytest.CaptureFi
     ("size = 2", "size = 2.5", "layers[0].size: expected an integer, got a number"),
     ("size = 2", "size = 2\nunits = 4",
      "layers[0].units: an embedding layer does not take this key (it takes: categories, columns, size, type)"),
-])
-def test_embedding_model_mistakes(write_model: WriteModel, capsys: pytest.CaptureFixture[str], old: str, new: str,
-                                  expected: str) -> None:
-    assert old in TABLE
-    assert check_error(write_model, capsys, TABLE.replace(old, new, 1), TABLE_DATA) == \
-        f"stepper: model.toml: {expected}\n"
+]
+
+ALL = ([(IMAGE, "image", *m) for m in IMAGE_MISTAKES] + [(SIGNAL, "image", *m) for m in SIGNAL_MISTAKES]
+       + [(TABLE, "table", *m) for m in TABLE_MISTAKES])
+
+
+@pytest.mark.parametrize("base,data,old,new,expected", ALL, ids=[f"{d}-{e.split(':')[0]}-{i}"
+                                                                 for i, (_, d, _, _, e) in enumerate(ALL)])
+def test_every_mistake_is_one_line_and_exit_2(write_model: WriteModel, capsys: pytest.CaptureFixture[str],
+                                              base: str, data: str, old: str, new: str, expected: str) -> None:
+    assert old in base
+    rows = image_data() if data == "image" else TABLE_DATA
+    assert check_error(write_model, capsys, base.replace(old, new, 1), rows) == f"stepper: model.toml: {expected}\n"
 
 
 def test_an_embedding_must_come_first(write_model: WriteModel, capsys: pytest.CaptureFixture[str]) -> None:

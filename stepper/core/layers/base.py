@@ -27,6 +27,8 @@ from typing import TYPE_CHECKING, Any, Protocol
 import numpy as np
 from numpy.typing import NDArray
 
+from stepper.core.activations import Activation
+
 Array = NDArray[np.float64]
 Params = dict[str, Array]
 Flags = NDArray[np.bool_]
@@ -192,6 +194,28 @@ class Builtin:
             out[j], copy_cache = self.forward(moved, X)
             kinked[j] = bool(self.crossed(cache, copy_cache, 1)[0])
         return out, kinked
+
+
+class Activated(Builtin):
+    """A built-in layer ending in an elementwise activation of its pre-activations (its cache's ``Z``).
+
+    Its kinks are those of the activation: a copy crossed one where some entry of
+    ``Z`` changed sign (ReLU-like activations have their corner at 0).
+    """
+
+    if TYPE_CHECKING:
+
+        @property
+        def activation(self) -> Activation: ...
+
+    @property
+    def has_kinks(self) -> bool:  # type: ignore[override]
+        return self.activation.kink
+
+    def crossed(self, base: Any, moved: Any, k: int) -> Flags:
+        if not self.activation.kink:
+            return np.zeros(k, dtype=bool)
+        return differs(base.Z > 0.0, moved.Z > 0.0, k)
 
 
 class Shaped(Builtin):

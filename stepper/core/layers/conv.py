@@ -24,7 +24,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from stepper.core.activations import Activation
-from stepper.core.layers.base import Array, Flags, ParamSpec, Params, Shaped, differs, update_channels
+from stepper.core.layers.base import Activated, Array, Flags, ParamSpec, Params, Shaped, update_channels
 from stepper.core.layers.grid import Grid
 
 
@@ -45,7 +45,7 @@ class ConvCache:
 
 
 @dataclass(frozen=True)
-class Conv(Shaped):
+class Conv(Shaped, Activated):
     """A 1-D or 2-D convolution with an elementwise activation.
 
     Attributes:
@@ -65,10 +65,6 @@ class Conv(Shaped):
     @property
     def type_name(self) -> str:  # type: ignore[override]
         return f"conv{self.grid.dims}d"
-
-    @property
-    def has_kinks(self) -> bool:  # type: ignore[override]
-        return self.activation.kink
 
     @property
     def out_shape(self) -> tuple[int, ...]:
@@ -137,11 +133,6 @@ class Conv(Shaped):
         parts = np.matmul(params["K"].reshape(self.channels, self.rows).T, dZ)  # (n, rows, positions)
         parts = parts.reshape((n, self.in_shape[0]) + self.grid.window + self.grid.out)
         return grads, self.grid.gather_back(parts, self.in_shape[0]).reshape(n, self.n_in)
-
-    def crossed(self, base: ConvCache, moved: ConvCache, k: int) -> Flags:
-        if not self.activation.kink:
-            return np.zeros(k, dtype=bool)
-        return differs(base.Z > 0.0, moved.Z > 0.0, k)
 
     def perturbed(
         self, params: Params, X: Array, cache: Any, key: str, local: NDArray[np.int64], delta: Array

@@ -14,7 +14,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from stepper.core.activations import Activation
-from stepper.core.layers.base import Array, Builtin, Flags, ParamSpec, Params, differs
+from stepper.core.layers.base import Activated, Array, Flags, ParamSpec, Params
 
 
 @dataclass(frozen=True)
@@ -33,7 +33,7 @@ class DenseCache:
 
 
 @dataclass(frozen=True)
-class Dense(Builtin):
+class Dense(Activated):
     """A fully connected layer ``A = activation(X @ W + b)``.
 
     ``W`` has shape ``(n_in, n_out)``: ``W[i, j]`` carries input ``i`` to unit ``j``.
@@ -54,10 +54,6 @@ class Dense(Builtin):
     @property
     def out_shape(self) -> tuple[int, ...]:
         return (self.n_out,)
-
-    @property
-    def has_kinks(self) -> bool:  # type: ignore[override]
-        return self.activation.kink
 
     @property
     def label(self) -> str:
@@ -106,11 +102,6 @@ class Dense(Builtin):
         if self.bias:
             grads["b"] = dZ.sum(axis=0)
         return grads, (dZ @ params["W"].T if input_slopes else np.empty((0, self.n_in)))
-
-    def crossed(self, base: DenseCache, moved: DenseCache, k: int) -> Flags:
-        if not self.activation.kink:
-            return np.zeros(k, dtype=bool)
-        return differs(base.Z > 0.0, moved.Z > 0.0, k)
 
     def perturbed(
         self, params: Params, X: Array, cache: Any, key: str, local: NDArray[np.int64], delta: Array

@@ -104,6 +104,18 @@ class _Norm(Shaped):
         return {"scale": (dy * cache.xhat).sum(axis=(0, -1)).reshape(shape),
                 "shift": dy.sum(axis=(0, -1)).reshape(shape)}
 
+    def backward(self, params: Params, cache: NormCache, dOut: Array, need_dx: bool = True) -> tuple[Params, Array]:
+        dy = self._grouped(dOut)
+        grads = self._param_slopes(cache, dy)
+        if not need_dx:
+            return grads, np.empty((0, self.n_in))
+        g = dy * params["scale"].reshape(self.grouping()[0], -1)
+        return grads, self._input_slope(g, cache).reshape(dOut.shape)
+
+    def _input_slope(self, g: Array, cache: NormCache) -> Array:
+        """``dC/dx`` grouped, from ``g = dC/dy * scale`` grouped."""
+        raise NotImplementedError
+
     def perturbed(
         self, params: Params, X: Array, cache: Any, key: str, local: NDArray[np.int64], delta: Array
     ) -> tuple[Array, Flags]:
@@ -144,13 +156,8 @@ class LayerNorm(_Norm):
         inv = 1.0 / np.sqrt(var + self.epsilon)
         return self._finish(X, centred * inv, inv, mean, var, params)
 
-    def backward(self, params: Params, cache: NormCache, dOut: Array, need_dx: bool = True) -> tuple[Params, Array]:
-        dy = self._grouped(dOut)
-        grads = self._param_slopes(cache, dy)
-        if not need_dx:
-            return grads, np.empty((0, self.n_in))
-        g = dy * params["scale"].reshape(self.grouping())
-        return grads, _grouped_slope(g, cache.xhat, cache.inv, (-2, -1)).reshape(dOut.shape)
+    def _input_slope(self, g: Array, cache: NormCache) -> Array:
+        return _grouped_slope(g, cache.xhat, cache.inv, (-2, -1))
 
 
 @dataclass(frozen=True)
@@ -217,12 +224,7 @@ class BatchNorm(_Norm):
         inv = 1.0 / np.sqrt(var + self.epsilon)
         return self._finish(X, centred * inv, inv, mean, var, params)
 
-    def backward(self, params: Params, cache: NormCache, dOut: Array, need_dx: bool = True) -> tuple[Params, Array]:
-        dy = self._grouped(dOut)
-        grads = self._param_slopes(cache, dy)
-        if not need_dx:
-            return grads, np.empty((0, self.n_in))
-        g = dy * params["scale"][:, None]
-        if not self.training:
-            return grads, (g * cache.inv).reshape(dOut.shape)
-        return grads, _grouped_slope(g, cache.xhat, cache.inv, (-3, -1)).reshape(dOut.shape)
+    def _input_slope(self, g: Array, cache: NormCache) -> Array:
+        if not self.training:  # fixed statistics: an affine map of each entry
+            return g * cache.inv
+        return _grouped_slope(g, cache.xhat, cache.inv, (-3, -1))
