@@ -4,9 +4,9 @@ ONNX's Gemm operator computes ``alpha * A' B' + beta * C``. When ``alpha`` and
 ``beta`` are both 1 that is a plain :class:`stepper.core.layers.Dense` layer;
 otherwise the weights stay exactly the values the file holds (so that they go
 back unchanged) and this layer applies the two constants. It runs through the
-network's general paths, like any layer that is not ``Dense``: the numeric
-slopes re-run the network from it, and the unit-by-unit insight views (which
-assume ``Z = X W + b``) leave it out.
+general paths of the built-in layers, like any layer that is not ``Dense``: the
+numeric slopes run its perturbed copies stacked (:mod:`stepper.core.stacked`),
+and the unit-by-unit insight views (which assume ``Z = X W + b``) leave it out.
 
 Shapes: ``X`` ``(n, n_in)``, ``W`` ``(n_in, n_out)``, ``b`` ``(n_out,)``, output ``(n, n_out)``.
 """
@@ -19,13 +19,14 @@ import numpy as np
 from numpy.typing import NDArray
 
 from stepper.core.activations import Activation
-from stepper.core.layers import ParamSpec, Params
+from stepper.core.layers import DenseCache, ParamSpec, Params
+from stepper.core.layers.base import Activated
 
 Array = NDArray[np.float64]
 
 
 @dataclass(frozen=True)
-class ScaledDense:
+class ScaledDense(Activated):
     """``A = activation(alpha * (X @ W) + beta * b)``; ``b`` only when ``bias``.
 
     Attributes:
@@ -43,30 +44,43 @@ class ScaledDense:
     beta: float
     bias: bool = True
 
+    type_name = "dense"
+
+    @property
+    def in_shape(self) -> tuple[int, ...]:
+        return (self.n_in,)
+
+    @property
+    def out_shape(self) -> tuple[int, ...]:
+        return (self.n_out,)
+
+    @property
+    def kind(self) -> str:
+        return f"{self.activation.name} {self.n_in}->{self.n_out} scaled"
+
     @property
     def label(self) -> str:
         scale = f"alpha {self.alpha:g}" + (f", beta {self.beta:g}" if self.bias else "")
         return f"dense {self.n_in}->{self.n_out} {self.activation.name} ({scale})"
 
     def param_specs(self) -> tuple[ParamSpec, ...]:
-        specs = [ParamSpec("W", (self.n_in, self.n_out), "weight")]
+        specs = [ParamSpec("W", (self.n_in, self.n_out), "weight", fans=(self.n_in, self.n_out))]
         if self.bias:
             specs.append(ParamSpec("b", (self.n_out,), "bias"))
         return tuple(specs)
 
-    def forward(self, params: Params, X: Array) -> tuple[Array, tuple[Array, Array, Array]]:
-        """``X`` ``(n, n_in)`` to ``A`` ``(n, n_out)``; the cache is ``(X, Z, A)``."""
+    def forward(self, params: Params, X: Array) -> tuple[Array, DenseCache]:
+        """``X`` ``(..., n, n_in)`` to ``A`` ``(..., n, n_out)``."""
         Z = self.alpha * (X @ params["W"])
         if self.bias:
             Z = Z + self.beta * params["b"]
         A = self.activation.fn(Z)
-        return A, (X, Z, A)
+        return A, DenseCache(X, Z, A)
 
-    def backward(self, params: Params, cache: tuple[Array, Array, Array], dOut: Array) -> tuple[Params, Array]:
+    def backward(self, params: Params, cache: DenseCache, dOut: Array, need_dx: bool = True) -> tuple[Params, Array]:
         """Slopes from ``dOut`` ``(n, n_out)``: ``dW = alpha X^T dZ``, ``db = beta sum dZ``, ``dX = alpha dZ W^T``."""
-        X, Z, A = cache
-        dZ = self.activation.vjp(Z, A, dOut)
-        grads: Params = {"W": self.alpha * (X.T @ dZ)}
+        dZ = self.activation.vjp(cache.Z, cache.A, dOut)
+        grads: Params = {"W": self.alpha * (cache.X.T @ dZ)}
         if self.bias:
             grads["b"] = self.beta * dZ.sum(axis=0)
-        return grads, self.alpha * (dZ @ params["W"].T)
+        return grads, (self.alpha * (dZ @ params["W"].T) if need_dx else np.empty((0, self.n_in)))
