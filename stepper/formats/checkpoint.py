@@ -12,6 +12,8 @@ Layout (our own), format 2:
   loads in a fraction of a second;
 - tensors ``batch.*``: the order of the training rows in the current epoch of
   mini-batches (:func:`stepper.formats.saved_state.read_state` names them);
+- tensors ``state.<L2.running_mean>``: what layers keep besides their weights
+  (a batch norm's running mean and variance), when the model has any;
 - header metadata key ``stepper``: a JSON document with ``format`` (2), the
   step count, rate, rule, rule step ``t``, slope source, batch size, the names
   of frozen parameters, the random generators' states, the SHA-256 of the
@@ -59,7 +61,8 @@ META_KEY = "stepper"
 MAX_HEADER = 100 * 1024 * 1024
 LAST_UPDATE = "last_update."
 #: Prefixes of tensors that are not parameters.
-STATE_PREFIXES = ("rule.", "history.", "batch.", LAST_UPDATE)
+STATE = "state."
+STATE_PREFIXES = ("rule.", "history.", "batch.", LAST_UPDATE, STATE)
 
 
 @dataclass
@@ -73,6 +76,7 @@ class CheckpointData:
         sha256: SHA-256 of the file's bytes, when read from a file (journals record it).
         last_update: the last step's change ``(n_params,)``, or None when there is none.
         extra: other state tensors by name (``history.*``, ``batch.*``).
+        state: the layers' kept arrays ``(n_state,)`` (running statistics); empty when none.
     """
 
     theta: Array
@@ -81,13 +85,17 @@ class CheckpointData:
     sha256: str = ""
     last_update: Array | None = None
     extra: dict[str, NDArray[Any]] = field(default_factory=dict)
+    state: Array = field(default_factory=lambda: np.empty(0))
 
 
-def encode(layout: ParamLayout, data: CheckpointData) -> bytes:
-    """The bytes of a safetensors checkpoint."""
+def encode(layout: ParamLayout, data: CheckpointData, state_layout: ParamLayout | None = None) -> bytes:
+    """The bytes of a safetensors checkpoint (``state_layout`` places ``data.state``)."""
     from safetensors.numpy import save
 
     tensors: dict[str, NDArray[Any]] = {}
+    for block in (state_layout.blocks if state_layout is not None else ()):
+        tensors[f"{STATE}{block.prefix}"] = np.ascontiguousarray(
+            data.state[block.start : block.stop].reshape(block.shape))
     for block in layout.blocks:
         tensors[block.prefix] = np.ascontiguousarray(data.theta[block.start : block.stop].reshape(block.shape))
         for key, array in data.rule_arrays.items():
@@ -105,10 +113,11 @@ def encode(layout: ParamLayout, data: CheckpointData) -> bytes:
     return bytes(save(tensors, metadata={META_KEY: json.dumps(meta, allow_nan=False)}))
 
 
-def save_checkpoint(path: Path, layout: ParamLayout, data: CheckpointData) -> None:
+def save_checkpoint(path: Path, layout: ParamLayout, data: CheckpointData,
+                    state_layout: ParamLayout | None = None) -> None:
     """Write a checkpoint atomically (an interrupted save leaves the old file intact)."""
     try:
-        write_atomic(Path(path), encode(layout, data))
+        write_atomic(Path(path), encode(layout, data, state_layout))
     except OSError as exc:
         raise CheckpointError(f"{path}: cannot write the checkpoint ({exc.strerror or exc})") from None
 
@@ -255,8 +264,12 @@ def _meta_of(path: Path, header: dict[str, Any]) -> dict[str, Any]:
     return meta
 
 
-def load_checkpoint(path: Path, layout: ParamLayout, digest: bool = True) -> CheckpointData:
+def load_checkpoint(path: Path, layout: ParamLayout, state_layout: ParamLayout | None = None,
+                    digest: bool = True) -> CheckpointData:
     """Read a checkpoint and check that it fits ``layout`` (names, shapes, dtype).
+
+    With ``state_layout``, the layers' kept arrays (``state.*`` tensors) are read
+    and checked too; otherwise they are ignored.
 
     The metadata is parsed (bounded JSON) but its fields are checked by
     :func:`stepper.formats.saved_state.read_state`. Without ``digest`` the
@@ -288,7 +301,19 @@ def load_checkpoint(path: Path, layout: ParamLayout, digest: bool = True) -> Che
                    if any(k.startswith(LAST_UPDATE) for k in tensors) else None)
     others = {k: v for k, v in tensors.items() if k.startswith(("history.", "batch."))}
     sha256 = hashlib.sha256(raw).hexdigest() if digest else ""
-    return CheckpointData(theta, rule_arrays, meta, sha256, last_update, others)
+    state = np.empty(0) if state_layout is None else _kept_state(path, tensors, state_layout)
+    return CheckpointData(theta, rule_arrays, meta, sha256, last_update, others, state)
+
+
+def _kept_state(path: Path, tensors: dict[str, NDArray[Any]], state_layout: ParamLayout) -> Array:
+    """The ``state.*`` tensors as one flat array ``(n_state,)``: finite, variances 0 or more."""
+    state = _flat_group(path, tensors, state_layout, STATE)
+    for block in state_layout.blocks:
+        values = state[block.start : block.stop]
+        if not np.all(np.isfinite(values)) or (block.key == "running_var" and np.any(values < 0.0)):
+            raise CheckpointError(f"{path}: tensor {STATE}{block.prefix} holds a value that is not a finite "
+                                  "number" + (" of 0 or more" if block.key == "running_var" else ""))
+    return state
 
 
 def _flat_group(path: Path, tensors: dict[str, NDArray[Any]], layout: ParamLayout, prefix: str) -> Array:

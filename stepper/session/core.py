@@ -21,6 +21,7 @@ from numpy.typing import NDArray
 from stepper.core.descent import Descent, EpochPosition
 from stepper.core.gradcheck import CheckResult, iter_check, merged
 from stepper.core.names import WeightNames
+from stepper.core.network import Network
 from stepper.core.numeric import Progress, run_to_end
 from stepper.core.optimizers import RULES, RuleState, fresh_state
 from stepper.core.selection import stratified
@@ -95,6 +96,7 @@ class SessionCore:
         self.net = copy.copy(setup.network)
         n = self.net.n_params
         self.theta: Array = setup.theta0.copy()
+        self.state: Array = self.net.initial_state()
         self.frozen: NDArray[np.bool_] = np.zeros(n, dtype=bool)
         if rule not in RULES:
             raise UsageError(f"unknown update rule {rule!r} (expected one of: {', '.join(RULES)})")
@@ -215,24 +217,41 @@ class SessionCore:
         self._cache[key] = (self._version, value)
         return value
 
+    def training_net(self, step: int | None = None) -> Network:
+        """The network as it trains at update ``step`` (default: the next update's, :attr:`step_count`).
+
+        Its dropout masks are the step's (drawn once per step, so the cost, its
+        analytic slopes and every numeric slope of one step share them); batch
+        norm uses the statistics of the batch it is given.
+        """
+        if not (self.net.varies_by_step or self.net.has_state):
+            return self.net
+        return self.net.at(True, self.step_count if step is None else step, self.state)
+
+    def evaluation_net(self) -> Network:
+        """The network as the validation cost runs it: no dropout, batch norm on its running statistics."""
+        if not (self.net.varies_by_step or self.net.has_state):
+            return self.net
+        return self.net.at(False, self.step_count, self.state)
+
     def train_cost(self) -> float:
-        """Cost on the whole training set at the current parameters."""
+        """Cost on the whole training set at the current parameters (in training, at this step)."""
         data = self.setup.data
-        return float(self._cached("train", lambda: self.net.cost(self.theta, data.X, data.Y)))
+        return float(self._cached("train", lambda: self.training_net().cost(self.theta, data.X, data.Y)))
 
     def val_cost(self) -> float | None:
-        """Cost on the validation set, or None when there is none."""
+        """Cost on the validation set, or None when there is none (in evaluation)."""
         data = self.setup.data
         if data.n_val == 0:
             return None
-        return float(self._cached("val", lambda: self.net.cost(self.theta, data.X_val, data.Y_val)))
+        return float(self._cached("val", lambda: self.evaluation_net().cost(self.theta, data.X_val, data.Y_val)))
 
     def analytic_slopes(self) -> Array:
         """Slopes by backpropagation on the whole training set, ``(n_params,)``."""
         data = self.setup.data
 
         def compute() -> Array:
-            return self.net.cost_and_slopes(self.theta, data.X, data.Y)[1]
+            return self.training_net().cost_and_slopes(self.theta, data.X, data.Y)[1]
 
         result: Array = self._cached("slopes", compute)
         return result
@@ -247,7 +266,7 @@ class SessionCore:
         version = self._version
         theta = self.theta.copy()
         earlier = self.check if not self.check_is_stale else None
-        result = yield from iter_check(self.net, theta, data.X, data.Y, which=which)
+        result = yield from iter_check(self.training_net(), theta, data.X, data.Y, which=which)
         if which is not None and earlier is not None:
             result = merged(earlier, result)
         if version == self._version:
@@ -292,8 +311,8 @@ class SessionCore:
     def _snapshot(self, fields: Iterable[str]) -> dict[str, Any]:
         out: dict[str, Any] = {}
         for name in fields:
-            if name == "theta":
-                out[name] = self.theta.copy()
+            if name in ("theta", "state"):
+                out[name] = getattr(self, name).copy()
             elif name == "frozen":
                 out[name] = self.frozen.copy()
             elif name == "rule_state":
@@ -316,6 +335,9 @@ class SessionCore:
             elif name == "theta_bits":
                 flip(self.theta, value)
                 self._version += 1
+            elif name == "state":
+                self.state = value.copy()
+                self._version += 1  # the validation cost depends on it
             elif name == "theta_at":
                 idx, values = value
                 self.theta[idx] = values

@@ -181,10 +181,11 @@ class Edits(SessionCore):
         return f"{which} by {float(np.sqrt(np.mean(noise * noise))):.3g} rms"
 
     def reset(self) -> None:
-        """All parameters back to their initial values; the rule's memory starts afresh."""
+        """All parameters back to their initial values; the rule's memory and the running statistics start afresh."""
         before_cost = self.train_cost()
-        before = self._snapshot(["theta", "rule_state"])
-        after = {"theta": self.setup.theta0.copy(), "rule_state": fresh_state(self.rule, self.net.n_params)}
+        before = self._snapshot(["theta", "rule_state", "state"])
+        after = {"theta": self.setup.theta0.copy(), "rule_state": fresh_state(self.rule, self.net.n_params),
+                 "state": self.net.initial_state()}
         self._manual_change("reset", before, after, {"op": "reset"})
         self.last_action = (f"reset every weight to its initial value (the step counter stays at {self.step_count} "
                             f"and the cost history goes on): cost {before_cost:.6g} -> {self.train_cost():.6g}")

@@ -67,7 +67,8 @@ class Files(SessionCore):
         }
         save_checkpoint(target, self.net.layout,
                         CheckpointData(self.theta, self.rule_state.arrays, meta, last_update=self.last_update,
-                                       extra=tensors))
+                                       extra=tensors, state=self.state),
+                        self.net.state_layout)
         self._mark_saved()
         self.last_checkpoint = target
         self.last_action = f"saved {target}"
@@ -84,7 +85,8 @@ class Files(SessionCore):
         refused the same way.
         """
         path = Path(path)
-        data = load_checkpoint(path, self.net.layout, digest=self.journal is not None or expect_sha256 is not None)
+        data = load_checkpoint(path, self.net.layout, self.net.state_layout,
+                               digest=self.journal is not None or expect_sha256 is not None)
         if expect_sha256 is not None and data.sha256 != expect_sha256:
             raise CheckpointError(
                 f"{path}: has changed since the journal recorded loading it (its SHA-256 differs), "
@@ -107,6 +109,7 @@ class Files(SessionCore):
                 raise CheckpointError(f"{path}: the checkpoint's {name} generator state is not valid") from None
         values = {
             "theta": data.theta,
+            "state": data.state,
             "frozen": saved.frozen,
             "rule_state": RuleState(saved.rule, saved.rule_arrays, saved.rule_t),
             "step_count": saved.step_count,

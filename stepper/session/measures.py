@@ -68,7 +68,7 @@ class Measures(SessionCore):
         data = self.setup.data
         X, Y = (data.X_val, data.Y_val) if validation else (data.X, data.Y)
         result: RowLosses = self._cached("rows-val" if validation else "rows",
-                                         lambda: row_losses(self.net, self.theta, X, Y))
+                                         lambda: row_losses(self.training_net(), self.theta, X, Y))
         return result
 
     def row_table(self, split: str = "both") -> RowTable:
@@ -116,7 +116,7 @@ class Measures(SessionCore):
 
     def spreads(self, bins: int = DEFAULT_BINS) -> list[LayerSpread]:
         """Histograms of each layer's weights, slopes, last updates and activations (training rows)."""
-        return layer_spreads(self.net, self.theta, self.analytic_slopes(), self.last_update, self.setup.data.X,
+        return layer_spreads(self.training_net(), self.theta, self.analytic_slopes(), self.last_update, self.setup.data.X,
                              bins)
 
     def checkpoint_weights(self, path: Path | str) -> NDArray[np.float64]:

@@ -27,6 +27,7 @@ from typing import Any, Iterable, Iterator
 import numpy as np
 
 from stepper.core.descent import Update, descent_update, next_batch
+from stepper.core.network import Network
 from stepper.core.numeric import Progress, numeric_slopes, run_to_end
 from stepper.core.optimizers import RuleState
 from stepper.core.rows import rows_of_output
@@ -60,12 +61,13 @@ class Stepping(SessionCore):
         return data.X[pick], data.Y[pick]
 
     def _slopes(self, X: Array, Y: Array) -> Array:
+        net = self.training_net()
         if self.slope_source == "analytic":
             if X is self.setup.data.X:
                 return self.analytic_slopes()
-            return self.net.cost_and_slopes(self.theta, X, Y)[1]
+            return net.cost_and_slopes(self.theta, X, Y)[1]
         moving = np.flatnonzero(~self.frozen)
-        slopes = numeric_slopes(self.net, self.theta, X, Y, which=moving).slopes
+        slopes = numeric_slopes(net, self.theta, X, Y, which=moving).slopes
         return np.where(self.frozen, 0.0, slopes)
 
     def _one_step(self) -> None:
@@ -75,7 +77,7 @@ class Stepping(SessionCore):
         # (_batch replaces batch_order when an epoch begins, never changes it in place.)
         saved = (self.batch_rng.bit_generator.state, self.batch_order, self.batch_cursor, self.epoch)
         try:
-            theta, state, cost, passed = self._next_update()
+            theta, state, cost, passed, kept = self._next_update()
         except BaseException:
             self.batch_rng.bit_generator.state = saved[0]
             self.batch_order, self.batch_cursor, self.epoch = saved[1:]
@@ -84,20 +86,24 @@ class Stepping(SessionCore):
         self.theta[...] = theta
         self.rule_state = state
         self.step_count += 1
+        self.state = kept
         self._version += 1
         self._cache["train"] = (self._version, float(cost))
         for key, value in passed.items():
             self._cache[key] = (self._version, value)
         self.history.append(self._entry())
 
-    def _next_update(self) -> tuple[Array, RuleState, float, dict[str, Any]]:
-        """The parameters, rule state and training cost after one update; nothing is changed.
+    def _next_update(self) -> tuple[Array, RuleState, float, dict[str, Any], Array]:
+        """The parameters, rule state, training cost, cached values and kept state after one update.
 
-        Where the next step's slopes are backpropagated on the whole training set
-        (the same rows as the cost), the one forward pass at the new parameters
-        gives the cost, those slopes and the training rows' losses: the last two
-        are returned too (a dict of cached values by key, else empty), and the
-        next step or redraw does not run the network forward again.
+        Nothing is changed. Where the next step's slopes are backpropagated on
+        the whole training set (the same rows as the cost), the one forward pass
+        at the new parameters gives the cost, those slopes and the training rows'
+        losses: the last two are returned too (a dict of cached values by key,
+        else empty), and the next step or redraw does not run the network forward
+        again. The kept state (batch norm's running statistics) moves towards the
+        statistics of this step's batch; the cost and slopes are those of the next
+        step (its dropout masks).
 
         Raises DivergenceError when the update would make a weight or the cost non-finite.
         """
@@ -111,12 +117,14 @@ class Stepping(SessionCore):
             delta, state = update.delta, update.state
             theta = self.theta + delta
             bad = ~np.isfinite(theta)
+            kept = self.training_net().next_state(self.theta, X, self.state)
+            nxt = self.training_net(self.step_count + 1)
             if bad.any():
                 cost = math.nan
             elif self.slope_source == "analytic" and self.batch_size is None:
-                cost, passed = self._cost_and_slopes_at(theta)
+                cost, passed = self._cost_and_slopes_at(nxt, theta)
             else:
-                cost = self.net.cost(theta, data.X, data.Y)
+                cost = nxt.cost(theta, data.X, data.Y)
         if bad.any() or not math.isfinite(cost):
             if bad.any():
                 culprits = tuple(self.names[i] for i in np.flatnonzero(bad)[:5])
@@ -126,10 +134,10 @@ class Stepping(SessionCore):
                 culprits = tuple(self.names[i] for i in order)
                 what = f"the cost would become non-finite (largest moves: {', '.join(culprits)})"
             raise DivergenceError(f"step refused at rate {update.rate:g}: {what}", culprits)
-        return theta, state, float(cost), passed
+        return theta, state, float(cost), passed, kept
 
-    def _cost_and_slopes_at(self, theta: Array) -> tuple[float, dict[str, Any]]:
-        """Training cost at ``theta`` ``(n_params,)``, and what the same forward pass gives besides.
+    def _cost_and_slopes_at(self, net: Network, theta: Array) -> tuple[float, dict[str, Any]]:
+        """Training cost at ``theta`` ``(n_params,)`` through ``net``, and what the same forward pass gives besides.
 
         The values are by cache key: the training rows' losses (``rows``) and the
         slopes by backpropagation (``slopes``). A custom layer whose backward
@@ -137,12 +145,12 @@ class Stepping(SessionCore):
         are left for later, as before.
         """
         data = self.setup.data
-        trace = self.net.forward(theta, data.X)
-        passed: dict[str, Any] = {"rows": rows_of_output(self.net, trace[-1][0], trace[-1][1], data.Y)}
+        trace = net.forward(theta, data.X)
+        passed: dict[str, Any] = {"rows": rows_of_output(net, trace[-1][0], trace[-1][1], data.Y)}
         try:
-            cost, passed["slopes"], _ = self.net.backward(theta, trace, data.Y)
+            cost, passed["slopes"], _ = net.backward(theta, trace, data.Y)
         except StepperError:
-            return float(self.net.output_cost(trace[-1][0], trace[-1][1], data.Y)) + self.net.penalty(theta), passed
+            return float(net.output_cost(trace[-1][0], trace[-1][1], data.Y)) + net.penalty(theta), passed
         return cost, passed
 
     def _update(self, slopes: Array, rate: float) -> Update:
@@ -165,7 +173,7 @@ class Stepping(SessionCore):
         """
         if n < 1:
             raise UsageError(f"number of steps {n} must be at least 1")
-        fields = ["theta", "rule_state", "step_count", *self.BATCH_FIELDS]
+        fields = ["theta", "rule_state", "step_count", "state", *self.BATCH_FIELDS]
         earlier: _Change | None = None
         if continues:
             if not self._undo or self._undo[-1].op != "step" or self._redo:
@@ -287,10 +295,11 @@ class Stepping(SessionCore):
         else:
             slopes = self._slopes(data.X, data.Y)
         out: list[tuple[float, float]] = []
+        nxt = self.training_net(self.step_count + 1)  # the cost the history would show after the step
         for rate in (self.candidate_rates() if rates is None else rates):
             with np.errstate(all="ignore"):
                 theta = self.theta + self._update(slopes, float(rate)).delta
-                cost = self.net.cost(theta, data.X, data.Y) if np.all(np.isfinite(theta)) else math.inf
+                cost = nxt.cost(theta, data.X, data.Y) if np.all(np.isfinite(theta)) else math.inf
             out.append((float(rate), cost if math.isfinite(cost) else math.inf))
         return out
 

@@ -133,12 +133,16 @@ class Figures:
         self._last[panel] = (key, value)
         return value
 
+    def training(self, snap: Snapshot) -> Network:
+        """The network as it trains at the snapshot's step (its dropout masks), as the table's slopes do."""
+        return self.net.at(True, snap.step_count) if self.net.varies_by_step else self.net
+
     def slice(self, snap: Snapshot, index: int, span: float | None) -> SliceFigures:
         """The cost along weight ``index``, swept over ``value +- span`` (the core's default when None)."""
         X, Y = self.data.X, self.data.Y
 
         def compute() -> SliceFigures:
-            result = cost_slice(self.net, snap.value, X, Y, index, snap.rate, span)
+            result = cost_slice(self.training(snap), snap.value, X, Y, index, snap.rate, span)
             return SliceFigures(snap.names[index], result, span is None)
 
         figures: SliceFigures = self._cached("slice", (snap.version, index, span, snap.rate), compute)
@@ -153,7 +157,7 @@ class Figures:
 
         def compute() -> FactorFigures | str:
             try:
-                b = slope_breakdown(self.net, snap.value, X, Y, index, sample)
+                b = slope_breakdown(self.training(snap), snap.value, X, Y, index, sample)
             except ValueError as exc:  # a custom layer's parameter: no units to break down
                 return str(exc)
             table = float(snap.analytic[index])
@@ -170,7 +174,7 @@ class Figures:
         """Layer health at the snapshot's weights and rate, with the last input-slope checks."""
         X, Y = self.data.X, self.data.Y
         report: HealthReport = self._cached(
-            "health", (snap.version, snap.rate), lambda: layer_health(self.net, snap.value, X, Y, snap.rate))
+            "health", (snap.version, snap.rate), lambda: layer_health(self.training(snap), snap.value, X, Y, snap.rate))
         checks = None if inputs is None else inputs.checks
         stale = inputs is not None and inputs.version != snap.version
         return HealthFigures(report, self.kinds, self.custom, checks, stale)
@@ -188,8 +192,11 @@ class Figures:
         self._hints = (check, inputs, hints)
         return hints
 
-    def input_slopes(self, theta: Array, cancelled: Callable[[], bool]) -> tuple[InputSlopeCheck, ...] | None:
+    def input_slopes(self, theta: Array, cancelled: Callable[[], bool],
+                     net: Network | None = None) -> tuple[InputSlopeCheck, ...] | None:
         """Input-slope checks of every custom layer at ``theta`` ``(n_params,)``; None if cancelled.
+
+        ``net`` is the network as the session trains it now (its dropout masks); default the setup's.
 
         Runs the network many times (twice per checked input entry): the app calls
         it in its check worker, which has the session to itself.
@@ -198,5 +205,5 @@ class Figures:
         for layer in self.custom:
             if cancelled():
                 return None
-            out.append(check_input_slopes(self.net, theta, self.data.X, self.data.Y, layer))
+            out.append(check_input_slopes(net or self.net, theta, self.data.X, self.data.Y, layer))
         return tuple(out)

@@ -89,7 +89,8 @@ class Jobs(AppBase):
         if not self.figures.custom:
             return False
         version = self.session.version
-        checks = self.figures.input_slopes(self.session.theta.copy(), lambda: worker.is_cancelled)
+        checks = self.figures.input_slopes(self.session.theta.copy(), lambda: worker.is_cancelled,
+                                           self.session.training_net())
         if checks is None:
             return True
         self._from_worker(self._input_checks_done, InputChecks(version, checks))
