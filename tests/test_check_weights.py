@@ -29,7 +29,7 @@ from stepper.scenarios import resolve_model
 class ThreeAxes:
     """A stand-in layer with a 3-D and a 1-D array (only its layout is used here)."""
 
-    n_in, n_out, label = 3, 3, "three axes"
+    n_in, n_out, label = 11, 3, "three axes"
 
     def param_specs(self) -> tuple[ParamSpec, ...]:
         return (ParamSpec("K", (2, 3, 12)), ParamSpec("scale", (3,), "bias"))
