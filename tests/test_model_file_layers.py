@@ -104,33 +104,33 @@ activation = "identity"
 """
 
 IMAGE_MISTAKES = [
-    ("channels = 2", "", "layers[0].channels: missing"),
-    ("channels = 2", "channels = 0", "layers[0].channels: 0 is not a positive number of channels"),
-    ("channels = 2", 'channels = "two"', "layers[0].channels: expected an integer, got the string 'two'"),
-    ("kernel = 3", "", "layers[0].kernel: missing"),
-    ("kernel = 3", "kernel = 0", "layers[0].kernel: 0 is not positive"),
-    ("kernel = 3", "kernel = [3]", "layers[0].kernel: expected a whole number or a list of 2 whole numbers"),
-    ("kernel = 3", "kernel = 2.5", "layers[0].kernel: expected an integer, got a number"),
+    ("channels = 2", "", "layers[0].channels (L1): missing"),
+    ("channels = 2", "channels = 0", "layers[0].channels (L1): 0 is not a positive number of channels"),
+    ("channels = 2", 'channels = "two"', "layers[0].channels (L1): expected an integer, got the string 'two'"),
+    ("kernel = 3", "", "layers[0].kernel (L1): missing"),
+    ("kernel = 3", "kernel = 0", "layers[0].kernel (L1): 0 is not positive"),
+    ("kernel = 3", "kernel = [3]", "layers[0].kernel (L1): expected a whole number or a list of 2 whole numbers"),
+    ("kernel = 3", "kernel = 2.5", "layers[0].kernel (L1): expected an integer, got a number"),
     ('kernel = 3\npadding = "same"', 'kernel = 5\npadding = "valid"',
-     "layers[0].kernel: a 5x5 window does not fit the input's 4x4 positions (4x4 with padding)"),
-    ("kernel = 3", "kernel = 3\nstride = -1", "layers[0].stride: -1 is not positive"),
+     "layers[0].kernel (L1): a 5x5 window does not fit the input's 4x4 positions (4x4 with padding)"),
+    ("kernel = 3", "kernel = 3\nstride = -1", "layers[0].stride (L1): -1 is not positive"),
     ('padding = "same"', 'padding = "full"',
-     "layers[0].padding: 'full' is not \"valid\", \"same\" or a number of zeros from 0 to the kernel size 3"),
+     "layers[0].padding (L1): 'full' is not \"valid\", \"same\" or a number of zeros from 0 to the kernel size 3"),
     ('padding = "same"', "padding = 4",
-     "layers[0].padding: 4 is not \"valid\", \"same\" or a number of zeros from 0 to the kernel size 3"),
+     "layers[0].padding (L1): 4 is not \"valid\", \"same\" or a number of zeros from 0 to the kernel size 3"),
     ('activation = "relu"', 'activation = "softmax"',
-     "layers[0].activation: unknown 'softmax' (expected one of: identity, sigmoid, tanh, relu, leaky_relu, "
+     "layers[0].activation (L1): unknown 'softmax' (expected one of: identity, sigmoid, tanh, relu, leaky_relu, "
      "softplus)"),
     ('activation = "relu"', 'activation = "relu"\nbias = "yes"',
-     "layers[0].bias: expected true or false, got the string 'yes'"),
+     "layers[0].bias (L1): expected true or false, got the string 'yes'"),
     ("channels = 2", "channels = 2\nunits = 3",
-     "layers[0].units: a conv2d layer does not take this key (it takes: activation, bias, channels, kernel, "
+     "layers[0].units (L1): a conv2d layer does not take this key (it takes: activation, bias, channels, kernel, "
      "padding, stride, type)"),
     ("channels = 2", "channels = 2\nshape = 3",
-     "layers[0].shape: unknown key (a conv2d layer takes: activation, bias, channels, kernel, padding, stride, "
+     "layers[0].shape (L1): unknown key (a conv2d layer takes: activation, bias, channels, kernel, padding, stride, "
      "type)"),
     ("input_shape = [1, 4, 4]\n", "",
-     "layers[0].type: a conv2d layer takes rows of shape [channels, height, width], but its input (the data's "
+     "layers[0].type (L1): a conv2d layer takes rows of shape [channels, height, width], but its input (the data's "
      "rows) has shape 16 (set [data] input_shape, e.g. [1, 8, 8] for 8x8 images of one channel)"),
     ("input_shape = [1, 4, 4]", "input_shape = [1, 4, 5]",
      "data.input_shape: [1, 4, 5] holds 20 values per row, but [data].inputs names 16 column(s); the two must "
@@ -139,38 +139,38 @@ IMAGE_MISTAKES = [
      "data.input_shape: expected 1 to 3 positive whole numbers: [channels, length] for signals, [channels, "
      "height, width] for images"),
     ('type = "conv2d"', 'type = "conv1d"',
-     "layers[0].type: a conv1d layer takes rows of shape [channels, length], but its input (the data's rows) "
+     "layers[0].type (L1): a conv1d layer takes rows of shape [channels, length], but its input (the data's rows) "
      "has shape 1x4x4 (set [data] input_shape, e.g. [1, 8, 8] for 8x8 images of one channel)"),
     ("momentum = 0.9", "momentum = 1.5",
-     "layers[1].momentum: 1.5 is outside [0, 1) (the share of the running statistics kept at each step)"),
-    ("momentum = 0.9", 'momentum = "fast"', "layers[1].momentum: expected a number, got the string 'fast'"),
+     "layers[1].momentum (L2): 1.5 is outside [0, 1) (the share of the running statistics kept at each step)"),
+    ("momentum = 0.9", 'momentum = "fast"', "layers[1].momentum (L2): expected a number, got the string 'fast'"),
     ("momentum = 0.9", "epsilon = 0",
-     "layers[1].epsilon: 0.0 must be a positive number (it keeps the division finite)"),
+     "layers[1].epsilon (L2): 0.0 must be a positive number (it keeps the division finite)"),
     ("momentum = 0.9", "rate = 0.1",
-     "layers[1].rate: a batch_norm layer does not take this key (it takes: epsilon, momentum, type)"),
-    ("size = 2", "", "layers[2].size: missing"),
-    ("size = 2", "size = 5", "layers[2].size: a 5x5 window does not fit the input's 4x4 positions (4x4 with "
+     "layers[1].rate (L2): a batch_norm layer does not take this key (it takes: epsilon, momentum, type)"),
+    ("size = 2", "", "layers[2].size (L3): missing"),
+    ("size = 2", "size = 5", "layers[2].size (L3): a 5x5 window does not fit the input's 4x4 positions (4x4 with "
                              "padding)"),
-    ("size = 2", "size = 2\nstride = 0", "layers[2].stride: 0 is not positive"),
-    ("size = 2", "size = [2, 2, 2]", "layers[2].size: expected a whole number or a list of 2 whole numbers"),
+    ("size = 2", "size = 2\nstride = 0", "layers[2].stride (L3): 0 is not positive"),
+    ("size = 2", "size = [2, 2, 2]", "layers[2].size (L3): expected a whole number or a list of 2 whole numbers"),
     ("size = 2", "size = 2\npadding = 1",
-     "layers[2].padding: a max_pool layer does not take this key (it takes: size, stride, type)"),
+     "layers[2].padding (L3): a max_pool layer does not take this key (it takes: size, stride, type)"),
     ('type = "flatten"', 'type = "flatten"\nsize = 3',
-     "layers[3].size: a flatten layer does not take this key (it takes: type)"),
+     "layers[3].size (L4): a flatten layer does not take this key (it takes: type)"),
     ('[[layers]]\ntype = "flatten"\n', "",
-     "layers[5]: a dense layer takes flat rows, but its input (layer 5's output) has shape 2x2x2; put a layer "
+     "layers[5] (L6): a dense layer takes flat rows, but its input (L5's output) has shape 2x2x2; put a layer "
      "with type = \"flatten\" before it"),
-    ("rate = 0.2", "", "layers[4].rate: missing"),
-    ("rate = 0.2", "rate = 1.0", "layers[4].rate: 1.0 is outside [0, 1) (the share of entries dropped)"),
-    ("rate = 0.2", "rate = -0.1", "layers[4].rate: -0.1 is outside [0, 1) (the share of entries dropped)"),
-    ("rate = 0.2", 'rate = "half"', "layers[4].rate: expected a number, got the string 'half'"),
-    ("rate = 0.2", "rate = 0.2\nseed = -1", "layers[4].seed: -1 is negative (a seed is a whole number, 0 or more)"),
+    ("rate = 0.2", "", "layers[4].rate (L5): missing"),
+    ("rate = 0.2", "rate = 1.0", "layers[4].rate (L5): 1.0 is outside [0, 1) (the share of entries dropped)"),
+    ("rate = 0.2", "rate = -0.1", "layers[4].rate (L5): -0.1 is outside [0, 1) (the share of entries dropped)"),
+    ("rate = 0.2", 'rate = "half"', "layers[4].rate (L5): expected a number, got the string 'half'"),
+    ("rate = 0.2", "rate = 0.2\nseed = -1", "layers[4].seed (L5): -1 is negative (a seed is a whole number, 0 or more)"),
     ("epsilon = 1e-5", "epsilon = -1.0",
-     "layers[5].epsilon: -1.0 must be a positive number (it keeps the division finite)"),
-    ("epsilon = 1e-5", "epsilon = nan", "layers[5].epsilon: nan must be a positive number (it keeps the division "
+     "layers[5].epsilon (L6): -1.0 must be a positive number (it keeps the division finite)"),
+    ("epsilon = 1e-5", "epsilon = nan", "layers[5].epsilon (L6): nan must be a positive number (it keeps the division "
                                         "finite)"),
     ("epsilon = 1e-5", "momentum = 0.5",
-     "layers[5].momentum: a layer_norm layer does not take this key (it takes: epsilon, type)"),
+     "layers[5].momentum (L6): a layer_norm layer does not take this key (it takes: epsilon, type)"),
 ]
 
 
@@ -199,26 +199,26 @@ def test_the_base_files_are_valid(write_model: WriteModel) -> None:
 
 
 SIGNAL_MISTAKES = [
-    ("kernel = 3", "kernel = [3, 3]", "layers[0].kernel: expected a whole number or a list of 1 whole numbers"),
+    ("kernel = 3", "kernel = [3, 3]", "layers[0].kernel (L1): expected a whole number or a list of 1 whole numbers"),
     ("input_shape = [2, 8]", "input_shape = [16]",
-     "layers[0].type: a conv1d layer takes rows of shape [channels, length], but its input (the data's rows) has "
+     "layers[0].type (L1): a conv1d layer takes rows of shape [channels, length], but its input (the data's rows) has "
      "shape 16 (set [data] input_shape, e.g. [1, 8, 8] for 8x8 images of one channel)"),
-    ("size = 2", "size = 9", "layers[2].size: a 9 window does not fit the input's 8 positions (8 with padding)"),
+    ("size = 2", "size = 9", "layers[2].size (L3): a 9 window does not fit the input's 8 positions (8 with padding)"),
 ]
 
 TABLE_MISTAKES = [
-    ('columns = ["kind"]', "", "layers[0].columns: missing"),
+    ('columns = ["kind"]', "", "layers[0].columns (L1): missing"),
     ('columns = ["kind"]', 'columns = ["colour"]',
-     "layers[0].columns: 'colour' is not one of [data].inputs (kind, size)"),
-    ('columns = ["kind"]', 'columns = ["kind", "kind"]', "layers[0].columns: column(s) 'kind' named more than once"),
-    ('columns = ["kind"]', "columns = []", "layers[0].columns: expected a non-empty list of column names"),
-    ("categories = 3", "categories = 0", "layers[0].categories: 0 is not a positive whole number"),
+     "layers[0].columns (L1): 'colour' is not one of [data].inputs (kind, size)"),
+    ('columns = ["kind"]', 'columns = ["kind", "kind"]', "layers[0].columns (L1): column(s) 'kind' named more than once"),
+    ('columns = ["kind"]', "columns = []", "layers[0].columns (L1): expected a non-empty list of column names"),
+    ("categories = 3", "categories = 0", "layers[0].categories (L1): 0 is not a positive whole number"),
     ("categories = 3", "categories = 2000000",
-     "layers[0].categories: 2,000,000 is more than the 1,000,000 Stepper handles"),
-    ("size = 2", "", "layers[0].size: missing"),
-    ("size = 2", "size = 2.5", "layers[0].size: expected an integer, got a number"),
+     "layers[0].categories (L1): 2,000,000 is more than the 1,000,000 Stepper handles"),
+    ("size = 2", "", "layers[0].size (L1): missing"),
+    ("size = 2", "size = 2.5", "layers[0].size (L1): expected an integer, got a number"),
     ("size = 2", "size = 2\nunits = 4",
-     "layers[0].units: an embedding layer does not take this key (it takes: categories, columns, size, type)"),
+     "layers[0].units (L1): an embedding layer does not take this key (it takes: categories, columns, size, type)"),
 ]
 
 ALL = ([(IMAGE, "image", *m) for m in IMAGE_MISTAKES] + [(SIGNAL, "image", *m) for m in SIGNAL_MISTAKES]
@@ -238,7 +238,7 @@ def test_an_embedding_must_come_first(write_model: WriteModel, capsys: pytest.Ca
     text = TABLE.replace('[[layers]]\ntype = "embedding"', '[[layers]]\nunits = 2\nactivation = "tanh"\n\n'
                          '[[layers]]\ntype = "embedding"')
     assert check_error(write_model, capsys, text, TABLE_DATA) == (
-        "stepper: model.toml: layers[1].type: an embedding reads category columns of the data, so it must be "
+        "stepper: model.toml: layers[1].type (L2): an embedding reads category columns of the data, so it must be "
         "the first layer\n")
 
 

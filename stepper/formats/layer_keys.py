@@ -171,7 +171,7 @@ def _epsilon(keys: Any) -> float:
 
 
 def _source(index: int) -> str:
-    return "the data's rows" if index == 0 else f"layer {index}'s output"
+    return "the data's rows" if index == 0 else f"L{index}'s output"
 
 
 def need_flat(keys: Any, kind: str, shape: tuple[int, ...], index: int) -> None:
