@@ -152,7 +152,7 @@ def test_a_whole_convolutional_network_matches_jax() -> None:
     conv = Conv((1, 6, 6), 3, grid((6, 6), (3, 3), (1, 1), "same"), act["relu"])
     layers = [conv, BatchNorm((3, 6, 6)), Pool((3, 6, 6), grid((6, 6), (2, 2), (2, 2)), "max"),
               Flatten((3, 3, 3)), LayerNorm((27,)), Dense(27, 4, act["softmax"])]
-    net = Network(36, layers, "categorical_cross_entropy", (1, 6, 6))
+    net = Network(36, layers, "categorical_cross_entropy", input_shape=(1, 6, 6))
     rng = np.random.default_rng(11)
     theta = rng.normal(0.0, 0.5, net.n_params)
     X = rng.normal(size=(10, 36))

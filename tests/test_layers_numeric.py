@@ -35,7 +35,7 @@ def around(case: Case) -> tuple[Network, np.ndarray, np.ndarray, np.ndarray]:
     layers: list[Builtin] = [layer]
     width = layer.n_out
     layers += [Dense(width, 2, ACTIVATIONS["tanh"]), Dense(2, 1, ACTIVATIONS["identity"])]
-    net = Network(layer.n_in, list(layers), "mean_squared_error", layer.in_shape)
+    net = Network(layer.n_in, list(layers), "mean_squared_error", input_shape=layer.in_shape)
     rng = np.random.default_rng(4)
     theta = rng.normal(0.0, 0.5, net.n_params)
     for block in net.layout.blocks:
@@ -89,7 +89,7 @@ def tie_network(K: tuple[float, float]) -> tuple[Network, np.ndarray, np.ndarray
     conv = Conv((2, 2, 2), 1, grid((2, 2), (1, 1), (1, 1)), ACTIVATIONS["identity"], bias=False)
     pool = Pool((1, 2, 2), grid((2, 2), (2, 2), (2, 2)), "max")
     net = Network(8, [conv, pool, Flatten((1, 1, 1)), Dense(1, 1, ACTIVATIONS["identity"])],
-                  "mean_squared_error", (2, 2, 2))
+                  "mean_squared_error", input_shape=(2, 2, 2))
     first = np.array([1.0, 0.0, -3.0, -3.0])   # channel 0 over the 2x2 positions
     second = np.array([0.0, 1.0, -3.0, -3.0])  # channel 1
     X = np.concatenate([first, second])[None, :].repeat(3, axis=0) * np.array([[1.0], [2.0], [3.0]])
@@ -115,7 +115,7 @@ def test_a_relu_at_zero_in_a_convolution_is_a_kink() -> None:
     # One channel, a 1x1 kernel K = 1 and bias b = -1: the pixel equal to 1 sits exactly at the corner.
     conv = Conv((1, 1, 2), 1, grid((1, 2), (1, 1), (1, 1)), ACTIVATIONS["relu"])
     net = Network(2, [conv, Flatten((1, 1, 2)), Dense(2, 1, ACTIVATIONS["identity"])], "mean_squared_error",
-                  (1, 1, 2))
+                  input_shape=(1, 1, 2))
     theta = np.array([1.0, -1.0, 0.7, -0.4, 0.0])
     X = np.array([[1.0, 3.0], [2.0, 1.0]])
     Y = np.array([[0.3], [-0.2]])

@@ -192,8 +192,8 @@ class Network:
     layers: list[Layer]
     loss: str
     l2: float = 0.0
-    input_shape: tuple[int, ...] | None = None
-    mode: Mode = field(default_factory=Mode)
+    input_shape: tuple[int, ...] | None = field(default=None, kw_only=True)
+    mode: Mode = field(default_factory=Mode, kw_only=True)
     layout: ParamLayout = field(init=False)
     state_layout: ParamLayout = field(init=False)
 
