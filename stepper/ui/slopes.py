@@ -89,7 +89,7 @@ class SlopeKeys(AppBase):
         """The custom layers' input-slope checks, done before ``deadline``; False when they were not."""
         late: Callable[[], bool] = lambda: time.monotonic() > deadline  # noqa: E731
         try:
-            checks = self.figures.input_slopes(self.session.theta.copy(), late)
+            checks = self.figures.input_slopes(self.session.theta.copy(), late, self.session.training_net())
         except StepperError as exc:
             self._numeric_failed_at = version
             self._problem(exc.message)
