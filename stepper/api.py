@@ -261,5 +261,6 @@ def open_app(session: Session, log_file: str | Path | None = None) -> int:
 def export(model: Setup | Session, path: str | Path, *, layout: str | None = None,
            dtype: str | None = None) -> Exported:
     """Write the weights to ``path``: ``.onnx``, or ``.safetensors`` in ``layout`` (``torch`` or ``stepper``)."""
-    setup, theta = (model.setup, model.theta.copy()) if isinstance(model, Session) else (model, model.theta0)
-    return export_weights(setup, theta, Path(path), layout, dtype)
+    if isinstance(model, Session):
+        return export_weights(model.setup, model.theta.copy(), Path(path), layout, dtype, state=model.state.copy())
+    return export_weights(model, model.theta0, Path(path), layout, dtype)

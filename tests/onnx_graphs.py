@@ -81,21 +81,34 @@ def save(model: onnx.ModelProto, path: Path) -> Path:
     return path
 
 
+#: Operators onnxruntime's CPU build has no float64 kernel for (onnxruntime 1.32: "Could not find an
+#: implementation"); a float64 graph holding one is run by the ONNX project's reference evaluator.
+NO_FLOAT64_KERNEL = {"Softplus", "Conv", "AveragePool"}
+
+
 def run_onnxruntime(path: Path, X: np.ndarray, transposed_input: bool = False) -> np.ndarray:
     """The graph's output for ``X`` ``(n, n_in)``, by onnxruntime (the outside reference).
 
-    onnxruntime's CPU build has no float64 Softplus; such a graph is run by
+    The rows are shaped as the graph's input (``(n, C, H, W)`` for a Conv net)
+    and given its element type (int64 category numbers for a Gather). A float64
+    graph with an operator in :data:`NO_FLOAT64_KERNEL` is run by
     ``onnx.reference.ReferenceEvaluator``, the ONNX project's own numpy
     implementation of the operator specification.
     """
     import onnxruntime
 
     model = onnx.load(str(path))
-    elem = model.graph.input[0].type.tensor_type.elem_type
-    feed = (X.T if transposed_input else X).astype(np.float32 if elem == TensorProto.FLOAT else np.float64)
-    feed = np.ascontiguousarray(feed)
-    name = model.graph.input[0].name
-    if elem == TensorProto.DOUBLE and any(node.op_type == "Softplus" for node in model.graph.node):
+    info = model.graph.input[0]
+    elem = info.type.tensor_type.elem_type
+    dims = [d.dim_value for d in info.type.tensor_type.shape.dim]
+    types = {TensorProto.FLOAT: np.float32, TensorProto.DOUBLE: np.float64, TensorProto.INT64: np.int64,
+             TensorProto.INT32: np.int32}
+    rows = X.T if transposed_input else X
+    if len(dims) > 2:
+        rows = rows.reshape((X.shape[0], *dims[1:]))
+    feed = np.ascontiguousarray(rows.astype(types[elem]))
+    name = info.name
+    if elem == TensorProto.DOUBLE and any(node.op_type in NO_FLOAT64_KERNEL for node in model.graph.node):
         from onnx.reference import ReferenceEvaluator
 
         return np.asarray(ReferenceEvaluator(model).run(None, {name: feed})[0])

@@ -11,16 +11,17 @@ from stepper.formats.checkpoint import load_checkpoint
 from stepper.formats.export import export_weights
 
 
-
-
 def handle(args: argparse.Namespace) -> int:
     setup = load(args)
-    theta = setup.theta0
+    net = setup.network
+    theta, state = setup.theta0, None
     inputs: tuple[Path, ...] = ()
     if args.resume is not None:
-        theta = load_checkpoint(args.resume, setup.network.layout).theta
+        # The running statistics of a batch norm come with the weights (an ONNX file holds them).
+        data = load_checkpoint(args.resume, net.layout, net.state_layout if net.has_state else None)
+        theta, state = data.theta, (data.state if net.has_state else None)
         inputs = (args.resume,)
-    done = export_weights(setup, theta, args.to, args.layout, args.dtype, inputs)
+    done = export_weights(setup, theta, args.to, args.layout, args.dtype, inputs, state=state)
     what = "ONNX" if done.kind == "onnx" else f"safetensors, {done.layout} layout"
     out = sys.stdout
     out.write(f"wrote {done.path} ({what}, {done.dtype}, {setup.network.n_params} weights)\n")

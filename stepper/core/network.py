@@ -184,6 +184,8 @@ class Network:
         input_shape: how each input row is read by shaped layers (channels
             first, e.g. ``(1, 8, 8)``); ``(n_inputs,)`` when flat.
         mode: how the network runs (training at step 0 unless made by :meth:`at`).
+        start_state: the kept arrays at the start, ``(n_state,)`` (running
+            statistics read from a file); None: each array's fill (means 0, variances 1).
         layout: where each parameter sits in ``theta``.
         state_layout: where each kept array (running statistics) sits in a state vector.
     """
@@ -194,6 +196,7 @@ class Network:
     l2: float = 0.0
     input_shape: tuple[int, ...] | None = field(default=None, kw_only=True)
     mode: Mode = field(default_factory=Mode, kw_only=True)
+    start_state: Array | None = field(default=None, kw_only=True, repr=False)
     layout: ParamLayout = field(init=False)
     state_layout: ParamLayout = field(init=False)
 
@@ -211,6 +214,8 @@ class Network:
             if layer.n_in != width:
                 raise ValueError(f"layer {index + 1} takes {layer.n_in} inputs but receives {width}")
             width = layer.n_out
+        if self.start_state is not None and self.start_state.shape != (self.state_layout.size,):
+            raise ValueError(f"start state of shape {self.start_state.shape} for {self.state_layout.size} kept values")
 
     @property
     def n_params(self) -> int:
@@ -251,7 +256,9 @@ class Network:
         return any(isinstance(layer, Dropout) and layer.rate > 0 for layer in self.layers)
 
     def initial_state(self) -> Array:
-        """The kept arrays at the start, ``(n_state,)``: running means 0, running variances 1."""
+        """The kept arrays at the start, ``(n_state,)``: :attr:`start_state`, or running means 0 and variances 1."""
+        if self.start_state is not None:
+            return self.start_state.copy()
         state = np.zeros(self.state_layout.size)
         for block in self.state_layout.blocks:
             state[block.start : block.stop] = block.fill or 0.0

@@ -39,12 +39,12 @@ DATA_KEYS = {"file", "inputs", "targets", "standardize", "validation_fraction", 
              "validation_file", "validation_column", "input_shape"}
 
 
-def load_data(model_path: Path, keys: Any, categories: tuple[list[str], int] | None = None) -> Dataset:
+def load_data(model_path: Path, keys: Any, categories: tuple[list[str] | None, int] | None = None) -> Dataset:
     """The dataset that ``[data]`` describes; ``keys`` is its ``model_file._Keys``.
 
-    ``categories``: an embedding's category columns and category count, if the
-    first layer is one; those columns must hold category numbers, and are never
-    standardized.
+    ``categories``: an embedding's category columns (None: every input column,
+    as for an ONNX graph's Gather) and category count, if the first layer is
+    one; those columns must hold category numbers, and are never standardized.
     """
     csv_path = _file(model_path, keys, "file")
     targets = keys.names("targets")
@@ -96,7 +96,7 @@ def load_data(model_path: Path, keys: Any, categories: tuple[list[str], int] | N
         source = f"{csv_path} (validation rows: {val_path})"
     raw: list[str] = []
     if categories is not None:
-        raw = [c for c in categories[0] if c in inputs]
+        raw = list(inputs) if categories[0] is None else [c for c in categories[0] if c in inputs]
         _check_categories(table, raw, categories[1], source)
     return build_dataset(table, inputs, targets, standardize, fraction, seed, source, holdout, raw)
 

@@ -48,12 +48,14 @@ class Exported:
 
 
 def export_weights(setup: Setup, theta: Array, target: Path, layout: str | None = None,
-                   dtype: str | None = None, inputs: tuple[Path, ...] = ()) -> Exported:
+                   dtype: str | None = None, inputs: tuple[Path, ...] = (), *, state: Array | None = None) -> Exported:
     """Write weights ``theta`` ``(n_params,)`` of ``setup``'s network to ``target``.
 
     ``layout`` (safetensors only) defaults to ``torch``; ``dtype`` to the float
     type the weights came in. ``inputs`` are further files that must not be
-    overwritten (a checkpoint the weights were loaded from).
+    overwritten (a checkpoint the weights were loaded from). ``state``
+    ``(n_state,)``: the layers' kept arrays (batch norm's running statistics,
+    which an ONNX file holds); by default the network's starting ones.
     """
     target = Path(target)
     suffix = target.suffix.lower()
@@ -71,7 +73,7 @@ def export_weights(setup: Setup, theta: Array, target: Path, layout: str | None 
     if suffix == ".onnx":
         from stepper.formats.onnx_write import onnx_bytes
 
-        data = onnx_bytes(net, theta, setup.origin, dtype, setup.name)
+        data = onnx_bytes(net, theta, setup.origin, dtype, setup.name, state)
         layout = "onnx"
     else:
         layout = layout or "torch"

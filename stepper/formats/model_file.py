@@ -285,23 +285,32 @@ def setup_from_doc(doc: Any, path: Path, raw: bytes, data: Dataset | None = None
     top = _Keys(label, "", doc, TOP_KEYS)
     name = top.get("name", str, path.parent.name or path.stem)
     loss = top.choice("loss", LOSSES)
-    input_shape = None
-    if data is None:
-        data_keys = _Keys(label, "data", top.get("data", dict), DATA_KEYS)
-        first = top.table.get("layers")
-        data = load_data(path, data_keys, category_columns(first[0] if isinstance(first, list) and first else None))
-        input_shape = _input_shape(data_keys, len(data.input_names))
-    elif top.has("data"):
-        top.fail("data", "not used when the data come as arrays")
-    origin = None
+    graph = None
     if top.has("network"):
         for key in ("layers", "init"):
             if top.has(key):
                 top.fail(key, "not used together with network: the graph gives the layers and their weights")
-        from stepper.formats.onnx_setup import graph_network
+        from stepper.formats.onnx_setup import graph_categories, graph_network
 
-        network, theta0, origin = graph_network(top, path, loss)
-        digest = hashlib.sha256(raw + (origin.graph or b"")).hexdigest()
+        graph = graph_network(top, path, loss)
+    input_shape = None
+    if data is None:
+        data_keys = _Keys(label, "data", top.get("data", dict), DATA_KEYS)
+        first = top.table.get("layers")
+        categories = category_columns(first[0] if isinstance(first, list) and first else None) if graph is None \
+            else graph_categories(graph[0])
+        data = load_data(path, data_keys, categories)
+        input_shape = _input_shape(data_keys, len(data.input_names))
+        if graph is not None and input_shape is not None and input_shape != graph[0].input_shape:
+            data_keys.fail("input_shape", f"{list(input_shape)}, but the graph's input takes samples of shape "
+                                          f"{list(graph[0].input_shape or ())}; leave input_shape out (the graph "
+                                          "gives it)")
+    elif top.has("data"):
+        top.fail("data", "not used when the data come as arrays")
+    origin: WeightOrigin | None
+    if graph is not None:
+        network, theta0, origin = graph
+        digest = hashlib.sha256(raw + (graph[2].graph or b"")).hexdigest()
     else:
         network, theta0, origin = _described_network(label, top, path, data, loss, input_shape)
         digest = hashlib.sha256(raw).hexdigest()

@@ -47,6 +47,11 @@ MAX_TENSOR_ENTRIES = 10_000_000
 MIN_OPSET = 13
 #: Float element types by ONNX's code (TensorProto.FLOAT = 1, DOUBLE = 11).
 FLOAT_TYPES = {1: "float32", 11: "float64"}
+#: Whole-number element types read: a graph input of category numbers (an embedding's indices),
+#: a Reshape's shape, a Dropout's training_mode (TensorProto.INT32 = 6, INT64 = 7, BOOL = 9).
+INT_TYPES = {6: "int32", 7: "int64", 9: "bool"}
+#: Most entries of a whole-number initializer (a shape, a flag): they are never weights.
+MAX_INT_ENTRIES = 16
 
 
 @dataclass(frozen=True)
@@ -131,6 +136,32 @@ class OnnxGraph:
         if not np.all(np.isfinite(array)):
             raise self.fail(f"{where} holds a value that is not a finite number")
         return array, dtype
+
+    def whole_numbers(self, name: str, node: Node) -> tuple[int, ...]:
+        """The small int32, int64 or bool initializer ``name`` (a shape, a flag) as whole numbers."""
+        tensor = self._tensors[name]
+        where = f"{node.label}: initializer {name!r}"
+        dtype = INT_TYPES.get(int(tensor.data_type))
+        if dtype is None:
+            raise self.fail(f"{where} is of ONNX element type {_type_name(tensor.data_type)}; Stepper expects "
+                            "whole numbers here (int64, int32 or bool)")
+        dims = tuple(int(d) for d in tensor.dims)
+        count = 1
+        for d in dims:
+            count *= d
+        if any(d < 0 for d in dims) or count > MAX_INT_ENTRIES:
+            raise self.fail(f"{where} has shape {dims}; Stepper reads at most {MAX_INT_ENTRIES} whole numbers here")
+        if tensor.data_location == 1:
+            raise self.fail(f"{where} is stored as external data; Stepper reads a shape or a flag only inline")
+        if tensor.raw_data:
+            code = {"int32": "<i4", "int64": "<i8", "bool": "u1"}[dtype]
+            if len(tensor.raw_data) != count * np.dtype(code).itemsize:
+                raise self.fail(f"{where}: its data ({len(tensor.raw_data)} bytes) does not match its shape {dims}")
+            return tuple(int(v) for v in np.frombuffer(tensor.raw_data, dtype=code))
+        typed = tensor.int64_data if dtype == "int64" else tensor.int32_data
+        if len(typed) != count:
+            raise self.fail(f"{where}: its data ({len(typed)} values) does not match its shape {dims}")
+        return tuple(int(v) for v in typed)
 
 
 def read_onnx(path: Path) -> OnnxGraph:
@@ -238,11 +269,14 @@ def _read_bytes(path: Path) -> bytes:
 
 
 def _info(path: Path, what: str, info: Any) -> TensorInfo:
+    """The graph's input or output; an input may also hold whole numbers (an embedding's category numbers)."""
     kind = info.type.WhichOneof("value")
     if kind != "tensor_type":
         raise ModelFileError(f"{path}: graph {what} {info.name!r} is not a tensor (it is a {kind or 'value of no type'})")
     ttype = info.type.tensor_type
     dtype = FLOAT_TYPES.get(int(ttype.elem_type))
+    if dtype is None and what == "input" and int(ttype.elem_type) in (6, 7):
+        dtype = INT_TYPES[int(ttype.elem_type)]
     if dtype is None:
         raise ModelFileError(f"{path}: graph {what} {info.name!r} is of element type "
                              f"{_type_name(ttype.elem_type)}; Stepper runs float32 and float64 graphs")

@@ -74,6 +74,11 @@ class WeightOrigin:
             export writes back with the current weights.
         input_transposed: the ONNX graph takes its input features-by-samples
             (Gemm with ``transA = 1`` on the graph input).
+        state_tensors: per array a layer keeps besides its weights (an ONNX
+            BatchNormalization's ``input_mean`` as ``"L2.running_mean"``), its source.
+        inserts: arrays with no tensor in the file (a LayerNormalization
+            without ``B``), by name: ``(node index, input position)`` where an
+            ONNX export adds the tensor named in ``tensors``.
     """
 
     kind: str
@@ -83,6 +88,8 @@ class WeightOrigin:
     layout: str
     graph: bytes | None = field(default=None, repr=False)
     input_transposed: bool = False
+    state_tensors: dict[str, TensorSource] = field(default_factory=dict)
+    inserts: dict[str, tuple[int, int]] = field(default_factory=dict)
 
     def source_name(self, layout: ParamLayout, flat: int) -> str | None:
         """``fc1.weight[0,3]`` for the weight at ``flat``, or None if its array has no source."""

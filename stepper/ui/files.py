@@ -77,7 +77,7 @@ class FileKeys(AppBase):
         last = self.session.last_checkpoint
         try:
             done = export_weights(self.session.setup, self.session.theta.copy(), path, layout, dtype,
-                                  () if last is None else (last,))
+                                  () if last is None else (last,), state=self.session.state.copy())
         except StepperError as exc:
             self.say(exc.message, error=True)
             return
