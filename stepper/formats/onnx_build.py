@@ -50,7 +50,7 @@ class _Graph:
     def tensor(self, name: str, values: Array) -> str:
         from onnx import numpy_helper
 
-        self.inits.append(numpy_helper.from_array(np.ascontiguousarray(values).astype(np_dtype(self.dtype)), name))
+        self.inits.append(numpy_helper.from_array(np.array(values, dtype=np_dtype(self.dtype), order="C"), name))
         return name
 
     def node(self, op: str, inputs: list[str], name: str, rank: int | None = None, **attributes: Any) -> None:

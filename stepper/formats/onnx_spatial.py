@@ -120,14 +120,14 @@ def _conv(node: Node, chain: Chain) -> None:
     chain.close()
     shape = chain.need_shaped(node)
     dims = len(shape) - 1
-    K, name = chain.weight(node, 1, "W (kernel)")
-    if K.ndim != dims + 2 or K.shape[1] != shape[0]:
-        raise chain.fail(node, f"W {name!r} has shape {tuple(K.shape)}; for an input of {shape[0]} channels "
-                               f"Stepper expects (out channels, {shape[0]}, {', '.join(['k'] * dims)})")
     group = node.attributes.get("group", 1)
     if group != 1:
         raise chain.fail(node, f"attribute group is {group!r} (Stepper runs group = 1: every output channel "
                                "sees every input channel)")
+    K, name = chain.weight(node, 1, "W (kernel)")
+    if K.ndim != dims + 2 or K.shape[1] != shape[0]:
+        raise chain.fail(node, f"W {name!r} has shape {tuple(K.shape)}; for an input of {shape[0]} channels "
+                               f"Stepper expects (out channels, {shape[0]}, {', '.join(['k'] * dims)})")
     kernel = ints_attribute(node, chain, "kernel_shape", dims, list(K.shape[2:])) or []
     if tuple(kernel) != K.shape[2:]:
         raise chain.fail(node, f"attribute kernel_shape is {kernel} but W {name!r} has windows of "
