@@ -119,10 +119,12 @@ def diff_lines(d: WeightDiff, names: Sequence[str], label_a: str, label_b: str) 
              f"{'train cost':<12}{d.cost_a:>16.8g}{d.cost_b:>16.8g}"]
     if d.val_a is not None and d.val_b is not None:
         lines.append(f"{'validation':<12}{d.val_a:>16.8g}{d.val_b:>16.8g}")
+    labels = [f"L{move.index + 1} {move.label}"[:40] for move in d.layers]
+    width = max([24] + [len(label) + 1 for label in labels])  # a whole label, up to 40 characters
     lines += ["", f"change b - a: norm {d.change_norm:.4g}",
-              f"{'layer':<24}{'|b - a|':>12}{'|a|':>12}{'|b|':>12}{'|b-a|/|a|':>12}"]
-    for move in d.layers:
-        lines.append(f"{('L' + str(move.index + 1) + ' ' + move.label)[:23]:<24}{move.change:>12.4g}"
+              f"{'layer':<{width}}{'|b - a|':>12}{'|a|':>12}{'|b|':>12}{'|b-a|/|a|':>12}"]
+    for label, move in zip(labels, d.layers):
+        lines.append(f"{label:<{width}}{move.change:>12.4g}"
                      f"{move.before:>12.4g}{move.after:>12.4g}{number(move.relative):>12}")
     lines += ["", f"cosine of the change with the slope at b: {number(d.cosine_b, 3)}; at a: {number(d.cosine_a, 3)}",
               "  (-1: the change went straight downhill along that slope; 0: unrelated to it; +1: uphill)"]

@@ -60,3 +60,34 @@ def test_session_compares_with_a_saved_checkpoint(tmp_path: Path) -> None:
     assert d.cost_a == s.history[0].train_cost and d.cost_b == s.train_cost()
     assert d.val_a == s.history[0].val_cost and d.val_b == s.val_cost()
     np.testing.assert_array_equal(d.b, s.theta)
+
+
+def test_each_side_runs_at_its_own_step_and_running_statistics(tmp_path: Path) -> None:
+    # fan-bearing has dropout (a mask per step) and batch norm (running statistics for the
+    # validation cost): each side's costs are those the session recorded at that side's step.
+    # The reference is the session's own history, computed as the steps were made.
+    s = Session(load_setup(ROOT / "fan-bearing" / "model.toml"), rate=0.05)
+    s.step(3)
+    path = s.save_checkpoint(tmp_path / "three.safetensors")
+    s.step(4)
+    d = s.compare_with(path)
+    assert d.cost_a == s.history[3].train_cost and d.val_a == s.history[3].val_cost
+    assert d.cost_b == s.history[7].train_cost and d.val_b == s.history[7].val_cost
+    start = s.compare_to(s.setup.theta0)
+    assert start.cost_a == s.history[0].train_cost and start.val_a == s.history[0].val_cost
+
+
+def test_diff_command_runs_each_checkpoint_at_its_own_state(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    from stepper.cli import main
+
+    s = Session(load_setup(ROOT / "fan-bearing" / "model.toml"), rate=0.05)
+    s.step(2)
+    a = s.save_checkpoint(tmp_path / "a.safetensors")
+    s.step(3)
+    b = s.save_checkpoint(tmp_path / "b.safetensors")
+    assert main(["diff", str(a), str(b), "--json"]) == 0  # built-in layers run no user code: no --model needed
+    import json
+
+    doc = json.loads(capsys.readouterr().out)
+    assert doc["train_cost"] == {"a": s.history[2].train_cost, "b": s.history[5].train_cost}
+    assert doc["validation_cost"] == {"a": s.history[2].val_cost, "b": s.history[5].val_cost}

@@ -11,9 +11,10 @@ from typing import Any
 
 import numpy as np
 
-from stepper.core.weightdiff import WeightDiff, compare_weights
+from stepper.core.weightdiff import WeightDiff
 from stepper.errors import UsageError
-from stepper.formats.checkpoint import load_checkpoint, read_meta
+from stepper.formats.checkpoint import read_meta
+from stepper.formats.layer_keys import TYPES
 from stepper.formats.model_file import Setup, load_setup
 from stepper.scenarios import resolve_model
 from stepper.session import Session
@@ -44,13 +45,15 @@ def _model_for(args: argparse.Namespace) -> Setup:
 
 
 def _names_code(path: Path) -> bool:
-    """True when the model file at ``path`` has a custom layer (or cannot be read to tell)."""
+    """True when the model file at ``path`` has a custom layer (or cannot be read to tell); its built-in
+    layers (dense, conv2d, batch_norm, ...) run no code of the user's."""
     try:
         doc = tomllib.loads(path.read_text(encoding="utf-8"))
     except (OSError, UnicodeDecodeError, tomllib.TOMLDecodeError, RecursionError):
         return True
     layers = doc.get("layers")
-    return not isinstance(layers, list) or any(not isinstance(l, dict) or l.get("type", "dense") != "dense"
+    built_in = set(TYPES) - {"custom"}
+    return not isinstance(layers, list) or any(not isinstance(l, dict) or l.get("type", "dense") not in built_in
                                                for l in layers)
 
 
@@ -63,9 +66,12 @@ def handle(args: argparse.Namespace) -> int:
     session = Session(setup)
     if _is_checkpoint(args.b):
         session.load_checkpoint(Path(args.b))  # its L2 strength sets the costs' L2 term
-    a = load_checkpoint(Path(args.a), setup.network.layout).theta if _is_checkpoint(args.a) else setup.theta0
+    if _is_checkpoint(args.a):
+        a, nets_a = session.checkpoint_side(Path(args.a))
+    else:
+        a, nets_a = setup.theta0, session.nets_at(0, session.net.initial_state())
     data = setup.data
-    result = compare_weights(session.net, a, session.theta.copy(), data.X, data.Y, data.X_val, data.Y_val, args.top)
+    result = session.compare_to(a, top=args.top, nets_a=nets_a)
     label_a = args.a if _is_checkpoint(args.a) else f"{args.a} (starting weights)"
     label_b = args.b if _is_checkpoint(args.b) else f"{args.b} (starting weights)"
     if args.json:

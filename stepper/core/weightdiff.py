@@ -4,7 +4,9 @@ For weights ``a`` and ``b`` (``b`` the later or current one) and their change
 ``d = b - a``, all ``(n_params,)``:
 
 - the cost of each (with the network's L2 term) on the training rows and, when
-  there are any, the validation rows;
+  there are any, the validation rows, each side through its own networks where
+  they differ (:data:`Nets`: a dropout mask is the side's step's, batch norm's
+  running statistics the side's own);
 - per layer, the Euclidean norm of its part of ``d``, of ``a`` and of ``b``, and
   ``||d|| / ||a||`` (NaN when the layer's ``a`` is all zeros);
 - the weights that moved most, by ``|d|``;
@@ -24,6 +26,10 @@ from numpy.typing import NDArray
 from stepper.core.network import Network
 
 Array = NDArray[np.float64]
+
+#: One side's networks: as it trains (its step's dropout masks, batch statistics) and as
+#: the validation cost runs it (no dropout, batch norm's running statistics), from Network.at.
+Nets = tuple[Network, Network]
 
 
 @dataclass(frozen=True)
@@ -101,15 +107,23 @@ def compare_weights(
     X_val: Array | None = None,
     Y_val: Array | None = None,
     top: int = 10,
+    *,
+    nets_a: Nets | None = None,
+    nets_b: Nets | None = None,
 ) -> WeightDiff:
-    """Compare weights ``a`` and ``b`` (``(n_params,)``) of ``net`` on ``X``, ``Y`` (and the validation rows)."""
+    """Compare weights ``a`` and ``b`` (``(n_params,)``) of ``net`` on ``X``, ``Y`` (and the validation rows).
+
+    ``nets_a`` and ``nets_b`` are each side's networks (default ``net`` for both roles).
+    """
     d = b - a
-    cost_a, slope_a = net.cost_and_slopes(a, X, Y)
-    cost_b, slope_b = net.cost_and_slopes(b, X, Y)
+    train_a, eval_a = nets_a or (net, net)
+    train_b, eval_b = nets_b or (net, net)
+    cost_a, slope_a = train_a.cost_and_slopes(a, X, Y)
+    cost_b, slope_b = train_b.cost_and_slopes(b, X, Y)
     val_a: float | None = None
     val_b: float | None = None
     if X_val is not None and Y_val is not None and X_val.shape[0] > 0:
-        val_a, val_b = net.cost(a, X_val, Y_val), net.cost(b, X_val, Y_val)
+        val_a, val_b = eval_a.cost(a, X_val, Y_val), eval_b.cost(b, X_val, Y_val)
     layer_of = net.layout.layer_index
     layers = []
     for i, layer in enumerate(net.layers):

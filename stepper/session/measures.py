@@ -15,9 +15,10 @@ from numpy.typing import NDArray
 from stepper.core.histograms import DEFAULT_BINS, LayerSpread, layer_spreads
 from stepper.core.metrics import THRESHOLD, Metrics, main_figure, metrics, task_of
 from stepper.core.rows import RowLosses, row_losses
-from stepper.core.weightdiff import WeightDiff, compare_weights
+from stepper.core.weightdiff import Nets, WeightDiff, compare_weights
 from stepper.formats.checkpoint import load_checkpoint
-from stepper.session.core import SessionCore
+from stepper.formats.saved_state import read_state
+from stepper.session.core import SLOPE_SOURCES, SessionCore
 
 
 SPLITS = ("both", "train", "validation")
@@ -121,14 +122,38 @@ class Measures(SessionCore):
 
     def checkpoint_weights(self, path: Path | str) -> NDArray[np.float64]:
         """The weights of the checkpoint at ``path``, checked against the model; nothing is loaded."""
-        return load_checkpoint(Path(path), self.net.layout).theta
+        return self.checkpoint_side(path)[0]
+
+    def checkpoint_side(self, path: Path | str) -> tuple[NDArray[np.float64], Nets]:
+        """The checkpoint's weights ``(n_params,)`` and its networks (its step's dropout masks, its
+        running statistics), checked against the model; nothing is loaded."""
+        path = Path(path)
+        data = load_checkpoint(path, self.net.layout, self.net.state_layout, digest=False)
+        if not (self.net.varies_by_step or self.net.has_state):
+            return data.theta, (self.net, self.net)
+        saved = read_state(path, data, self.net.layout, self.setup.data.n_train, SLOPE_SOURCES)
+        return data.theta, self.nets_at(saved.step_count, data.state)
+
+    def nets_at(self, step: int, state: NDArray[np.float64]) -> Nets:
+        """The network as it trains at update ``step`` and as it is evaluated, with kept arrays ``state``."""
+        if not (self.net.varies_by_step or self.net.has_state):
+            return self.net, self.net
+        return self.net.at(True, step, state), self.net.at(False, step, state)
 
     def compare_with(self, path: Path | str, top: int = 10) -> WeightDiff:
         """The checkpoint at ``path`` (as ``a``) against the current weights (as ``b``)."""
-        return self.compare_to(self.checkpoint_weights(path), top=top)
+        theta, nets = self.checkpoint_side(path)
+        return self.compare_to(theta, top=top, nets_a=nets)
 
-    def compare_to(self, a: NDArray[np.float64], b: NDArray[np.float64] | None = None, top: int = 10) -> WeightDiff:
-        """Weights ``a`` against ``b`` (default: the current weights), both ``(n_params,)``."""
+    def compare_to(self, a: NDArray[np.float64], b: NDArray[np.float64] | None = None, top: int = 10,
+                   nets_a: Nets | None = None) -> WeightDiff:
+        """Weights ``a`` against ``b`` (default: the current weights), both ``(n_params,)``.
+
+        ``b`` runs through the session's current networks; ``a`` through ``nets_a``
+        (default: the starting ones, step 0 and the initial running statistics).
+        """
         data = self.setup.data
         b = self.theta.copy() if b is None else b
-        return compare_weights(self.net, a, b, data.X, data.Y, data.X_val, data.Y_val, top)
+        start = nets_a or self.nets_at(0, self.net.initial_state())
+        return compare_weights(self.net, a, b, data.X, data.Y, data.X_val, data.Y_val, top,
+                               nets_a=start, nets_b=(self.training_net(), self.evaluation_net()))

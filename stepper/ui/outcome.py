@@ -15,6 +15,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from stepper.core.histograms import QUANTITIES
+from stepper.core.weightdiff import Nets
 from stepper.errors import StepperError
 from stepper.ui.comparepanel import CompareFigures, ComparePanel
 from stepper.ui.histpanel import HistFigures, HistogramPanel
@@ -33,6 +34,7 @@ class OutcomeKeys(WhyKeys):
     #: The checkpoint the comparison panel compares with, and its weights (read once); view settings.
     compare_path: Path | None = None
     _compare_theta: NDArray[np.float64] | None = None
+    _compare_nets: Nets | None = None
     _compare_shown: tuple[int, Path] | None = None
 
     # -- samples ---------------------------------------------------------------------------
@@ -115,11 +117,12 @@ class OutcomeKeys(WhyKeys):
         def chosen(answer: str) -> None:
             path = Path(answer.strip()).expanduser()
             try:
-                theta = self.session.checkpoint_weights(path)
+                theta, nets = self.session.checkpoint_side(path)
             except StepperError as exc:
                 self.say(exc.message, error=True)
                 return
             self.compare_path, self._compare_theta, self._compare_shown = path, theta, None
+            self._compare_nets = nets
             if self.why != "compare":
                 self._toggle_why("compare")
             else:
@@ -135,7 +138,7 @@ class OutcomeKeys(WhyKeys):
             return
         if self._compare_shown == (snap.version, self.compare_path):
             return
-        diff = self.session.compare_to(self._compare_theta, snap.value)
+        diff = self.session.compare_to(self._compare_theta, snap.value, nets_a=self._compare_nets)
         panel.show(CompareFigures(self.compare_path, diff, snap.names))
         self._compare_shown = (snap.version, self.compare_path)
 
