@@ -210,8 +210,12 @@ def iter_numeric_slopes(
     work = _Workspace()
     spaces = [work] + [_Workspace(reach=work.reach) for _ in range(_WORKERS - 1)]
 
-    for block in net.layout.blocks:
-        in_block = wanted[(wanted >= block.start) & (wanted < block.stop)]
+    # The array with the most weights to compute first: a pass stopped early (the app's
+    # automatic pass at its time budget) estimates the whole from what it did, and the
+    # largest array's cost per weight is most of the whole (a convolution's few kernel
+    # entries cost far more each than a dense layer's many weights).
+    parts = [(block, wanted[(wanted >= block.start) & (wanted < block.stop)]) for block in net.layout.blocks]
+    for block, in_block in sorted(parts, key=lambda part: -part[1].size):
         if in_block.size == 0:
             continue
         layer = net.layers[block.layer]

@@ -166,6 +166,31 @@ class Builtin:
     def backward(self, params: Params, cache: Any, dOut: Array, need_dx: bool = True) -> tuple[Params, Array]:
         raise NotImplementedError
 
+    # -- one channel per copy (stepper.core.stacked's channel path) ------------------------
+
+    def moved_channels(
+        self, params: Params, X: Array, cache: Any, key: str, local: NDArray[np.int64], delta: Array
+    ) -> tuple[NDArray[np.int64], Array, Flags] | None:
+        """Like :meth:`perturbed`, for a layer whose moved entry changes one channel of its output.
+
+        Returns, per copy ``j``, the channel ``channels[j]`` that moved, that channel
+        of the output ``(k, n, width)`` (``width`` entries per channel, in the row's
+        C order) and whether the move crossed a kink; None when a move changes more.
+        """
+        return None
+
+    def channel_width(self, width: int) -> int | None:
+        """Entries per channel of the output when each channel of the input holds ``width``
+        entries and each channel of the output depends on the same channel of the input
+        alone; None when it does not (the layer mixes channels) or the widths do not fit."""
+        return None
+
+    def channel_forward(self, params: Params, A: Array, channels: NDArray[np.int64], base: Any) -> tuple[Array, Flags]:
+        """Channel ``channels[j]`` of copy ``j``'s output from that channel of its input ``A``
+        ``(k, n, width)``, and per copy whether it crossed a kink against ``base``, the cache
+        of the unmoved run. Only called where :meth:`channel_width` is not None."""
+        raise NotImplementedError
+
     def crossed(self, base: Any, moved: Any, k: int) -> Flags:
         """Per copy ``(k,)``: did a run of ``k`` stacked copies (cache ``moved``) cross a kink?
 

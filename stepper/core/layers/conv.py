@@ -10,14 +10,16 @@ ONNX ``Conv`` operator call convolution (the kernel is not flipped; ONNX
 operator documentation, Conv). ``K`` has shape ``(out, in, kh, kw)`` for images
 and ``(out, in, k)`` for signals, so its entries are named ``L1.K[o,c,i,j]``.
 
-Computed as one matrix product per sample: the input windows are laid out as
-columns (:meth:`stepper.core.layers.grid.Grid.columns`), ``(in * cells,
-positions)``, and ``Z = K.reshape(out, in * cells) @ columns``.
+Computed as one matrix product for the whole batch: the input windows are
+laid out as columns (:meth:`stepper.core.layers.grid.Grid.columns`), ``(in *
+cells, n * positions)``, and ``Z = K.reshape(out, in * cells) @ columns``; the
+kernel's slope is one matrix product too, ``dZ @ columns^T``.
 """
 
 from __future__ import annotations
 
 from dataclasses import dataclass
+from functools import cached_property
 from typing import Any
 
 import numpy as np
@@ -33,7 +35,7 @@ class ConvCache:
     """What a convolution keeps from its forward pass.
 
     Attributes:
-        columns: the padded input's windows, ``(B, in * cells, positions)`` with the
+        columns: the padded input's windows, ``(in * cells, B * positions)`` with the
             leading axes ``(..., n)`` merged into ``B``.
         Z: pre-activations, ``(..., n, out, positions)``.
         A: outputs, ``(..., n, out, positions)``.
@@ -42,6 +44,12 @@ class ConvCache:
     columns: Array
     Z: Array
     A: Array
+
+    @cached_property
+    def by_channel(self) -> Array:
+        """``Z`` of a plain ``(n, out, positions)`` run with channels first, ``(out, n, positions)``,
+        made once, when the finite differences first ask for single channels."""
+        return np.ascontiguousarray(self.Z.swapaxes(0, 1))
 
 
 @dataclass(frozen=True)
@@ -105,13 +113,14 @@ class Conv(Shaped, Activated):
                 "unit to break it down by")
 
     def pre_activation(self, params: Params, X: Array) -> tuple[Array, Array]:
-        """``(columns (B, rows, positions), Z (B, out, positions))`` for ``X`` ``(..., n, n_in)``."""
+        """``(columns (rows, B * positions), Z (B, out, positions))`` for ``X`` ``(..., n, n_in)``."""
         batch = int(np.prod(X.shape[:-1]))
         shaped = X.reshape((batch,) + self.in_shape)
         columns = self.grid.columns(self.grid.pad_input(shaped))
-        Z = np.matmul(params["K"].reshape(self.channels, self.rows), columns)
+        Zc = params["K"].reshape(self.channels, self.rows) @ columns  # (out, B * positions)
         if self.bias:
-            Z += params["b"][:, None]
+            Zc += params["b"][:, None]
+        Z = np.ascontiguousarray(Zc.reshape(self.channels, batch, self.grid.positions).swapaxes(0, 1))
         return columns, Z
 
     def forward(self, params: Params, X: Array) -> tuple[Array, ConvCache]:
@@ -122,17 +131,29 @@ class Conv(Shaped, Activated):
         return A.reshape(lead + (self.n_out,)), ConvCache(columns, Z.reshape(shape), A.reshape(shape))
 
     def backward(self, params: Params, cache: ConvCache, dOut: Array, need_dx: bool = True) -> tuple[Params, Array]:
-        """``dK = sum over samples of dZ @ columns^T``, ``db = sum of dZ``, ``dX`` by summing windows back."""
+        """``dK = dZ @ columns^T`` over every sample and position, ``db = sum of dZ``, ``dX`` by summing windows back."""
         n = dOut.shape[0]
         dZ = self.activation.vjp(cache.Z, cache.A, dOut.reshape(cache.Z.shape))  # (n, out, positions)
-        grads: Params = {"K": np.tensordot(dZ, cache.columns, axes=([0, 2], [0, 2])).reshape(self.kernel_shape)}
+        dZc = np.ascontiguousarray(dZ.swapaxes(0, 1)).reshape(self.channels, -1)  # (out, n * positions)
+        grads: Params = {"K": (dZc @ cache.columns.T).reshape(self.kernel_shape)}
         if self.bias:
-            grads["b"] = dZ.sum(axis=(0, 2))
+            grads["b"] = dZc.sum(axis=1)
         if not need_dx:
             return grads, np.empty((0, self.n_in))
-        parts = np.matmul(params["K"].reshape(self.channels, self.rows).T, dZ)  # (n, rows, positions)
-        parts = parts.reshape((n, self.in_shape[0]) + self.grid.window + self.grid.out)
-        return grads, self.grid.gather_back(parts, self.in_shape[0]).reshape(n, self.n_in)
+        parts = params["K"].reshape(self.channels, self.rows).T @ dZc  # (rows, n * positions)
+        dims = self.grid.dims
+        parts = parts.reshape((self.in_shape[0],) + self.grid.window + (n,) + self.grid.out)
+        # (in, *window, n, *out) -> (n, in, *window, *out), a view
+        order = (1 + dims, 0) + tuple(range(1, 1 + dims)) + tuple(range(2 + dims, 2 + 2 * dims))
+        return grads, self.grid.gather_back(parts.transpose(order), self.in_shape[0]).reshape(n, self.n_in)
+
+    def _change(self, cache: ConvCache, key: str, local: NDArray[np.int64], delta: Array,
+                n: int) -> tuple[NDArray[np.int64], Array]:
+        """The moved output channel of each copy and its change of ``Z``, ``(k, n, positions)``."""
+        if key == "K":
+            outs, rows = np.divmod(local, self.rows)
+            return outs, cache.columns[rows].reshape(local.size, n, -1) * delta[:, None, None]
+        return local, np.broadcast_to(delta[:, None, None], (local.size, n, self.grid.positions))
 
     def perturbed(
         self, params: Params, X: Array, cache: Any, key: str, local: NDArray[np.int64], delta: Array
@@ -140,15 +161,28 @@ class Conv(Shaped, Activated):
         """Each copy changes one output channel of ``Z``: by ``delta`` times one row of the columns for a kernel entry."""
         k = local.size
         n = X.shape[0]
-        if key == "K":
-            outs, rows = np.divmod(local, self.rows)
-            change = cache.columns[:, rows, :].transpose(1, 0, 2) * delta[:, None, None]  # (k, n, positions)
-        else:
-            outs = local
-            change = np.broadcast_to(delta[:, None, None], (k, n, self.grid.positions))
+        outs, change = self._change(cache, key, local, delta, n)
         Z = update_channels(cache.Z, outs, change)  # (k, n, out, positions)
         kinked = np.zeros(k, dtype=bool)
         if self.activation.kink:
             copies = np.arange(k)
             kinked = np.any((Z[copies, :, outs] > 0.0) != (cache.Z[:, outs].transpose(1, 0, 2) > 0.0), axis=(1, 2))
         return self.activation.apply_in_place(Z).reshape(k, n, self.n_out), kinked
+
+    def moved_channels(
+        self, params: Params, X: Array, cache: Any, key: str, local: NDArray[np.int64], delta: Array
+    ) -> tuple[NDArray[np.int64], Array, Flags]:
+        k, n = local.size, X.shape[0]
+        if key == "K":
+            outs, rows = np.divmod(local, self.rows)
+            Z = cache.columns[rows].reshape(k, n, -1)  # a new array: the input under each moved entry
+            Z *= delta[:, None, None]
+        else:
+            outs = local
+            Z = np.broadcast_to(delta[:, None, None], (k, n, self.grid.positions)).copy()
+        base = cache.by_channel[outs]  # (k, n, positions)
+        Z += base
+        kinked = np.zeros(k, dtype=bool)
+        if self.activation.kink:
+            kinked = np.any((Z > 0.0) != (base > 0.0), axis=(1, 2))
+        return outs, self.activation.apply_in_place(Z), kinked

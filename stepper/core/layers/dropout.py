@@ -21,8 +21,9 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
+from numpy.typing import NDArray
 
-from stepper.core.layers.base import Array, Mode, Params, Shaped
+from stepper.core.layers.base import Array, Flags, Mode, Params, Shaped
 
 
 @dataclass(frozen=True)
@@ -74,3 +75,13 @@ class Dropout(Shaped):
         if not need_dx:
             return {}, np.empty((0, self.n_in))
         return {}, (dOut if cache is None else dOut * cache)
+
+    def channel_width(self, width: int) -> int | None:
+        return width if self.n_in % width == 0 else None
+
+    def channel_forward(self, params: Params, A: Array, channels: NDArray[np.int64], base: Any) -> tuple[Array, Flags]:
+        k, n, width = A.shape
+        if not self.training or self.rate == 0.0:
+            return A, np.zeros(k, dtype=bool)
+        mask = self.mask(n).reshape(n, -1, width)[:, channels].swapaxes(0, 1)  # (k, n, width)
+        return A * mask, np.zeros(k, dtype=bool)

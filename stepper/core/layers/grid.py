@@ -80,16 +80,17 @@ class Grid:
         return view[picks]
 
     def columns(self, Xp: Array) -> Array:
-        """The windows laid out for one matrix product: ``(B, C * cells, positions)``, a new array.
+        """The windows laid out for one matrix product: ``(C * cells, B * positions)``, a new array.
 
-        Row ``(c, *offset)`` in C order holds, for every window position, the
-        entry of channel ``c`` at that offset inside the window.
+        Row ``(c, *offset)`` (C order) holds, for every sample and window position,
+        the entry of channel ``c`` at that offset inside the window. Filled one
+        offset at a time, each a strided copy of every window's entry there.
         """
-        win = self.windows(Xp)
-        d = self.dims
-        order = (0, 1) + tuple(range(2 + d, 2 + 2 * d)) + tuple(range(2, 2 + d))
         B, C = Xp.shape[:2]
-        return np.ascontiguousarray(win.transpose(order)).reshape(B, C * self.cells, self.positions)
+        out = np.empty((C, self.cells, B) + self.out)
+        for index, offset in enumerate(self.offsets()):
+            out[:, index] = Xp[self.at_offset(offset)].swapaxes(0, 1)  # (B, C, *out) -> (C, B, *out)
+        return out.reshape(C * self.cells, B * self.positions)
 
     def offsets(self) -> list[tuple[int, ...]]:
         """Every offset inside a window, in C order (the order of :meth:`columns`' rows)."""

@@ -128,7 +128,6 @@ class _Norm(Shaped):
             change = np.broadcast_to(delta[:, None, None], (k, n, positions))
         return update_channels(cache.out, local, change).reshape(k, n, self.n_out), np.zeros(k, dtype=bool)
 
-
 @dataclass(frozen=True)
 class LayerNorm(_Norm):
     """Layer normalization over all entries of each sample; ``scale`` and ``shift`` have the row's shape."""
@@ -223,6 +222,32 @@ class BatchNorm(_Norm):
             centred = grouped - mean
         inv = 1.0 / np.sqrt(var + self.epsilon)
         return self._finish(X, centred * inv, inv, mean, var, params)
+
+    def moved_channels(
+        self, params: Params, X: Array, cache: Any, key: str, local: NDArray[np.int64], delta: Array
+    ) -> tuple[NDArray[np.int64], Array, Flags]:
+        """Moving ``scale[c]`` or ``shift[c]`` changes channel ``c`` alone."""
+        base = cache.out[:, local, :].transpose(1, 0, 2)  # (k, n, positions)
+        change = cache.xhat[:, local, :].transpose(1, 0, 2) if key == "scale" else 1.0
+        return local, base + change * delta[:, None, None], np.zeros(local.size, dtype=bool)
+
+    def channel_width(self, width: int) -> int | None:
+        return width if width == self.grouping()[1] else None
+
+    def channel_forward(self, params: Params, A: Array, channels: NDArray[np.int64], base: Any) -> tuple[Array, Flags]:
+        """Channel ``channels[j]`` of copy ``j``, normalized with that copy's own batch statistics
+        of the channel in training (its mean and variance over samples and positions)."""
+        if self.training:
+            mean = A.mean(axis=(1, 2), keepdims=True)
+            centred = A - mean
+            var = (centred * centred).mean(axis=(1, 2), keepdims=True)
+        else:
+            run_mean, run_var = self.running or (np.zeros(self.channels), np.ones(self.channels))
+            mean, var = run_mean[channels][:, None, None], run_var[channels][:, None, None]
+            centred = A - mean
+        xhat = centred * (1.0 / np.sqrt(var + self.epsilon))  # as forward computes it
+        out = xhat * params["scale"][channels][:, None, None] + params["shift"][channels][:, None, None]
+        return out, np.zeros(A.shape[0], dtype=bool)
 
     def _input_slope(self, g: Array, cache: NormCache) -> Array:
         if not self.training:  # fixed statistics: an affine map of each entry

@@ -14,9 +14,12 @@ straddle that corner, so the numeric slopes flag it as a kink (:meth:`Pool.cross
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
+from numpy.typing import NDArray
 
 from stepper.core.layers.base import Array, Flags, Params, Shaped, differs
 from stepper.core.layers.grid import Grid
@@ -71,28 +74,59 @@ class Pool(Shaped):
     def forward(self, params: Params, X: Array) -> tuple[Array, PoolCache]:
         lead = X.shape[:-1]
         batch = int(np.prod(lead))
-        shaped = X.reshape((batch,) + self.in_shape)
-        windows = self.grid.windows(shaped)  # (B, C, *out, *window), a view
-        flat = windows.reshape(windows.shape[: 2 + self.grid.dims] + (self.grid.cells,))
+        out, where = self._pool(X.reshape((batch,) + self.in_shape))
+        cache = PoolCache(None if where is None else where.reshape(lead + where.shape[1:]), batch)
+        return out.reshape(lead + (self.n_out,)), cache
+
+    def _pool(self, shaped: Array) -> tuple[Array, NDArray[np.intp] | None]:
+        """Pooled ``(B, C, *out)`` of ``shaped`` ``(B, C, *size)``, and for a max where each maximum sat.
+
+        One pass per window offset over every window at once (a window has a
+        handful of cells), never a copy of the windows laid out side by side.
+        """
+        cells = [shaped[self.grid.at_offset(offset)] for offset in self.grid.offsets()]  # (B, C, *out) views
         if self.how == "avg":
-            return flat.mean(axis=-1).reshape(lead + (self.n_out,)), PoolCache(None, batch)
-        where = np.argmax(flat, axis=-1)
-        out = np.take_along_axis(flat, where[..., None], axis=-1)
-        return out.reshape(lead + (self.n_out,)), PoolCache(where.reshape(lead + where.shape[1:]), batch)
+            total = cells[0].copy()
+            for part in cells[1:]:
+                total += part
+            total /= len(cells)
+            return total, None
+        best = cells[0].copy()
+        for part in cells[1:]:
+            np.maximum(best, part, out=best)  # NaN spreads, as in a maximum over the window
+        # The first offset in C order holding the maximum takes it (numpy's argmax rule): the
+        # offsets are visited last to first, so the earliest match is written last.
+        where = np.zeros(best.shape, dtype=np.intp)
+        for index in range(len(cells) - 1, 0, -1):
+            where[cells[index] == best] = index
+        where[cells[0] == best] = 0
+        return best, where
+
+    def channel_width(self, width: int) -> int | None:
+        return math.prod(self.grid.out) if width == math.prod(self.in_shape[1:]) else None
+
+    def channel_forward(self, params: Params, A: Array, channels: NDArray[np.int64], base: Any) -> tuple[Array, Flags]:
+        k, n = A.shape[:2]
+        out, where = self._pool(A.reshape((k * n, 1) + self.in_shape[1:]))
+        if where is None or base.where is None:
+            return out.reshape(k, n, -1), np.zeros(k, dtype=bool)
+        before = base.where[:, channels].swapaxes(0, 1)  # (k, n, *out)
+        return out.reshape(k, n, -1), np.any((where.reshape(before.shape) != before).reshape(k, -1), axis=1)
 
     def backward(self, params: Params, cache: PoolCache, dOut: Array, need_dx: bool = True) -> tuple[Params, Array]:
+        """Each window's slope goes back to its largest entry (max) or in equal parts to all (average)."""
         if not need_dx:
             return {}, np.empty((0, self.n_in))
         n = dOut.shape[0]
-        channels, dims, cells = self.in_shape[0], self.grid.dims, self.grid.cells
-        d = dOut.reshape((n, channels, 1) + self.grid.out)
-        if cache.where is None:
-            parts = np.broadcast_to(d / cells, (n, channels, cells) + self.grid.out)
-        else:
-            offsets = np.arange(cells).reshape((cells,) + (1,) * dims)
-            parts = (cache.where.reshape(d.shape) == offsets) * d
-        parts = parts.reshape((n, channels) + self.grid.window + self.grid.out)
-        return {}, self.grid.gather_back(parts, channels).reshape(n, self.n_in)
+        channels = self.in_shape[0]
+        d = dOut.reshape((n, channels) + self.grid.out)
+        where = None if cache.where is None else cache.where.reshape(d.shape)
+        dX = np.zeros((n,) + self.in_shape)
+        share = d / self.grid.cells
+        for index, offset in enumerate(self.grid.offsets()):
+            target = dX[self.grid.at_offset(offset)]
+            target += share if where is None else np.where(where == index, d, 0.0)
+        return {}, dX.reshape(n, self.n_in)
 
     def crossed(self, base: PoolCache, moved: PoolCache, k: int) -> Flags:
         if base.where is None or moved.where is None:

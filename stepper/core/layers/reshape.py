@@ -14,8 +14,9 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
+from numpy.typing import NDArray
 
-from stepper.core.layers.base import Array, Params, Shaped
+from stepper.core.layers.base import Array, Flags, Params, Shaped
 
 
 @dataclass(frozen=True)
@@ -39,3 +40,9 @@ class Flatten(Shaped):
 
     def backward(self, params: Params, cache: Any, dOut: Array, need_dx: bool = True) -> tuple[Params, Array]:
         return {}, (dOut if need_dx else np.empty((0, self.n_in)))
+
+    def channel_width(self, width: int) -> int | None:
+        return width
+
+    def channel_forward(self, params: Params, A: Array, channels: NDArray[np.int64], base: Any) -> tuple[Array, Flags]:
+        return A, np.zeros(A.shape[0], dtype=bool)
