@@ -67,11 +67,15 @@ class SlopeKeys(AppBase):
         deadline = start + self.numeric_budget
         job = session.iter_refresh_check(session.default_check())
         version = session.version
+        begun: float | None = None  # when the pass's set-up (a forward pass) was done: its first report
         try:
             for done, total in job:
+                begun = time.monotonic() if begun is None else begun
                 if time.monotonic() > deadline and done < total:
                     elapsed = time.monotonic() - start
-                    self.numeric_pass_took(elapsed * total / max(done, 1) if done else math.inf, estimated=True)
+                    ready = begun - start
+                    estimate = ready + (elapsed - ready) * total / done if done else math.inf
+                    self.numeric_pass_took(estimate, estimated=True)
                     log.info("numeric slopes: automatic pass stopped at %d of %d after %.3f s", done, total, elapsed)
                     return
         except StepperError as exc:
