@@ -309,6 +309,36 @@ def test_h_shows_layer_health_and_follows_steps_and_the_rate(size: tuple[int, in
     drive(session, check, size)
 
 
+def test_h_follows_the_cursor_to_the_channel_a_kernel_weight_feeds(drive) -> None:
+    # glaze-defects with channel 6's bias far below zero: that channel is dead. The panel names it,
+    # and with the cursor on one of its kernel weights gives that channel's own figures, which are
+    # the core's (checked against scipy.signal.correlate in test_layers_health.py).
+    session = Session(load_setup(SCENARIOS / "glaze-defects" / "model.toml"))
+    session.set_value(session.net.layout.lookup("L1.b[6]"), -100.0)
+    data = session.setup.data
+
+    async def check(app: StepperApp, pilot: Pilot[Any], said: list[tuple[str, str]]) -> None:
+        await press(app, pilot, "h")
+        text = flat(panel_text(app, HealthPanel))
+        assert "1 dead channels: 6" in text
+        await jump(app, pilot, "L1.K[6,0,2,1]")
+        text = flat(panel_text(app, HealthPanel))
+        assert "L1.K[6,0,2,1] feeds L1 channel 6: ReLU passes on 0.0% of samples x positions" in text
+        assert "DEAD" in text
+        await jump(app, pilot, "L4.W[17,5]")
+        units = layer_health(session.net, session.theta, data.X, data.Y, session.rate).layers[3]
+        assert units.unit_weights is not None
+        text = flat(panel_text(app, HealthPanel))
+        assert f"L4.W[17,5] feeds L4 unit 5: ReLU passes on {100 * units.active[5]:.1f}% of samples" in text
+        assert f"|weights in| {units.unit_weights[5]:.3e}" in text
+        await press(app, pilot, "i")
+        assert "h shows the health of the channel" not in flat(panel_text(app, FactorPanel))
+        await jump(app, pilot, "L1.b[2]")
+        assert "h shows the health of the channel it feeds" in flat(panel_text(app, FactorPanel))
+
+    drive(session, check, (80, 24))
+
+
 # -- custom layers in the app ----------------------------------------------------------------
 
 

@@ -17,7 +17,7 @@ from stepper.core.compare import AGREE_BELOW, DISAGREE_ABOVE, VERDICTS
 from stepper.core.diagnosis import Hint, diagnose
 from stepper.core.directional import DirectionalCheck, iter_directional_check
 from stepper.core.gradcheck import CheckResult, iter_check
-from stepper.core.health import RATIO_TYPICAL, HealthReport, layer_health
+from stepper.core.health import RATIO_TYPICAL, HealthReport, layer_health, unit_health
 from stepper.core.input_slopes import InputSlopeCheck, check_input_slopes
 from stepper.core.gemm import ScaledDense
 from stepper.core.layers import Builtin, Dense, is_builtin
@@ -27,6 +27,7 @@ from stepper.core.numeric import run_to_end
 from stepper.core.selection import WeightChoice, choose, every_weight
 from stepper.errors import UsageError
 from stepper.formats.model_file import Setup
+from stepper.health_text import channel_table, idle_lines, unit_document
 
 
 
@@ -47,8 +48,7 @@ def weight_choice(args: argparse.Namespace, net: Network) -> WeightChoice | None
 def handle(args: argparse.Namespace) -> int:
     setup = load(args)
     X, Y = sample_limit(setup, args.samples)
-    net = setup.network
-    theta, rate = resumed_weights(setup, args.resume, args.rate, HEALTH_RATE)
+    theta, rate, net = resumed_weights(setup, args.resume, args.rate, HEALTH_RATE)
     choice = weight_choice(args, net)
     result: CheckResult | None = None
     directions: DirectionalCheck | None = None
@@ -83,12 +83,12 @@ def handle(args: argparse.Namespace) -> int:
         doc["directions"] = None if directions is None else directions_document(directions)
         doc["input_slopes"] = [input_slopes_document(c) for c in inputs]
         doc["hints"] = [hint_document(h) for h in hints]
-        doc["health"] = health_document(health)
+        doc["health"] = health_document(health, net)
         # JSON (RFC 8259) has no NaN or Infinity: non-finite numbers become null.
         dump_document(_json_safe(doc), sys.stdout)
     else:
         print_report(setup, result, X.shape[0], rows, choice, inputs, directions, theta, args.resume, hints)
-        print_health(health)
+        print_health(health, net)
     return 0 if passed else 1
 
 
@@ -373,8 +373,9 @@ def input_slopes_document(c: InputSlopeCheck) -> dict[str, Any]:
     }
 
 
-def print_health(health: HealthReport) -> None:
-    """Layer health as a table, then how slopes change on the way back."""
+def print_health(health: HealthReport, net: Network) -> None:
+    """Layer health as a table, how slopes change on the way back, the dead and saturated units by
+    number, and a table of each convolution's channels."""
     out = sys.stdout
     width = max(len(entry.label) for entry in health.layers)
     out.write(f"\nlayer health at rate {health.rate:g} (an update/weight ratio near {RATIO_TYPICAL:.0e} per "
@@ -395,10 +396,15 @@ def print_health(health: HealthReport) -> None:
     else:
         out.write(f"slopes on the way back: {health.trend} (first layer's error signal is "
                   f"{health.travel:.3g} x the last layer's)\n")
+    for line in idle_lines(health):
+        out.write(line + "\n")
+    for e in health.layers:
+        if e.per == "channel":
+            out.write("\n" + "\n".join(channel_table(health, net, e.index)) + "\n")
 
 
-def health_document(health: HealthReport) -> dict[str, Any]:
-    """The JSON form of the layer health."""
+def health_document(health: HealthReport, net: Network) -> dict[str, Any]:
+    """The JSON form of the layer health (with each unit's, or a convolution's channel's, figures)."""
     layers = []
     for e in health.layers:
         layers.append({
@@ -414,6 +420,9 @@ def health_document(health: HealthReport) -> dict[str, Any]:
             "dead_units": e.dead_units.tolist(),
             "signal_rms": e.signal_rms,
             "signal_change": _finite_or_none(e.signal_change),
+            "units": None if e.unit_weights is None else
+            [unit_document(u) for u in (unit_health(health, net, e.index, j) for j in range(e.unit_weights.size))
+             if u is not None],
         })
     return {
         "rate": health.rate,

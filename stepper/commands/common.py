@@ -28,6 +28,7 @@ from stepper.session.runaway import RUN_ON, RunawayRule
 
 if TYPE_CHECKING:
     from stepper.session import Session
+    from stepper.core.network import Network
 
 
 
@@ -88,25 +89,35 @@ def load(args: argparse.Namespace) -> Setup:
 
 
 def resumed_weights(setup: Setup, checkpoint: Path | None, rate: float | None,
-                    default_rate: float) -> tuple[np.ndarray[Any, Any], float]:
-    """The weights to start from and the rate: the model's or ``--resume``'s.
+                    default_rate: float) -> tuple[np.ndarray[Any, Any], float, Network]:
+    """The weights to start from, the rate and the network as it trains there: the model's or ``--resume``'s.
 
-    Returns ``(theta, rate)``: ``theta`` of shape ``(n_params,)`` is the model's
+    Returns ``(theta, rate, net)``: ``theta`` of shape ``(n_params,)`` is the model's
     initial values, or the checkpoint's (checked against the model's layout);
-    the rate is ``rate`` when given, else the checkpoint's, else ``default_rate``.
+    the rate is ``rate`` when given, else the checkpoint's, else ``default_rate``;
+    ``net`` is the model's network as it trains at the checkpoint's step with its
+    running statistics (its dropout masks are that step's, as in the app), or at
+    the start.
     """
     theta = setup.theta0
+    net = setup.network
     saved_rate: float | None = None
     if checkpoint is not None:
         from stepper.formats.checkpoint import load_checkpoint
 
-        data = load_checkpoint(checkpoint, setup.network.layout)
+        data = load_checkpoint(checkpoint, net.layout, net.state_layout)
         theta = data.theta
         value = data.meta.get("rate")
         if isinstance(value, (int, float)) and math.isfinite(value) and value > 0:
             saved_rate = float(value)
+        if net.varies_by_step or net.has_state:
+            from stepper.formats.saved_state import read_state
+            from stepper.session.core import SLOPE_SOURCES
+
+            saved = read_state(checkpoint, data, net.layout, setup.data.n_train, SLOPE_SOURCES)
+            net = net.at(True, saved.step_count, data.state)
     chosen = rate if rate is not None else saved_rate if saved_rate is not None else default_rate
-    return theta, chosen
+    return theta, chosen, net
 
 
 def sample_limit(setup: Setup, limit: int | None) -> tuple[np.ndarray[Any, Any], np.ndarray[Any, Any]]:

@@ -5,6 +5,7 @@ from __future__ import annotations
 import argparse
 import json
 import sys
+import textwrap
 from typing import Any
 
 import numpy as np
@@ -13,8 +14,12 @@ from stepper.commands.common import load, resumed_weights, sample_limit
 from stepper.commands.parsers import DEFAULT_RATE
 from stepper.commands.slice import weight_index
 from stepper.core.breakdown import Breakdown, slope_breakdown
+from stepper.core.health import layer_health, unit_health, unit_of
+from stepper.core.layers import Conv
+from stepper.core.network import Network
 from stepper.errors import UsageError
 from stepper.formats.model_file import Setup
+from stepper.health_text import idle_lines, unit_document, unit_summary
 from stepper.report import at_z_reason, factor_names, weight_place
 
 
@@ -22,15 +27,18 @@ from stepper.report import at_z_reason, factor_names, weight_place
 
 def handle(args: argparse.Namespace) -> int:
     setup = load(args)
-    theta, _ = resumed_weights(setup, args.resume, None, DEFAULT_RATE)
+    theta, rate, net = resumed_weights(setup, args.resume, None, DEFAULT_RATE)
     index = weight_index(setup, args.weight)
     X, Y = sample_limit(setup, args.samples)
     if args.sample_index is not None and not 0 <= args.sample_index < X.shape[0]:
         raise UsageError(f"--sample-index {args.sample_index}: the training set has samples 0 to {X.shape[0] - 1}")
     try:
-        result = slope_breakdown(setup.network, theta, X, Y, index, args.sample_index)
+        result = slope_breakdown(net, theta, X, Y, index, args.sample_index)
     except ValueError as exc:
-        raise UsageError(str(exc)) from None
+        if not isinstance(net.layers[net.layout.layer_index[index]], Conv):
+            raise UsageError(str(exc)) from None
+        # A convolution's weight: no factors to show, but its output channel's health.
+        return explain_channel(setup, net, theta, X, Y, index, str(exc), rate, args.json)
     name = setup.network.layout.names[index]
     if args.json:
         json.dump(explain_document(setup, name, result, theta[index]), sys.stdout, indent=1)
@@ -113,3 +121,32 @@ def explain_document(setup: Setup, name: str, b: Breakdown, value: float) -> dic
         "analytic": b.analytic,
         "flags": [{"code": flag.code, "text": flag.text} for flag in b.flags],
     }
+
+
+def explain_channel(setup: Setup, net: Network, theta: np.ndarray, X: np.ndarray, Y: np.ndarray, index: int,
+                    why: str, rate: float, as_json: bool) -> int:
+    """A convolution's weight: why its slope has no factors, and the health of its output channel at ``rate``."""
+    found = unit_of(net, index)
+    assert found is not None
+    layer, channel = found
+    report = layer_health(net, theta, X, Y, rate)
+    unit = unit_health(report, net, layer, channel)
+    assert unit is not None
+    name = net.layout.names[index]
+    slope = net.cost_and_slopes(theta, X, Y)[1][index]
+    if as_json:
+        json.dump({"schema_version": 1,
+                   "model": {"name": setup.name, "path": str(setup.path), "sha256": setup.digest},
+                   "weight": name, "value": float(theta[index]), "analytic": float(slope), "samples": X.shape[0],
+                   "breakdown": None, "why_no_breakdown": why, "channel": unit_document(unit)}, sys.stdout, indent=1)
+        sys.stdout.write("\n")
+        return 0
+    lines = [f"{name} in {setup.name}: a weight of channel {channel} of layer {layer + 1} ({net.layers[layer].label})",
+             f"value {float(theta[index]):.6g}, analytic slope {float(slope):.6e}, {X.shape[0]} samples", "",
+             *textwrap.wrap(f"No factors: {why}.", 100), "",
+             f"Its output channel's health at rate {rate:g} (stepper check lists every channel):",
+             *textwrap.wrap(unit_summary(unit), 100, initial_indent="  ", subsequent_indent="    ")]
+    idle = [line for line in idle_lines(report) if line.startswith(f"L{layer + 1} ")]
+    lines += ["", *idle] if idle else []
+    sys.stdout.write("\n".join(lines) + "\n")
+    return 0

@@ -43,10 +43,10 @@ def handle(args: argparse.Namespace) -> int:
     if args.plot not in (None, "-"):
         inputs = setup.input_files() + ([("the checkpoint", args.resume)] if args.resume else [])
         check_output(Path(args.plot), inputs, "text", "--plot")
-    theta, rate = resumed_weights(setup, args.resume, args.rate, DEFAULT_RATE)
+    theta, rate, net = resumed_weights(setup, args.resume, args.rate, DEFAULT_RATE)
     index = weight_index(setup, args.weight)
     X, Y = sample_limit(setup, args.samples)
-    result = cost_slice(setup.network, theta, X, Y, index, rate, args.span, args.points)
+    result = cost_slice(net, theta, X, Y, index, rate, args.span, args.points)
     name = setup.network.layout.names[index]
     plot = render_plot(result, name, *args.size) if args.plot is not None else None
     if args.json:

@@ -77,6 +77,11 @@ class LayerHealth:
         signal_rms: root mean square of the error signal at the units' inputs.
         signal_change: ``signal_rms`` over the next layer's (NaN for the last layer).
         per: ``"unit"``, or ``"channel"`` for a convolution.
+        unit_weights, unit_slopes: per unit (or channel), the norm of its incoming weights
+            (a dense layer's column ``W[:, j]``, a convolution's kernel ``K[o]``) and of
+            their slopes, ``(n_out,)`` or ``(channels,)``; None for other layers.
+        unit_signal: per unit (or channel), the root mean square of the error signal at
+            its inputs ``Z`` (over samples, and positions for a channel); None for other layers.
     """
 
     index: int
@@ -89,6 +94,9 @@ class LayerHealth:
     signal_rms: float
     signal_change: float
     per: str = "unit"
+    unit_weights: Array | None = None
+    unit_slopes: Array | None = None
+    unit_signal: Array | None = None
 
     @property
     def saturated_units(self) -> NDArray[np.int64]:
@@ -188,10 +196,8 @@ def layer_health(net: Network, theta: Array, X: Array, Y: Array, rate: float) ->
     """Health figures of every layer for parameters ``theta`` ``(n_params,)`` on ``X``, ``Y``."""
     trace = net.forward(theta, X)
     _, grads, output_slopes = net.backward(theta, trace, Y)
-    signals = [
-        float(np.sqrt(np.mean(error_at_inputs(net, i, trace[i][1], output_slopes[i], Y)[0] ** 2)))
-        for i in range(len(net.layers))
-    ]
+    errors = [error_at_inputs(net, i, trace[i][1], output_slopes[i], Y)[0] for i in range(len(net.layers))]
+    signals = [float(np.sqrt(np.mean(e**2))) for e in errors]
     out: list[LayerHealth] = []
     for i, lay in enumerate(net.layers):
         blocks = [b for b in net.layout.blocks if b.layer == i and b.kind == "weight"]
@@ -204,6 +210,7 @@ def layer_health(net: Network, theta: Array, X: Array, Y: Array, rate: float) ->
         active: Array | None = None
         cache = trace[i][1]
         per = "unit"
+        units: tuple[Array, Array, Array] | tuple[None, None, None] = (None, None, None)
         if isinstance(lay, (Dense, Conv)) and isinstance(cache, (DenseCache, ConvCache)):
             act = lay.activation
             fused_output = i == len(net.layers) - 1 and net.fused is not None
@@ -215,7 +222,90 @@ def layer_health(net: Network, theta: Array, X: Array, Y: Array, rate: float) ->
                 saturation = np.mean(act.derivative(cache.Z, cache.A) < SATURATED_BELOW, axis=axes)
             if act.name == "relu":
                 active = np.mean(cache.Z > 0.0, axis=axes)
+            units = _per_unit(net, theta, grads, i, errors[i])
         change = signals[i] / signals[i + 1] if i + 1 < len(signals) and signals[i + 1] > 0 else float("nan")
-        out.append(LayerHealth(i, lay.label, w_norm, g_norm, ratio, saturation, active, signals[i], change, per))
+        out.append(LayerHealth(i, lay.label, w_norm, g_norm, ratio, saturation, active, signals[i], change, per,
+                               *units))
     travel = signals[0] / signals[-1] if len(signals) > 1 and signals[-1] > 0 else float("nan")
     return HealthReport(float(rate), tuple(out), travel)
+
+
+def _per_unit(net: Network, theta: Array, grads: Array, layer: int,
+              error: Array) -> tuple[Array, Array, Array]:
+    """Per unit of a dense layer (or channel of a convolution): norms of its incoming weights and of
+    their slopes, and the root mean square of its error signal ``error`` ``(n, n_out)``."""
+    lay = net.layers[layer]
+    block = net.layout.find_block(layer, "K" if isinstance(lay, Conv) else "W")
+    w = theta[block.start : block.stop].reshape(block.shape)
+    g = grads[block.start : block.stop].reshape(block.shape)
+    if isinstance(lay, Conv):
+        # K is (out, in, *window): one row per channel.
+        weights = np.linalg.norm(w.reshape(lay.channels, -1), axis=1)
+        slopes = np.linalg.norm(g.reshape(lay.channels, -1), axis=1)
+        signal = np.sqrt(np.mean(error.reshape(error.shape[0], lay.channels, -1) ** 2, axis=(0, 2)))
+    else:
+        # W is (n_in, n_out): one column per unit.
+        weights, slopes = np.linalg.norm(w, axis=0), np.linalg.norm(g, axis=0)
+        signal = np.sqrt(np.mean(error**2, axis=0))
+    return weights, slopes, signal
+
+
+@dataclass(frozen=True)
+class UnitHealth:
+    """The health of one unit of a dense layer, or one channel of a convolution.
+
+    Attributes:
+        layer: 0-based layer index; unit: the unit's (or channel's) index.
+        per: ``"unit"`` or ``"channel"``.
+        positions: window positions per channel (1 for a unit).
+        active: share of samples (times positions) where its ReLU passes; None unless ReLU.
+        saturated: share where its activation slope is below :data:`SATURATED_BELOW`; None
+            unless the activation saturates.
+        weights, slopes: norms of its incoming weights and of their slopes.
+        update_ratio: ``rate * slopes / weights`` (NaN when the weights are zero).
+        signal_rms: root mean square of its error signal at ``Z``.
+    """
+
+    layer: int
+    unit: int
+    per: str
+    positions: int
+    active: float | None
+    saturated: float | None
+    weights: float
+    slopes: float
+    update_ratio: float
+    signal_rms: float
+
+    @property
+    def dead(self) -> bool:
+        return self.active == 0.0
+
+    @property
+    def saturated_most(self) -> bool:
+        return self.saturated is not None and self.saturated >= MOST
+
+
+def unit_of(net: Network, index: int) -> tuple[int, int] | None:
+    """``(layer, unit)`` whose incoming weight or bias is parameter ``index``: the unit ``j`` of a
+    dense ``W[i,j]`` or ``b[j]``, the channel ``o`` of a convolution's ``K[o,...]`` or ``b[o]``;
+    None for other parameters."""
+    block = net.layout.block_of(index)
+    lay = net.layers[block.layer]
+    if not isinstance(lay, (Dense, Conv)) or block.key not in ("W", "K", "b"):
+        return None
+    where = net.layout.indices(index)
+    return block.layer, int(where[1] if block.key == "W" else where[0])
+
+
+def unit_health(report: HealthReport, net: Network, layer: int, unit: int) -> UnitHealth | None:
+    """Unit (or channel) ``unit`` of layer ``layer`` from ``report``; None when the layer has no units."""
+    e = report.layers[layer]
+    if e.unit_weights is None or e.unit_slopes is None or e.unit_signal is None:
+        return None
+    lay = net.layers[layer]
+    positions = lay.grid.positions if isinstance(lay, Conv) else 1
+    w, g = float(e.unit_weights[unit]), float(e.unit_slopes[unit])
+    return UnitHealth(layer, unit, e.per, positions, None if e.active is None else float(e.active[unit]),
+                      None if e.saturation is None else float(e.saturation[unit]), w, g,
+                      report.rate * g / w if w > 0 else float("nan"), float(e.unit_signal[unit]))

@@ -5,7 +5,8 @@ current weights and rate: the norms of the weights and of their slopes, the
 update-to-weight ratio one plain step would make (the common-practice range
 1e-4 to 1e-2 is named, and drawn on a log scale where the panel is wide enough), the
 saturated or dead units, and how the error signal changes from each layer to
-the next on the way back. Below: the trend over the whole network and, for
+the next on the way back. Below: the unit (or convolution channel) the selected
+weight feeds, with its own figures; the dead and saturated units by number; the trend over the whole network and, for
 custom layers, how their backward pass's input slopes compared with numeric
 ones at the last numeric pass (``#``). Text only, so it reads without colour.
 """
@@ -16,6 +17,7 @@ import math
 import textwrap
 
 from stepper.core.health import RATIO_HIGH, RATIO_LOW, RATIO_TYPICAL, LayerHealth
+from stepper.health_text import idle_lines, unit_summary
 from stepper.ui.insight import HealthFigures
 from stepper.ui.panels import FiguresPanel
 
@@ -92,6 +94,11 @@ def health_lines(f: HealthFigures, width: int) -> list[str]:
             break
     r = f.report
     wrap = max(width, 40)
+    if f.focus is not None:
+        name, unit = f.focus
+        lines += textwrap.wrap(f"{name} feeds L{unit.layer + 1} {unit_summary(unit)}", wrap, subsequent_indent="  ")
+    for line in idle_lines(r):
+        lines += textwrap.wrap(line, wrap, subsequent_indent="  ")
     if r.trend in ("single layer", "no signal"):
         trend = f"slopes on the way back: {r.trend}"
     else:

@@ -22,9 +22,9 @@ from stepper.core.breakdown import Breakdown, slope_breakdown
 from stepper.core.compare import relative_error
 from stepper.core.diagnosis import diagnose
 from stepper.core.gradcheck import CheckResult
-from stepper.core.health import HealthReport, layer_health
+from stepper.core.health import HealthReport, UnitHealth, layer_health, unit_health, unit_of
 from stepper.core.input_slopes import InputSlopeCheck, check_input_slopes
-from stepper.core.layers import Builtin, is_builtin
+from stepper.core.layers import Builtin, Conv, is_builtin
 from stepper.core.network import Network
 from stepper.core.slice import CostSlice, cost_slice
 from stepper.formats.dataset import Dataset
@@ -89,6 +89,8 @@ class HealthFigures:
         custom: 0-based indices of custom layers.
         inputs: the last input-slope checks of the custom layers (None: never run).
         inputs_stale: the weights changed since those checks.
+        focus: the selected weight's name and the health of the unit (or convolution
+            channel) it feeds, when it feeds one.
     """
 
     report: HealthReport
@@ -96,6 +98,7 @@ class HealthFigures:
     custom: tuple[int, ...]
     inputs: tuple[InputSlopeCheck, ...] | None
     inputs_stale: bool
+    focus: tuple[str, UnitHealth] | None = None
 
 
 @dataclass(frozen=True)
@@ -170,14 +173,23 @@ class Figures:
         figures: FactorFigures | str = self._cached("factors", (snap.version, index, sample), compute)
         return figures
 
-    def health(self, snap: Snapshot, inputs: InputChecks | None) -> HealthFigures:
-        """Layer health at the snapshot's weights and rate, with the last input-slope checks."""
+    def feeds_channel(self, index: int) -> bool:
+        """True when parameter ``index`` is a convolution's (its channel has a health of its own)."""
+        found = unit_of(self.net, index)
+        return found is not None and isinstance(self.net.layers[found[0]], Conv)
+
+    def health(self, snap: Snapshot, inputs: InputChecks | None, index: int | None = None) -> HealthFigures:
+        """Layer health at the snapshot's weights and rate, with the last input-slope checks, and the
+        health of the unit or channel that weight ``index`` (the cursor's) feeds."""
         X, Y = self.data.X, self.data.Y
         report: HealthReport = self._cached(
             "health", (snap.version, snap.rate), lambda: layer_health(self.training(snap), snap.value, X, Y, snap.rate))
         checks = None if inputs is None else inputs.checks
         stale = inputs is not None and inputs.version != snap.version
-        return HealthFigures(report, self.kinds, self.custom, checks, stale)
+        found = None if index is None else unit_of(self.net, index)
+        unit = None if found is None else unit_health(report, self.net, *found)
+        focus = None if unit is None or index is None else (snap.names[index], unit)
+        return HealthFigures(report, self.kinds, self.custom, checks, stale, focus)
 
     def hints(self, check: CheckResult, inputs: InputChecks | None) -> list[str]:
         """The likely causes of ``check``'s disagreements, one sentence each (empty when all agree).

@@ -54,7 +54,7 @@ class WhyKeys(AppBase):
 
     @on(WeightTable.Selected)
     def _selected(self, event: WeightTable.Selected) -> None:
-        if self.why in ("slice", "factors", "histograms") and event.index != self._shown_index:
+        if self.why in ("slice", "factors", "health", "histograms") and event.index != self._shown_index:
             self._show_why()
 
     # -- the slice's span ------------------------------------------------------------------
@@ -162,7 +162,7 @@ class WhyKeys(AppBase):
             elif self.why == "factors":
                 self._show_factors(snap, index)
             else:
-                self.query_one(HealthPanel).show(self.figures.health(snap, self._input_checks))
+                self.query_one(HealthPanel).show(self.figures.health(snap, self._input_checks, index))
         except StepperError as exc:  # the user's layer raised
             self._why_note(snap, index, f"cannot be computed here: {exc.message}")
             self._problem(exc.message)
@@ -203,8 +203,10 @@ class WhyKeys(AppBase):
         figures = self.figures.factors(snap, index, self.sample)
         if isinstance(figures, str):
             self._shown_samples = None
+            channel = " h shows the health of the channel it feeds." if self.figures.feeds_channel(index) else ""
             panel.show_note(f"slope factors of {snap.names[index]}",
-                            f"{figures}. t shows the cost along it; c compares its slope with finite differences.")
+                            f"{figures}. t shows the cost along it; # computes its slope by finite "
+                            f"differences.{channel}")
             return
         self._shown_samples = (figures.result.sample, figures.result.n_samples)
         panel.show(figures)

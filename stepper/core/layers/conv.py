@@ -108,7 +108,8 @@ class Conv(Shaped, Activated):
         return self.rows * self.grid.positions + 2 * self.n_out
 
     def why_no_breakdown(self) -> str:
-        return ("a kernel weight is shared by every window position: its slope sums error signal x "
+        return ("a convolution's weight (a kernel entry or a bias) is shared by every window position: its "
+                "slope sums error signal x "
                 "activation slope x input over every sample and every position, so there is no single "
                 "unit to break it down by")
 
