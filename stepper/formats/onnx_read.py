@@ -118,15 +118,18 @@ class OnnxGraph:
     def is_initializer(self, name: str) -> bool:
         return name in self._tensors
 
-    def initializer(self, name: str, node: Node) -> tuple[Array, str]:
-        """The initializer ``name`` as float64, and the file's float type; errors name ``node``."""
+    def _typed(self, name: str, node: Node, types: dict[int, str], expected: str) -> tuple[Any, str, str, tuple[int, ...]]:
+        """Initializer ``name``'s message, how errors name it, its type (one of ``types``) and dimensions."""
         tensor = self._tensors[name]
         where = f"{node.label}: initializer {name!r}"
-        dtype = FLOAT_TYPES.get(int(tensor.data_type))
+        dtype = types.get(int(tensor.data_type))
         if dtype is None:
-            raise self.fail(f"{where} is of ONNX element type {_type_name(tensor.data_type)}; "
-                            "Stepper reads float32 and float64 weights")
-        dims = tuple(int(d) for d in tensor.dims)
+            raise self.fail(f"{where} is of ONNX element type {_type_name(tensor.data_type)}; {expected}")
+        return tensor, where, dtype, tuple(int(d) for d in tensor.dims)
+
+    def initializer(self, name: str, node: Node) -> tuple[Array, str]:
+        """The initializer ``name`` as float64, and the file's float type; errors name ``node``."""
+        tensor, where, dtype, dims = self._typed(name, node, FLOAT_TYPES, "Stepper reads float32 and float64 weights")
         _check_dims(self, where, dims)
         if tensor.data_location == 1:  # TensorProto.EXTERNAL
             values = _external(self, where, tensor, dtype, dims)
@@ -139,13 +142,8 @@ class OnnxGraph:
 
     def whole_numbers(self, name: str, node: Node) -> tuple[int, ...]:
         """The small int32, int64 or bool initializer ``name`` (a shape, a flag) as whole numbers."""
-        tensor = self._tensors[name]
-        where = f"{node.label}: initializer {name!r}"
-        dtype = INT_TYPES.get(int(tensor.data_type))
-        if dtype is None:
-            raise self.fail(f"{where} is of ONNX element type {_type_name(tensor.data_type)}; Stepper expects "
-                            "whole numbers here (int64, int32 or bool)")
-        dims = tuple(int(d) for d in tensor.dims)
+        tensor, where, dtype, dims = self._typed(name, node, INT_TYPES,
+                                                 "Stepper expects whole numbers here (int64, int32 or bool)")
         count = 1
         for d in dims:
             count *= d
