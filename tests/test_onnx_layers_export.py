@@ -57,13 +57,17 @@ def test_an_imported_conv_graph_goes_back_with_its_trained_weights_and_statistic
     model, X = graph_model(tmp_path)
     session, ck = trained(model)
     out = tmp_path / "trained.onnx"
-    export([str(model), "--resume", str(ck), "--to", str(out), "--dtype", dtype], capsys)
+    text = export([str(model), "--resume", str(ck), "--to", str(out), "--dtype", dtype], capsys)
     ours = session.evaluation_net().predict(session.theta, X)
     reference = run_onnxruntime(out, X)  # onnxruntime in float32; ONNX's reference evaluator in float64
     if dtype == "float64":
         np.testing.assert_allclose(reference, ours, rtol=1e-12, atol=1e-13)
     else:
         np.testing.assert_allclose(reference, ours, rtol=2e-5, atol=2e-5)
+    # The evaluation cost export prints is the mean squared error of the runtime's outputs on the rows.
+    printed = float(text.split("on the training rows): ")[1].split()[0])
+    expected = float(np.mean((reference.astype(np.float64) - np.tanh(X[:, :2])) ** 2))
+    assert printed == pytest.approx(expected, rel=1e-9 if dtype == "float64" else 1e-5)
     written = {t.name: numpy_helper.to_array(t) for t in onnx.load(str(out)).graph.initializer}
     kept = session.net.state_views(session.state)[1]
     # The running statistics moved with the steps and went back as the node's input_mean and input_var.

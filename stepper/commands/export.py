@@ -29,4 +29,7 @@ def handle(args: argparse.Namespace) -> int:
     if done.written_cost != done.cost:
         out.write(f" (Stepper's, before rounding to {done.dtype}: {done.cost:.10g})")
     out.write("\n")
+    if done.evaluation_cost is not None:
+        out.write(f"evaluation cost at the weights written (no dropout, batch norm on its running statistics; what "
+                  f"an inference runtime computes on the training rows): {done.evaluation_cost:.10g}\n")
     return 0

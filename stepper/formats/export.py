@@ -37,6 +37,10 @@ class Exported:
         dtype: the float type written.
         cost: the training cost at the weights as Stepper holds them.
         written_cost: the training cost at the weights as written (rounded to ``dtype``).
+        evaluation_cost: for a network with dropout or batch norm, whose training
+            and evaluation differ, the cost of the evaluation forward pass (no
+            dropout, batch norm on the running statistics written) at the weights
+            as written: what an inference runtime computes on the training rows; else None.
     """
 
     path: Path
@@ -45,6 +49,7 @@ class Exported:
     dtype: str
     cost: float
     written_cost: float
+    evaluation_cost: float | None = None
 
 
 def export_weights(setup: Setup, theta: Array, target: Path, layout: str | None = None,
@@ -86,7 +91,12 @@ def export_weights(setup: Setup, theta: Array, target: Path, layout: str | None 
         raise UsageError(f"{target}: cannot be written ({exc.strerror or exc})") from None
     rounded = theta.astype(np.float32).astype(np.float64) if dtype == "float32" else theta
     X, Y = setup.data.X, setup.data.Y
-    return Exported(target, suffix[1:], layout, dtype, net.cost(theta, X, Y), net.cost(rounded, X, Y))
+    evaluation = None
+    if net.has_state or net.varies_by_step:
+        kept = net.initial_state() if state is None else state
+        kept = kept.astype(np.float32).astype(np.float64) if dtype == "float32" else kept
+        evaluation = net.at(False, state=kept).cost(rounded, X, Y)
+    return Exported(target, suffix[1:], layout, dtype, net.cost(theta, X, Y), net.cost(rounded, X, Y), evaluation)
 
 
 def _umask() -> int:
