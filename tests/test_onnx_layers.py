@@ -228,3 +228,27 @@ def test_gather_data_must_hold_category_numbers(tmp_path: Path, capsys: pytest.C
     assert err.strip().splitlines() == [
         f"stepper: {tmp_path / 'data.csv'}: line 3, column 'x0': 5 is not a category number of the embedding in "
         "layers[0] (expected a whole number from 0 to 4)"]
+
+
+@pytest.mark.parametrize("form", ["value", "value_ints"])
+def test_a_reshape_whose_shape_is_a_constant_node(tmp_path: Path, form: str) -> None:
+    # PyTorch's exporter writes a reshape's shape as a Constant node; Stepper reads it like an initializer.
+    import onnx
+    from onnx import helper, numpy_helper
+
+    model = layer_chain([("Conv", {"channels": 2, "kernel": [3, 3]}), ("Relu", {}), ("Reshape", {"shape": [0, -1]}),
+                         ("Dropout", {"ratio": 0.1}), ("Gemm", {"units": 2})], (1, 5, 5))
+    shape = next(t for t in model.graph.initializer if t.name == "shape2")
+    model.graph.initializer.remove(shape)
+    ratio = next(t for t in model.graph.initializer if t.name == "drop3.ratio")
+    model.graph.initializer.remove(ratio)
+    attrs = {"value": numpy_helper.from_array(np.array([0, -1], dtype=np.int64))} if form == "value" else {
+        "value_ints": [0, -1]}
+    model.graph.node.insert(0, helper.make_node("Constant", [], ["shape2"], name="shape", **attrs))
+    model.graph.node.insert(0, helper.make_node("Constant", [], ["drop3.ratio"], name="ratio", value=ratio))
+    onnx.checker.check_model(model)
+    path, setup, X = open_graph(tmp_path, model)
+    assert [type(layer) for layer in setup.network.layers] == [Conv, Flatten, Dropout, type(setup.network.layers[3])]
+    assert setup.network.layers[2].rate == pytest.approx(0.1)  # type: ignore[attr-defined]
+    np.testing.assert_allclose(evaluation_output(setup, X), run_onnxruntime(path, X), rtol=1e-12, atol=1e-13)  # ONNX's
+    # reference evaluator (a float64 Conv)

@@ -95,8 +95,8 @@ GRAPHS: dict[str, tuple[Callable[[], onnx.ModelProto], str]] = {
     "weights made by a Constant node": (
         lambda: _graph([helper.make_node("Constant", [], ["w"], name="weights", value=_w("c", (4, 2))),
                         helper.make_node("Gemm", ["x", "w"], ["y"], name="fc")], []),
-        "node 'weights' (Constant): takes no computed tensor (only constants); Stepper runs a chain of nodes "
-        "from the graph's input"),
+        "node 'fc' (Gemm): its B (weights) 'w' comes from a Constant node; Stepper reads weights only from "
+        "initializers, which it can write back"),
     "transA inside the chain": (
         lambda: _graph([helper.make_node("Gemm", ["x", "w"], ["h"], name="fc1"),
                         helper.make_node("Gemm", ["h", "v"], ["y"], name="fc2", transA=1)],

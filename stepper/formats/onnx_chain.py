@@ -116,14 +116,20 @@ class Chain:
         """An error naming the file and the node (raise it)."""
         return ModelFileError(f"{self.graph.path}: {node.label}: {message}")
 
-    def weight(self, node: Node, position: int, what: str) -> tuple[Array, str]:
-        """Input ``position`` of ``node``, which must be an initializer: its values and name."""
+    def weight(self, node: Node, position: int, what: str, constant: bool = False) -> tuple[Array, str]:
+        """Input ``position`` of ``node``, which must be an initializer: its values and name.
+
+        ``constant``: a Constant node's output will do (a setting, not a weight Stepper changes).
+        """
         if position >= len(node.inputs) or not node.inputs[position]:
             raise self.fail(node, f"has no {what}")
         name = node.inputs[position]
         if not self.graph.is_initializer(name):
             raise self.fail(node, f"its {what} {name!r} is computed in the graph; Stepper reads weights only "
                                   "from initializers")
+        if name in self.graph.constants and not constant:
+            raise self.fail(node, f"its {what} {name!r} comes from a Constant node; Stepper reads weights only "
+                                  "from initializers, which it can write back")
         values, dtype = self.graph.initializer(name, node)
         self.dtypes.add(dtype)
         return values, name

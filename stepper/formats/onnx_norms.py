@@ -125,7 +125,7 @@ def _dropout(node: Node, chain: Chain) -> None:
     chain.close()
     rate = 0.5  # ONNX's default ratio (ONNX operator documentation, Dropout)
     if chain.has_input(node, 1):
-        ratio, _ = chain.weight(node, 1, "ratio")
+        ratio, _ = chain.weight(node, 1, "ratio", constant=True)
         if ratio.size != 1 or not 0.0 <= float(ratio.ravel()[0]) < 1.0:
             raise chain.fail(node, f"ratio {node.inputs[1]!r} is {ratio.ravel().tolist()}; Stepper drops a "
                                    "share from 0 up to 1 (one number)")

@@ -100,6 +100,9 @@ class OnnxGraph:
         input: the one graph input that is not an initializer.
         output: the one graph output.
         initializer_names: names of the initializers, in file order.
+        constants: outputs of ``Constant`` nodes, read like initializers (a
+            Reshape's shape as exporters write it); the nodes themselves are
+            not in ``nodes``, whose ``index`` counts them all the same.
     """
 
     path: Path
@@ -110,6 +113,7 @@ class OnnxGraph:
     output: TensorInfo
     initializer_names: tuple[str, ...]
     _tensors: dict[str, Any] = field(repr=False, default_factory=dict)
+    constants: frozenset[str] = frozenset()
 
     def fail(self, message: str) -> ModelFileError:
         """An error naming the file (raise it)."""
@@ -205,10 +209,18 @@ def read_onnx(path: Path) -> OnnxGraph:
         names = ", ".join(repr(o.name) for o in outputs) or "none"
         raise ModelFileError(f"{path}: the graph has {len(outputs)} outputs ({names}); Stepper runs a graph "
                              "with exactly one output")
-    nodes = [_node(path, i, proto) for i, proto in enumerate(graph.node)]
+    constants: dict[str, Any] = {}
+    for i, proto in enumerate(graph.node):
+        if proto.op_type == "Constant" and proto.domain in ("", "ai.onnx"):
+            constants[proto.output[0] if proto.output else ""] = _constant(path, i, proto)
+    clash = sorted((set(constants) & set(tensors)) | ({""} & set(constants)))
+    if clash:
+        raise ModelFileError(f"{path}: a Constant node's output {clash[0]!r} is not a new tensor name")
+    nodes = [_node(path, i, proto) for i, proto in enumerate(graph.node) if proto.op_type != "Constant"]
     if not nodes:
         raise ModelFileError(f"{path}: the graph has no nodes")
-    return OnnxGraph(path, raw, opset, nodes, inputs[0], outputs[0], tuple(tensors), tensors)
+    return OnnxGraph(path, raw, opset, nodes, inputs[0], outputs[0], tuple(tensors), tensors | constants,
+                     frozenset(constants))
 
 
 _MESSAGES: ModuleType | None = None
@@ -302,6 +314,36 @@ def _node(path: Path, index: int, proto: Any) -> Node:
                                  "attribute, which Stepper does not resolve")
         attributes[attribute.name] = _attribute_value(attribute)
     return Node(index, proto.name, proto.op_type, tuple(proto.input), tuple(proto.output), attributes)
+
+
+def _constant(path: Path, index: int, proto: Any) -> Any:
+    """The tensor a ``Constant`` node gives (its ``value``, or a number or list of them), as a TensorProto."""
+    label = f"node {proto.name!r} (Constant)" if proto.name else f"node {index} (Constant)"
+    messages = onnx_messages()
+    given = {attribute.name: attribute for attribute in proto.attribute}
+    if len(given) != 1 or len(proto.output) != 1:
+        raise ModelFileError(f"{path}: {label}: Stepper reads a Constant with one attribute and one output")
+    name, attribute = next(iter(given.items()))
+    if name == "value":
+        tensor = messages.TensorProto()
+        tensor.CopyFrom(attribute.t)
+    elif name in ("value_int", "value_ints", "value_float", "value_floats"):
+        tensor = messages.TensorProto()
+        values = {"value_int": [attribute.i], "value_ints": list(attribute.ints), "value_float": [attribute.f],
+                  "value_floats": list(attribute.floats)}[name]
+        if name.endswith("s"):
+            tensor.dims.append(len(values))
+        if "int" in name:
+            tensor.data_type = messages.TensorProto.INT64
+            tensor.int64_data.extend(values)
+        else:
+            tensor.data_type = messages.TensorProto.FLOAT
+            tensor.float_data.extend(values)
+    else:
+        raise ModelFileError(f"{path}: {label}: attribute {name} is not read (Stepper reads value, value_int, "
+                             "value_ints, value_float, value_floats)")
+    tensor.name = proto.output[0]
+    return tensor
 
 
 def _check_dims(graph: OnnxGraph, where: str, dims: tuple[int, ...]) -> None:
