@@ -262,5 +262,6 @@ def export(model: Setup | Session, path: str | Path, *, layout: str | None = Non
            dtype: str | None = None) -> Exported:
     """Write the weights to ``path``: ``.onnx``, or ``.safetensors`` in ``layout`` (``torch`` or ``stepper``)."""
     if isinstance(model, Session):
-        return export_weights(model.setup, model.theta.copy(), Path(path), layout, dtype, state=model.state.copy())
+        return export_weights(model.setup, model.theta.copy(), Path(path), layout, dtype, state=model.state.copy(),
+                              step=model.step_count)
     return export_weights(model, model.theta0, Path(path), layout, dtype)

@@ -68,6 +68,9 @@ def test_an_imported_conv_graph_goes_back_with_its_trained_weights_and_statistic
     printed = float(text.split("on the training rows): ")[1].split()[0])
     expected = float(np.mean((reference.astype(np.float64) - np.tanh(X[:, :2])) ** 2))
     assert printed == pytest.approx(expected, rel=1e-9 if dtype == "float64" else 1e-5)
+    # The training cost printed is the session's at its step (that step's dropout masks, the batch's statistics).
+    training = float(text.split("training cost at the weights written: ")[1].split()[0])
+    assert training == pytest.approx(session.train_cost(), rel=1e-9 if dtype == "float64" else 1e-5)
     written = {t.name: numpy_helper.to_array(t) for t in onnx.load(str(out)).graph.initializer}
     kept = session.net.state_views(session.state)[1]
     # The running statistics moved with the steps and went back as the node's input_mean and input_var.

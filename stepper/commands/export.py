@@ -14,14 +14,16 @@ from stepper.formats.export import export_weights
 def handle(args: argparse.Namespace) -> int:
     setup = load(args)
     net = setup.network
-    theta, state = setup.theta0, None
+    theta, state, step = setup.theta0, None, 0
     inputs: tuple[Path, ...] = ()
     if args.resume is not None:
         # The running statistics of a batch norm come with the weights (an ONNX file holds them).
         data = load_checkpoint(args.resume, net.layout, net.state_layout if net.has_state else None)
         theta, state = data.theta, (data.state if net.has_state else None)
+        count = data.meta.get("step_count")  # the training cost at that step's dropout masks
+        step = count if isinstance(count, int) and not isinstance(count, bool) and count >= 0 else 0
         inputs = (args.resume,)
-    done = export_weights(setup, theta, args.to, args.layout, args.dtype, inputs, state=state)
+    done = export_weights(setup, theta, args.to, args.layout, args.dtype, inputs, state=state, step=step)
     what = "ONNX" if done.kind == "onnx" else f"safetensors, {done.layout} layout"
     out = sys.stdout
     out.write(f"wrote {done.path} ({what}, {done.dtype}, {setup.network.n_params} weights)\n")

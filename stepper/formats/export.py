@@ -53,7 +53,8 @@ class Exported:
 
 
 def export_weights(setup: Setup, theta: Array, target: Path, layout: str | None = None,
-                   dtype: str | None = None, inputs: tuple[Path, ...] = (), *, state: Array | None = None) -> Exported:
+                   dtype: str | None = None, inputs: tuple[Path, ...] = (), *, state: Array | None = None,
+                   step: int = 0) -> Exported:
     """Write weights ``theta`` ``(n_params,)`` of ``setup``'s network to ``target``.
 
     ``layout`` (safetensors only) defaults to ``torch``; ``dtype`` to the float
@@ -61,6 +62,8 @@ def export_weights(setup: Setup, theta: Array, target: Path, layout: str | None 
     overwritten (a checkpoint the weights were loaded from). ``state``
     ``(n_state,)``: the layers' kept arrays (batch norm's running statistics,
     which an ONNX file holds); by default the network's starting ones.
+    ``step``: the update count, whose dropout masks the training cost uses (as
+    the session's training cost at that step does).
     """
     target = Path(target)
     suffix = target.suffix.lower()
@@ -92,11 +95,14 @@ def export_weights(setup: Setup, theta: Array, target: Path, layout: str | None 
     rounded = theta.astype(np.float32).astype(np.float64) if dtype == "float32" else theta
     X, Y = setup.data.X, setup.data.Y
     evaluation = None
+    training = net
     if net.has_state or net.varies_by_step:
         kept = net.initial_state() if state is None else state
+        training = net.at(True, step, kept)
         kept = kept.astype(np.float32).astype(np.float64) if dtype == "float32" else kept
         evaluation = net.at(False, state=kept).cost(rounded, X, Y)
-    return Exported(target, suffix[1:], layout, dtype, net.cost(theta, X, Y), net.cost(rounded, X, Y), evaluation)
+    return Exported(target, suffix[1:], layout, dtype, training.cost(theta, X, Y), training.cost(rounded, X, Y),
+                    evaluation)
 
 
 def _umask() -> int:

@@ -77,13 +77,15 @@ class FileKeys(AppBase):
         last = self.session.last_checkpoint
         try:
             done = export_weights(self.session.setup, self.session.theta.copy(), path, layout, dtype,
-                                  () if last is None else (last,), state=self.session.state.copy())
+                                  () if last is None else (last,), state=self.session.state.copy(),
+                                  step=self.session.step_count)
         except StepperError as exc:
             self.say(exc.message, error=True)
             return
         what = "ONNX" if done.kind == "onnx" else f"{done.layout} layout"
+        evaluation = "" if done.evaluation_cost is None else f", evaluation cost {done.evaluation_cost:.6g}"
         self.say(f"exported {path} ({what}, {done.dtype}): training cost at the weights written "
-                 f"{done.written_cost:.6g}; the session itself is not saved")
+                 f"{done.written_cost:.6g}{evaluation}; the session itself is not saved")
 
     def action_load(self) -> None:
         if self.busy():
