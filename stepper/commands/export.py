@@ -17,11 +17,15 @@ def handle(args: argparse.Namespace) -> int:
     theta, state, step = setup.theta0, None, 0
     inputs: tuple[Path, ...] = ()
     if args.resume is not None:
-        # The running statistics of a batch norm come with the weights (an ONNX file holds them).
-        data = load_checkpoint(args.resume, net.layout, net.state_layout if net.has_state else None)
-        theta, state = data.theta, (data.state if net.has_state else None)
-        count = data.meta.get("step_count")  # the training cost at that step's dropout masks
-        step = count if isinstance(count, int) and not isinstance(count, bool) and count >= 0 else 0
+        # The running statistics of a batch norm come with the weights (an ONNX file holds them), and
+        # the training cost printed is the one at the checkpoint's step (its dropout masks).
+        data = load_checkpoint(args.resume, net.layout, net.state_layout)
+        theta, state = data.theta, data.state
+        if net.varies_by_step or net.has_state:
+            from stepper.formats.saved_state import read_state
+            from stepper.session.core import SLOPE_SOURCES
+
+            step = read_state(args.resume, data, net.layout, setup.data.n_train, SLOPE_SOURCES).step_count
         inputs = (args.resume,)
     done = export_weights(setup, theta, args.to, args.layout, args.dtype, inputs, state=state, step=step)
     what = "ONNX" if done.kind == "onnx" else f"safetensors, {done.layout} layout"
