@@ -41,14 +41,17 @@ import contextvars
 import math
 from collections import deque
 from concurrent.futures import Future, ThreadPoolExecutor
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Any, Callable, Generator, Iterable, Iterator, TypeVar
 
 import numpy as np
 from numpy.typing import NDArray
 
-from stepper.core.layers import Builtin, Dense, DenseCache
+from stepper.core.layers import Builtin, Dense
 from stepper.core.network import Network
+from stepper.core.numeric_dense import Workspace as _Workspace
+from stepper.core.numeric_dense import dense_costs as _dense_costs
+from stepper.core.numeric_dense import prepare as _prepare
 from stepper.core.stacked import chunk_size as stacked_chunk_size
 from stepper.core.stacked import stacked_costs
 
@@ -87,44 +90,6 @@ class NumericSlopes:
     method: str
     h: float
     computed: NDArray[np.bool_] | None = None
-
-
-@dataclass
-class _Workspace:
-    """What one pass keeps between chunks.
-
-    Attributes:
-        reach: per layer, :func:`_kink_reach` of the next (kinked) layer.
-        positive: per layer, ``Z > 0`` of its unperturbed pre-activation ``(n, units)``.
-        buffers: two flat float64 buffers the stacked arrays of a chunk live in.
-    """
-
-    reach: dict[int, Array] = field(default_factory=dict)
-    positive: dict[int, NDArray[np.bool_]] = field(default_factory=dict)
-    transposed: dict[tuple[int, str], Array] = field(default_factory=dict)
-    buffers: list[Array] = field(default_factory=lambda: [np.empty(0), np.empty(0)])
-
-    def array(self, slot: int, shape: tuple[int, ...]) -> Array:
-        """An uninitialised array of ``shape`` in buffer ``slot`` (0 or 1), grown when too small."""
-        size = math.prod(shape)
-        if self.buffers[slot].size < size:
-            self.buffers[slot] = np.empty(size)
-        return self.buffers[slot][:size].reshape(shape)
-
-    def rows_of(self, index: int, name: str, cache: DenseCache) -> Array:
-        """``X``, ``Z`` or ``A`` of layer ``index`` transposed and contiguous, ``(width, n)``.
-
-        Gathering rows of these is much faster than gathering strided columns.
-        """
-        key = (index, name)
-        if key not in self.transposed:
-            self.transposed[key] = np.ascontiguousarray(getattr(cache, name).T)
-        return self.transposed[key]
-
-    def is_positive(self, index: int, Z: Array) -> NDArray[np.bool_]:
-        if index not in self.positive:
-            self.positive[index] = Z > 0.0
-        return self.positive[index]
 
 
 def default_step(method: str) -> float:
@@ -208,8 +173,9 @@ def iter_numeric_slopes(
     inputs = [X] + [out for out, _ in trace[:-1]]
     params = net.views(theta)
     work = _Workspace()
-    spaces = [work] + [_Workspace(reach=work.reach) for _ in range(_WORKERS - 1)]
+    spaces = [work] + [work.sibling() for _ in range(_WORKERS - 1)]
 
+    signs = 2 if method == "central" else 1  # moves per weight
     # The array with the most weights to compute first: a pass stopped early (the app's
     # automatic pass at its time budget) estimates the whole from what it did, and the
     # largest array's cost per weight is most of the whole (a convolution's few kernel
@@ -225,14 +191,14 @@ def iter_numeric_slopes(
             # layer is never run from two threads at once.
             parallel = all(isinstance(lay, Builtin) for lay in later)
             if all(isinstance(lay, Dense) for lay in later):
-                if block.layer + 1 < len(net.layers):
-                    _prepare_reach(net, params, trace, block.layer, work.reach)
-                chunk = _chunk_size(net, block.layer, X.shape[0])
+                _prepare(net, params, trace, block.layer, int(in_block.size), work)
+                chunk = _chunk_size(net, block.layer, X.shape[0], block.layer in work.through) // signs
                 one_piece = _dense_piece(net, params, trace, block, step, method, base_cost, Y, theta, base_penalty)
             else:
                 chunk = stacked_chunk_size(net, block.layer, X.shape[0])
                 one_piece = _stacked_piece(net, params, trace, inputs, block, step, method, base_cost, Y, theta,
                                            base_penalty)
+            chunk = max(1, chunk)
             pieces = [in_block[lo : lo + chunk] for lo in range(0, in_block.size, chunk)]
             for idx, values, kinks in _pieces(one_piece, pieces, spaces if parallel else spaces[:1]):
                 slopes[idx] = values
@@ -269,12 +235,16 @@ def _dense_piece(net: Network, params: list[dict[str, Array]], trace: list[tuple
     """
 
     def one_piece(idx: NDArray[np.int64], space: _Workspace) -> tuple[NDArray[np.int64], Array, NDArray[np.bool_]]:
-        plus, kink_p = _dense_costs(net, params, trace, block, idx, +step, Y, space)
-        plus = plus + net.penalty_at(theta, base_penalty, idx, +step)
+        k = idx.size
         if method == "central":
-            minus, kink_m = _dense_costs(net, params, trace, block, idx, -step, Y, space)
-            minus = minus + net.penalty_at(theta, base_penalty, idx, -step)
-            return idx, (plus - minus) / (2.0 * step), kink_p | kink_m
+            # Both sides in one stack: idx moved up, then idx moved down.
+            costs, kinks = _dense_costs(net, params, trace, block, np.concatenate([idx, idx]),
+                                        np.repeat([step, -step], k), Y, space)
+            plus = costs[:k] + net.penalty_at(theta, base_penalty, idx, +step)
+            minus = costs[k:] + net.penalty_at(theta, base_penalty, idx, -step)
+            return idx, (plus - minus) / (2.0 * step), kinks[:k] | kinks[k:]
+        plus, kink_p = _dense_costs(net, params, trace, block, idx, np.full(k, step), Y, space)
+        plus = plus + net.penalty_at(theta, base_penalty, idx, +step)
         return idx, (plus - base_cost) / step, kink_p
 
     return one_piece
@@ -374,48 +344,19 @@ def _pieces(
                 future.exception()  # wait: the workspace must be free before anyone reuses it
 
 
-def _prepare_reach(
-    net: Network, params: list[dict[str, Array]], trace: list[tuple[Array, Any]], layer: int, memo: dict[int, Array]
-) -> None:
-    """Fill ``memo[layer]`` with :func:`_kink_reach` when the next layer is a kinked dense one."""
-    nxt = net.layers[layer + 1]
-    if layer not in memo and isinstance(nxt, Dense) and nxt.activation.kink:
-        memo[layer] = _kink_reach(trace[layer + 1][1].Z, params[layer + 1]["W"])
+def _chunk_size(net: Network, layer: int, n_samples: int, through: bool = False) -> int:
+    """Moves per chunk, so that a chunk's stacked arrays fit in :data:`CHUNK_BYTES`.
 
-
-def _chunk_size(net: Network, layer: int, n_samples: int) -> int:
-    """Perturbations per chunk, so that a chunk's stacked arrays fit in :data:`CHUNK_BYTES`."""
+    ``through``: the moves pass the next layer by :mod:`stepper.core.numeric_dense`'s ``G``.
+    """
     this = net.layers[layer]
     rank_one = (isinstance(this, Dense) and this.activation.elementwise and layer + 1 < len(net.layers)
                 and isinstance(net.layers[layer + 1], Dense))
-    # With the rank-one update this layer's full output is never stacked.
-    widest = max(l.n_out for l in net.layers[layer + 1 if rank_one else layer :])
+    # With the rank-one update this layer's full output is never stacked (nor the next one's
+    # when going through it).
+    widest = max(l.n_out for l in net.layers[layer + (2 if through else 1 if rank_one else 0) :])
     per_item = 8 * n_samples * max(widest, 1) * 4  # two buffers and temporaries per perturbation
     return int(max(1, min(4096, CHUNK_BYTES // per_item)))
-
-
-def _kink_reach(Z: Array, W: Array) -> Array:
-    """``min_m |Z[s, m]| / |W[u, m]|`` for every unit ``u`` of the layer before and sample ``s``.
-
-    ``Z`` is ``(n, n_next)``, ``W`` is ``(n_units, n_next)``; returns ``(n_units, n)``.
-    A change ``c`` of unit ``u``'s output on sample ``s`` can move some unit of the
-    next layer across zero only if ``|c| >= reach[u, s]``; a zero weight never
-    moves a unit (its ratio is infinite), a unit sitting at zero is reached by any
-    change. Computed a block of units at a time so the temporary stays within
-    :data:`CHUNK_BYTES`.
-    """
-    abs_Z = np.abs(Z)
-    abs_W = np.abs(W)
-    n_units = W.shape[0]
-    reach = np.empty((n_units, Z.shape[0]))
-    per_unit = max(8 * abs_Z.size, 1)
-    step = int(max(1, CHUNK_BYTES // per_unit))
-    for lo in range(0, n_units, step):
-        w = abs_W[lo : lo + step, None, :]  # (block, 1, n_next)
-        ratio = np.full((w.shape[0],) + abs_Z.shape, np.inf)
-        np.divide(abs_Z[None, :, :], w, out=ratio, where=w != 0.0)
-        reach[lo : lo + step] = np.min(ratio, axis=2)
-    return reach
 
 
 def _rerun_cost(
@@ -440,87 +381,3 @@ def _rerun_cost(
         return float(net.output_cost(A, cache, Y)) + net.penalty(theta), crossed
     finally:
         theta[flat] = saved
-
-
-def _dense_costs(
-    net: Network,
-    params: list[dict[str, Array]],
-    trace: list[tuple[Array, Any]],
-    block: Any,
-    idx: NDArray[np.int64],
-    delta: float,
-    Y: Array,
-    work: _Workspace,
-) -> tuple[Array, NDArray[np.bool_]]:
-    """Costs ``(k,)`` with each parameter in ``idx`` (all in one dense block) moved by ``delta``.
-
-    Also returns, per parameter, whether any kinked unit came within the change
-    of its kink. ``work`` keeps look-ups and buffers between chunks.
-    """
-    layer_index = block.layer
-    layer = net.layers[layer_index]
-    assert isinstance(layer, Dense)
-    cache: DenseCache = trace[layer_index][1]
-    local = idx - block.start
-    k = idx.size
-    n = cache.X.shape[0]
-    if block.key == "W":
-        rows, units = np.divmod(local, layer.n_out)
-        column = work.rows_of(layer_index, "X", cache)[rows]  # (k, n): the input that multiplies each weight
-    else:
-        units = local
-        column = np.ones((k, n))
-    z_base = work.rows_of(layer_index, "Z", cache)[units]  # (k, n)
-    z_col = z_base + delta * column
-    kinked = np.zeros(k, dtype=bool)
-    act = layer.activation
-    if act.kink:
-        kinked |= np.any((z_col > 0.0) != (z_base > 0.0), axis=1)
-
-    n_layers = len(net.layers)
-    next_layer = net.layers[layer_index + 1] if layer_index + 1 < n_layers else None
-    slot = 0
-    if act.elementwise and isinstance(next_layer, Dense):
-        # Only column `unit` of this layer's output changes: a rank-one update
-        # of the next layer's pre-activation.
-        change = act.fn(z_col) - work.rows_of(layer_index, "A", cache)[units]  # (k, n)
-        nxt: DenseCache = trace[layer_index + 1][1]
-        W_next = params[layer_index + 1]["W"]
-        Z = work.array(slot, (k, n, next_layer.n_out))
-        np.multiply(change[:, :, None], W_next[units][:, None, :], out=Z)
-        Z += nxt.Z
-        if next_layer.activation.kink:
-            # Unit m of sample s sits within this change of its kink when
-            # |Z[s, m]| <= |change[s]| * |W_next[unit, m]|.
-            reach = work.reach[layer_index][units]  # (k, n)
-            kinked |= np.any(np.abs(change) >= reach, axis=1)
-        index = layer_index + 1
-    else:
-        Z = work.array(slot, (k,) + cache.Z.shape)
-        Z[...] = cache.Z
-        Z[np.arange(k), :, units] = z_col
-        index = layer_index
-
-    # Z holds the pre-activations of dense layer `index` for every copy, (k, n, units).
-    while True:
-        dense = net.layers[index]
-        assert isinstance(dense, Dense)
-        if index == n_layers - 1:
-            # The last layer: its Z is needed afterwards only by a fused loss.
-            A = Z if net.fused is not None else dense.activation.apply_in_place(Z)
-            return net.output_cost(A, DenseCache(_NOTHING, Z, A), Y), kinked
-        A = dense.activation.apply_in_place(Z)
-        index += 1
-        dense = net.layers[index]
-        assert isinstance(dense, Dense)
-        slot = 1 - slot
-        Z = work.array(slot, (k, n, dense.n_out))
-        np.matmul(A.reshape(k * n, dense.n_in), params[index]["W"], out=Z.reshape(k * n, dense.n_out))
-        if dense.bias:
-            Z += params[index]["b"]
-        if dense.activation.kink:
-            positive = work.is_positive(index, trace[index][1].Z)
-            kinked |= np.any((Z > 0.0) != positive, axis=(1, 2))
-
-
-_NOTHING = np.empty(0)
