@@ -37,7 +37,7 @@ from stepper.core.network import Network
 Array = NDArray[np.float64]
 Trace = list[tuple[Array, Any]]
 
-#: Bytes of the temporaries one block of :func:`kink_reach` or of ``G`` may take.
+#: Bytes of the temporaries one block of :func:`kink_reach` may take.
 BLOCK_BYTES = 4 * 1024 * 1024
 #: Largest ``G`` a pass keeps (per layer), in bytes.
 THROUGH_BYTES = 64 * 1024 * 1024
@@ -145,15 +145,12 @@ def _through_matrix(Z: Array, W: Array, W_after: Array, slopes: tuple[float, flo
 
     ``Z`` ``(n, n_next)`` is the piecewise-linear layer's pre-activation, ``W``
     ``(n_units, n_next)`` its weights, ``W_after`` ``(n_next, n_after)`` the next ones.
+    One matrix product: ``W @ M`` with ``M[q, s, :] = D[s, q] W_after[q, :]``.
     """
     n, width = Z.shape
     D = np.where(Z > 0.0, slopes[1], slopes[0])  # (n, n_next)
-    G = np.empty((W.shape[0], n, W_after.shape[1]))
-    block = int(max(1, BLOCK_BYTES // (8 * n * width)))
-    for lo in range(0, W.shape[0], block):
-        scaled = W[lo : lo + block, None, :] * D[None, :, :]  # (block, n, n_next)
-        np.matmul(scaled.reshape(-1, width), W_after, out=G[lo : lo + block].reshape(-1, W_after.shape[1]))
-    return G
+    M = D.T[:, :, None] * W_after[:, None, :]  # (n_next, n, n_after)
+    return (W @ M.reshape(width, -1)).reshape(W.shape[0], n, W_after.shape[1])
 
 
 def kink_reach(Z: Array, W: Array) -> Array:
@@ -172,11 +169,14 @@ def kink_reach(Z: Array, W: Array) -> Array:
     reach = np.empty((n_units, Z.shape[0]))
     per_unit = max(8 * abs_Z.size, 1)
     step = int(max(1, BLOCK_BYTES // per_unit))
-    for lo in range(0, n_units, step):
-        w = abs_W[lo : lo + step, None, :]  # (block, 1, n_next)
-        ratio = np.full((w.shape[0],) + abs_Z.shape, np.inf)
-        np.divide(abs_Z[None, :, :], w, out=ratio, where=w != 0.0)
-        reach[lo : lo + step] = np.min(ratio, axis=2)
+    ratio = np.empty((min(step, n_units),) + abs_Z.shape)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        for lo in range(0, n_units, step):
+            w = abs_W[lo : lo + step, None, :]  # (block, 1, n_next)
+            part = ratio[: w.shape[0]]
+            # |Z| / 0 is inf; 0 / 0 is NaN, which fmin passes over (as if inf).
+            np.divide(abs_Z[None, :, :], w, out=part)
+            np.fmin.reduce(part, axis=2, out=reach[lo : lo + step])
     return reach
 
 
