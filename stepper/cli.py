@@ -207,14 +207,6 @@ def _looks_like_model(word: str) -> bool:
         return False
 
 
-def _use_cores() -> None:
-    """Numeric slopes on up to two threads, when BLAS runs one thread (as set above)."""
-    if os.environ.get("OPENBLAS_NUM_THREADS") == "1":
-        from stepper.core.numeric import set_workers
-
-        set_workers(min(2, os.cpu_count() or 1))
-
-
 def main(argv: Sequence[str] | None = None) -> int:
     """Run the command line; returns the exit code."""
     args_list = list(sys.argv[1:] if argv is None else argv)
@@ -224,7 +216,6 @@ def main(argv: Sequence[str] | None = None) -> int:
         if args.command is None:
             parser.print_help()
             return 2
-        _use_cores()  # only now: it imports the numeric core
         code: int = args.handler(args)
         return code
     except StepperError as exc:

@@ -278,10 +278,13 @@ def set_workers(n: int) -> None:
     """Evaluate up to ``n`` chunks of perturbations at once, on threads (default 1).
 
     numpy releases the GIL inside its array loops, so this uses several cores.
-    It pays only when the BLAS library itself runs one thread per call: with
-    OpenBLAS's default of one thread per core the two kinds of threads compete
-    and a 2-core machine got slower (tests/benchmarks/bench_numeric.py). The
-    ``stepper`` command sets both.
+    It pays only when the BLAS library itself runs one thread per call (with
+    OpenBLAS's default of one thread per core the two kinds of threads compete),
+    and only on an otherwise idle machine: on a shared 2-core machine two
+    workers took 0.58x to 0.87x the speed of one at load averages of 2.8 to 4.6
+    (10-64-64-1 and 10-310-310-1, tanh and ReLU), and gained 1.02x to 1.1x near
+    idle (tests/benchmarks/bench_numeric.py). So the ``stepper`` command keeps
+    one; a program that owns its machine may ask for more.
     """
     global _WORKERS, _POOL
     n = max(1, int(n))

@@ -168,13 +168,11 @@ APP_CHILD = """
 import time
 t0 = time.perf_counter()
 import asyncio, json, statistics, sys
-from stepper.core.numeric import set_workers
 from stepper.formats.model_file import load_setup
 from stepper.session import Session
 from stepper.ui.app import StepperApp
 from stepper.ui.weights import WeightTable
 
-set_workers(2)  # as the stepper command does
 
 
 def rss_mb():

@@ -114,7 +114,8 @@ def per_entry_costs(k: int = 8) -> dict[str, float]:
 def floors(net: Network, costs: dict[str, float], moves_per_weight: int) -> tuple[float, float]:
     """Seconds of the stacked arithmetic of one pass, and of the plain stacked method (module docstring).
 
-    Mirrors the paths of stepper.core.numeric_dense: a dense layer's moves update
+    Mirrors the paths of stepper.core.numeric_dense: each move changes one column
+    of its layer (``n`` entries, an update and an activation); a dense layer's moves update
     the next layer by a rank-one change (or, before a piecewise-linear layer,
     the one after it through ``G``); the later layers run on the whole stack.
     """
@@ -125,6 +126,8 @@ def floors(net: Network, costs: dict[str, float], moves_per_weight: int) -> tupl
         moves = moves_per_weight * (block.stop - block.start)
         later = layers[block.layer + 1 :]
         plain += moves * n * sum(l.n_in * l.n_out for l in later) * costs["gemm"]
+        # Each move's own column: the moved pre-activation, its activation and its change.
+        ours += moves * n * (costs["update"] + costs.get(layers[block.layer].activation.name, 0.0))
         if not later:
             continue  # the output layer's own moves: one column of the output per move
         first = block.layer + (2 if through_pays(net, block.layer, n, moves) else 1)
