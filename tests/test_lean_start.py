@@ -96,3 +96,17 @@ def test_choices_spelled_for_the_parsers_are_the_sources() -> None:
     assert options.INPUT_SAMPLES == DEFAULT_SAMPLES and options.SLICE_POINTS == DEFAULT_POINTS
     assert options.RATE_TEST_STEPS == DEFAULT_STEPS and options.THRESHOLD == THRESHOLD
     assert options.SPLITS == SPLITS and options.LAYOUTS == LAYOUTS and options.DTYPES == DTYPES
+
+
+@pytest.mark.parametrize("argv", [["--help"], ["check", "--help"], ["--rate", "2"], [], ["run", "x.toml"]])
+def test_building_only_the_needed_subcommands_changes_no_help(argv: list[str]) -> None:
+    # `stepper --help` builds no subcommand's options; the help it prints must be the full parser's,
+    # and a subcommand that parses must have all of its options.
+    from stepper import cli
+
+    lean, full = cli.build_parser(cli.needed(argv)), cli.build_parser()
+    assert lean.format_help() == full.format_help()
+    for name in cli.needed(argv):
+        assert lean.subparsers[name].format_help() == full.subparsers[name].format_help()
+        assert lean.subparsers[name].option_names() == full.subparsers[name].option_names()
+    assert cli.needed(argv) <= {argv[0] if argv and argv[0] in cli.COMMANDS else cli.DEFAULT_COMMAND}
