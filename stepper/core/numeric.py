@@ -21,7 +21,10 @@ column ``j`` of that layer's pre-activation, by ``h * X[:, i]``. So the layers
 before ``l`` are never recomputed (their outputs are cached), layer ``l`` is
 updated one column at a time, the next dense layer receives a rank-one change,
 and only the layers after that are run in full -- for a whole chunk of
-perturbations at once, stacked on a leading axis. Parameters of other built-in
+perturbations at once, stacked on a leading axis, both sides of a central
+difference in the same stack (:mod:`stepper.core.numeric_dense`, which also
+passes a ReLU-like layer by one matrix made per pass, for moves that reach
+none of its kinks). Parameters of other built-in
 layers (convolutions, norms, embeddings) and of dense layers followed by them
 take the general stacked path of :mod:`stepper.core.stacked`: the layers before
 are never recomputed either, the perturbed layer makes all copies' outputs at
