@@ -149,7 +149,7 @@ SIGNAL_LAYERS = """
 [[layers]]
 type = "conv1d"
 channels = 2
-kernel = 3
+kernel = 4                # "same" pads 1 before and 2 after: uneven pads in the file
 padding = "same"
 activation = "relu"
 [[layers]]
@@ -232,3 +232,25 @@ def test_an_embedding_with_other_columns_is_refused_for_onnx(tmp_path: Path, cap
     assert err.startswith("stepper: layer L1 (embedding 3->7): ONNX's Gather reads an integer input, so Stepper "
                           "exports an embedding only as the first layer with every input column a category column")
     assert not (tmp_path / "net.onnx").exists()
+
+
+def test_the_glaze_defects_scenario_goes_to_onnx_and_opens_with_the_same_costs(
+        tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    # The bundled 2-D convolution scenario, written as ONNX and opened again from the graph with the scenario's
+    # own [data] table: the same training and validation costs, and onnxruntime's outputs give the same cost.
+    scenario = Path(__file__).resolve().parents[1] / "scenarios" / "glaze-defects"
+    original = load_setup(scenario / "model.toml")
+    export([str(scenario / "model.toml"), "--to", str(tmp_path / "net.onnx")], capsys)
+    export([str(scenario / "model.toml"), "--to", str(tmp_path / "net32.onnx"), "--dtype", "float32"], capsys)
+    text = (scenario / "model.toml").read_text(encoding="utf-8")
+    head = text[: text.index("[init]")].replace('file = "data.csv"', f'file = "{scenario / "data.csv"}"')
+    (tmp_path / "model.toml").write_text('network = "net.onnx"\n' + head, encoding="utf-8")
+    graph = load_setup(tmp_path / "model.toml")
+    data = original.data
+    assert graph.network.input_shape == (1, 8, 8) and graph.data.X.tobytes() == data.X.tobytes()
+    for X, Y in ((data.X, data.Y), (data.X_val, data.Y_val)):
+        cost = original.network.cost(original.theta0, X, Y)
+        assert graph.network.cost(graph.theta0, X, Y) == cost
+        # Categorical cross-entropy, the mean over rows of -log(p of the row's class), from onnxruntime's outputs.
+        p = run_onnxruntime(tmp_path / "net32.onnx", X).astype(np.float64)
+        assert float(np.mean(-np.log(np.sum(p * Y, axis=1)))) == pytest.approx(cost, rel=1e-5)
