@@ -85,7 +85,7 @@ def export_weights(setup: Setup, theta: Array, target: Path, layout: str | None 
         layout = "onnx"
     else:
         layout = layout or "torch"
-        data = safetensors_bytes(net, theta, setup.origin, layout, dtype)
+        data = safetensors_bytes(net, theta, setup.origin, layout, dtype, state, step)
     try:
         write_atomic(target, data)
         # The temporary file was private (0600); a file for another program gets the usual mode.
