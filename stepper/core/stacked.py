@@ -125,9 +125,9 @@ def channel_route(net: Network, layer: int) -> int | None:
         lay = net.layers[index]
         if isinstance(lay, Dense):
             return index
-        if not isinstance(lay, Builtin) or width is None:
+        width = lay.channel_width(width) if isinstance(lay, Builtin) else None
+        if width is None:
             return None
-        width = lay.channel_width(width)
     return None
 
 
