@@ -111,6 +111,21 @@ def test_a_max_pool_tie_is_a_kink_not_a_disagreement() -> None:
     assert result.counts["agree"] == net.n_params
 
 
+def test_at_a_tie_the_first_entry_takes_the_slope_and_the_finite_difference_lands_halfway() -> None:
+    # The documented rule (README, "Layers beyond dense"; numpy's argmax picks the first maximum):
+    # the first entry of the window in C order, position (0, 0) fed by K[0,0,0,0], takes the whole
+    # slope, K[0,1,0,0] none. Moving K[0,0,0,0] up keeps its entry on top (one-sided slope: all of
+    # it), moving it down hands the maximum to the other (none): the central difference is the mean
+    # of the two one-sided slopes, half (a textbook fact about max(a, b) at a = b).
+    net, theta, X, Y = tie_network((0.5, 0.5))
+    _, analytic = net.cost_and_slopes(theta, X, Y)
+    numeric = numeric_slopes(net, theta, X, Y, "central").slopes
+    assert analytic[0] != 0.0 and analytic[1] == 0.0
+    # Within O(h): on either side of the corner the cost curves differently.
+    assert numeric[0] == pytest.approx(analytic[0] / 2, rel=1e-4)
+    assert numeric[1] == pytest.approx(analytic[0] / 2, rel=1e-4)
+
+
 def test_a_relu_at_zero_in_a_convolution_is_a_kink() -> None:
     # One channel, a 1x1 kernel K = 1 and bias b = -1: the pixel equal to 1 sits exactly at the corner.
     conv = Conv((1, 1, 2), 1, grid((1, 2), (1, 1), (1, 1)), ACTIVATIONS["relu"])

@@ -171,6 +171,19 @@ IMAGE_MISTAKES = [
                                         "finite)"),
     ("epsilon = 1e-5", "momentum = 0.5",
      "layers[5].momentum (L6): a layer_norm layer does not take this key (it takes: epsilon, type)"),
+    ("epsilon = 1e-5", 'epsilon = "small"', "layers[5].epsilon (L6): expected a number, got the string 'small'"),
+    ('type = "conv2d"', 'type = "conv3d"',
+     "layers[0].type (L1): unknown 'conv3d' (expected one of: dense, conv1d, conv2d, max_pool, avg_pool, flatten, "
+     "dropout, layer_norm, batch_norm, embedding, custom)"),
+    ('type = "conv2d"', "type = 3", "layers[0].type (L1): expected a string, got an integer"),
+    ("kernel = 3", "kernel = [3, 0]", "layers[0].kernel (L1): [3, 0] is not positive"),
+    ('padding = "same"', "padding = [1, 2]",
+     "layers[0].padding (L1): [1, 2] is not \"valid\", \"same\" or a number of zeros from 0 to the kernel size 3"),
+    ("channels = 2", "channels = 2000000",
+     "layers[0].channels (L1): the network would have 20,000,000 parameters up to this layer; Stepper handles at "
+     "most 10,000,000"),
+    ("rate = 0.2", "rate = inf", "layers[4].rate (L5): inf is outside [0, 1) (the share of entries dropped)"),
+    ("rate = 0.2", "rate = 0.2\nseed = 1.5", "layers[4].seed (L5): expected an integer, got a number"),
 ]
 
 
@@ -204,6 +217,7 @@ SIGNAL_MISTAKES = [
      "layers[0].type (L1): a conv1d layer takes rows of shape [channels, length], but its input (the data's rows) has "
      "shape 16 (set [data] input_shape, e.g. [1, 8, 8] for 8x8 images of one channel)"),
     ("size = 2", "size = 9", "layers[2].size (L3): a 9 window does not fit the input's 8 positions (8 with padding)"),
+    ("size = 2", 'size = 2\nstride = "2"', "layers[2].stride (L3): expected an integer, got the string '2'"),
 ]
 
 TABLE_MISTAKES = [
@@ -217,6 +231,9 @@ TABLE_MISTAKES = [
      "layers[0].categories (L1): 2,000,000 is more than the 1,000,000 Stepper handles"),
     ("size = 2", "", "layers[0].size (L1): missing"),
     ("size = 2", "size = 2.5", "layers[0].size (L1): expected an integer, got a number"),
+    ("size = 2", "size = 0", "layers[0].size (L1): 0 is not a positive whole number"),
+    ('columns = ["kind"]', 'columns = "kind"', "layers[0].columns (L1): expected a list, got the string 'kind'"),
+    ("categories = 3", "categories = true", "layers[0].categories (L1): expected an integer, got a boolean"),
     ("size = 2", "size = 2\nunits = 4",
      "layers[0].units (L1): an embedding layer does not take this key (it takes: categories, columns, size, type)"),
 ]
