@@ -103,12 +103,18 @@ def _largest(b: Breakdown) -> int:
     return int(np.argmax(np.abs(b.products)))
 
 
+def model_document(setup: Setup) -> dict[str, str]:
+    """The ``model`` object of every JSON document: name, path and the model file's SHA-256."""
+    return {"name": setup.name, "path": str(setup.path), "sha256": setup.digest}
+
+
 def explain_document(setup: Setup, name: str, b: Breakdown, value: float) -> dict[str, Any]:
     """The JSON form of a breakdown."""
     e, f, a, p = b.means()
     se, sf, sa, sp = b.at(b.sample)
     return {
-        "model": {"name": setup.name, "file": str(setup.path)},
+        "schema_version": 1,
+        "model": model_document(setup),
         "weight": name,
         "description": describe(setup, b),
         "value": float(value),
@@ -136,7 +142,7 @@ def explain_channel(setup: Setup, net: Network, theta: np.ndarray, X: np.ndarray
     slope = net.cost_and_slopes(theta, X, Y)[1][index]
     if as_json:
         json.dump({"schema_version": 1,
-                   "model": {"name": setup.name, "path": str(setup.path), "sha256": setup.digest},
+                   "model": model_document(setup),
                    "weight": name, "value": float(theta[index]), "analytic": float(slope), "samples": X.shape[0],
                    "breakdown": None, "why_no_breakdown": why, "channel": unit_document(unit)}, sys.stdout, indent=1)
         sys.stdout.write("\n")
