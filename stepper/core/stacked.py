@@ -120,14 +120,15 @@ def channel_route(net: Network, layer: int) -> int | None:
     first = net.layers[layer]
     if not isinstance(first, Builtin) or len(first.out_shape) < 2:
         return None
-    width: int | None = first.n_out // first.out_shape[0]
+    width = first.n_out // first.out_shape[0]
     for index in range(layer + 1, len(net.layers)):
         lay = net.layers[index]
         if isinstance(lay, Dense):
             return index
-        width = lay.channel_width(width) if isinstance(lay, Builtin) else None
-        if width is None:
+        following = lay.channel_width(width) if isinstance(lay, Builtin) else None
+        if following is None:
             return None
+        width = following
     return None
 
 
