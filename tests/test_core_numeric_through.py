@@ -83,3 +83,15 @@ def test_piece_slopes_are_read_off_the_function() -> None:
     assert numeric_dense.piece_slopes(ACTIVATIONS["identity"]) == (1.0, 1.0)
     assert numeric_dense.piece_slopes(ACTIVATIONS["tanh"]) is None
     assert numeric_dense.piece_slopes(ACTIVATIONS["softplus"]) is None
+
+
+def test_the_matrices_stay_within_their_memory_bound() -> None:
+    # G is (units, rows, after) and the product's other factor (next units, rows, after):
+    # a wide middle layer before a half-as-wide one would need gigabytes for the second.
+    narrow_first = Network(4, [Dense(4, 10, ACTIVATIONS["tanh"]), Dense(10, 5000, ACTIVATIONS["relu"]),
+                               Dense(5000, 2500, ACTIVATIONS["identity"])], "mean_squared_error")
+    assert not numeric_dense.through_pays(narrow_first, 0, 256, 10_000)
+    small = Network(4, [Dense(4, 10, ACTIVATIONS["tanh"]), Dense(10, 500, ACTIVATIONS["relu"]),
+                        Dense(500, 1, ACTIVATIONS["identity"])], "mean_squared_error")
+    assert numeric_dense.through_pays(small, 0, 256, 10_000)
+    assert not numeric_dense.through_pays(small, 0, 256, 9)  # fewer moves than units: not worth making G

@@ -109,9 +109,9 @@ def through_pays(net: Network, layer: int, n_samples: int, moves: int) -> bool:
     """Whether moves of dense ``layer`` go through the next layer by ``G`` (module docstring).
 
     Needs: an elementwise activation here, a piecewise-linear dense layer next and a
-    dense layer after it at most half as wide, ``G`` within :data:`THROUGH_BYTES`, and
-    at least as many moves as this layer has units (making ``G`` costs about one move
-    per unit).
+    dense layer after it at most half as wide, ``G`` and the product's other factor
+    (:func:`_through_matrix`) each within :data:`THROUGH_BYTES`, and at least as many
+    moves as this layer has units (making ``G`` costs about one move per unit).
     """
     layers = net.layers
     if layer + 2 >= len(layers):
@@ -121,7 +121,7 @@ def through_pays(net: Network, layer: int, n_samples: int, moves: int) -> bool:
         return False
     return (this.activation.elementwise and piece_slopes(nxt.activation) is not None
             and 2 * after.n_out <= nxt.n_out and moves >= this.n_out
-            and 8 * n_samples * this.n_out * after.n_out <= THROUGH_BYTES)
+            and 8 * n_samples * max(this.n_out, nxt.n_out) * after.n_out <= THROUGH_BYTES)
 
 
 def prepare(net: Network, params: list[dict[str, Array]], trace: Trace, layer: int, moves: int,
