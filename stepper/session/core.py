@@ -256,6 +256,20 @@ class SessionCore:
         result: Array = self._cached("slopes", compute)
         return result
 
+    def _known(self, theta: Array, version: int) -> tuple[float, Array]:
+        """Training cost and analytic slopes at ``theta`` (the weights of ``version``) for a check.
+
+        From the caches when both are there; else by one backward pass, whose
+        slopes are kept (the snapshot after the check needs them too).
+        """
+        cost, slopes = self._cache.get("train"), self._cache.get("slopes")
+        if cost is not None and slopes is not None and cost[0] == slopes[0] == version:
+            return float(cost[1]), slopes[1]
+        data = self.setup.data
+        value, grads = self.training_net().cost_and_slopes(theta, data.X, data.Y)
+        self._cache["slopes"] = (version, grads)
+        return value, grads
+
     def iter_refresh_check(self, which: NDArray[np.int64] | None = None) -> Progress[CheckResult]:
         """Numeric slopes and their comparison, stored in :attr:`check`; of every parameter, or of ``which``.
 
@@ -266,7 +280,8 @@ class SessionCore:
         version = self._version
         theta = self.theta.copy()
         earlier = self.check if not self.check_is_stale else None
-        result = yield from iter_check(self.training_net(), theta, data.X, data.Y, which=which)
+        result = yield from iter_check(self.training_net(), theta, data.X, data.Y, which=which,
+                                     known=self._known(theta, version))
         if which is not None and earlier is not None:
             result = merged(earlier, result)
         if version == self._version:
