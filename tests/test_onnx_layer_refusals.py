@@ -102,7 +102,17 @@ GRAPHS: dict[str, tuple[Callable[[], onnx.ModelProto], str]] = {
     "gather of columns of a float input": (
         lambda: _g([_node("Gather", ["x", "i"], axis=1)], {"i": np.array([0, 2], dtype=np.int64)}, ["N", 4]),
         "node 'gather' (Gather): Stepper reads Gather only as an embedding: the first node, its indices the "
-        "graph's integer input and its data an initializer table"),
+        "graph's integer input (or a Cast of it) and its data an initializer table"),
+    "cast to another float type": (
+        lambda: _g([_node("Cast", ["x"], "c", to=TensorProto.FLOAT), _node("Cast", ["c"], to=TensorProto.DOUBLE,
+                                                                             name="back")], {}, ["N", 4]),
+        "node 'cast' (Cast): Stepper reads Cast only on the graph's float input, to int64 or int32 category numbers "
+        "for the Gather right after it"),
+    "whole numbers of a cast into another operator": (
+        lambda: _g([_node("Cast", ["x"], "c", to=TensorProto.INT64), _node("Relu", ["c"], "r"),
+                    _node("Cast", ["r"], to=TensorProto.DOUBLE, name="back")], {}, ["N", 4]),
+        "node 'relu' (Relu): takes the whole numbers of the Cast before it; Stepper reads them only as the category "
+        "numbers of an embedding (a Gather right after the Cast)"),
     "gather along axis 1": (
         lambda: _g([_node("Gather", ["E", "x"], axis=1)], {"E": _w(5, 4)}, ["N", 2], TensorProto.INT64),
         "node 'gather' (Gather): attribute axis is 1 (Stepper runs 0)"),

@@ -252,3 +252,19 @@ def test_a_reshape_whose_shape_is_a_constant_node(tmp_path: Path, form: str) -> 
     assert setup.network.layers[2].rate == pytest.approx(0.1)  # type: ignore[attr-defined]
     np.testing.assert_allclose(evaluation_output(setup, X), run_onnxruntime(path, X), rtol=1e-12, atol=1e-13)  # ONNX's
     # reference evaluator (a float64 Conv)
+
+
+def test_a_cast_of_a_float_input_feeds_the_gather(tmp_path: Path) -> None:
+    # A float input turned into int64 category numbers by a Cast, then the embedding (as Keras exports one).
+    import onnx
+    from onnx import TensorProto, helper
+
+    model = layer_chain([("Gather", {"categories": 6, "size": 2}), ("Flatten", {}), ("Gemm", {"units": 2})], (3,),
+                        integer_input=True)
+    model.graph.input[0].type.tensor_type.elem_type = TensorProto.DOUBLE
+    model.graph.node.insert(0, helper.make_node("Cast", ["x"], ["x.int"], name="to_int", to=TensorProto.INT64))
+    model.graph.node[1].input[1] = "x.int"
+    onnx.checker.check_model(model, full_check=True)
+    path, setup, X = open_graph(tmp_path, model, categories=6)
+    assert isinstance(setup.network.layers[0], Embedding) and setup.network.input_shape == (3,)
+    np.testing.assert_allclose(evaluation_output(setup, X), run_onnxruntime(path, X), rtol=1e-12, atol=1e-13)  # onnxruntime

@@ -58,7 +58,8 @@ def run_check(tmp_path: Path, model_path: Path, capsys: pytest.CaptureFixture[st
 
 SUPPORTED = ("Gemm, MatMul (with an Add for the bias), Add, Relu, LeakyRelu, Tanh, Sigmoid, Softplus, "
              "Softmax (last axis), Identity, Flatten, Conv, MaxPool, AveragePool, Reshape (to samples x features), "
-             "BatchNormalization, LayerNormalization, Dropout, Gather (an embedding of the integer input)")
+             "BatchNormalization, LayerNormalization, Dropout, Cast (to whole numbers, for a Gather), "
+             "Gather (an embedding of the integer input)")
 
 # name -> (model, expected message after "<path>: ")
 GRAPHS: dict[str, tuple[Callable[[], onnx.ModelProto], str]] = {

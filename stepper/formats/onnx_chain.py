@@ -90,6 +90,8 @@ class Chain:
             ``B``), by name: the node index and input position an export fills.
         pending: a layer still open.
         first: True until a node has consumed the graph's input.
+        indices: the tensor that holds category numbers for a Gather (the graph's
+            integer input, or a Cast of its float input), if any.
         input_transposed: the graph takes its input features-by-samples.
         dtypes: float types of the initializers read.
     """
@@ -104,6 +106,7 @@ class Chain:
     inserts: dict[str, tuple[int, int]] = field(default_factory=dict)
     pending: Pending | None = None
     first: bool = True
+    indices: str | None = None
     input_transposed: bool = False
     dtypes: set[str] = field(default_factory=set)
 

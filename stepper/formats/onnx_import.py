@@ -10,14 +10,15 @@ The graph's input is samples x features ``(N, F)``, or channels first with one
 or two spatial axes, ``(N, C, L)`` or ``(N, C, H, W)``, which becomes the
 network's input shape (each data row holds ``C * L`` or ``C * H * W`` columns in
 C order); or whole numbers ``(N, k)`` or ``(N,)``, the category columns of an
-embedding (a Gather first). The batch dimension may be symbolic; the others
+embedding (a Gather first; or a float input that a Cast turns into whole numbers
+for the Gather). The batch dimension may be symbolic; the others
 must be fixed.
 
 The operators' handlers live in the table :data:`OPS`
 (:mod:`stepper.formats.onnx_chain`), one module per family:
 :mod:`.onnx_dense` (Gemm, MatMul, Add, activations, Identity),
 :mod:`.onnx_spatial` (Flatten, Conv, MaxPool, AveragePool, Reshape),
-:mod:`.onnx_norms` (BatchNormalization, LayerNormalization, Dropout, Gather).
+:mod:`.onnx_norms` (BatchNormalization, LayerNormalization, Dropout, Cast, Gather).
 A new operator is one more entry::
 
     @handler("Op")
@@ -72,6 +73,7 @@ def import_onnx(path: Path) -> Imported:
     current = graph.input.name
     consumed: set[str] = set()
     integer = graph.input.dtype.startswith("int")
+    chain.indices = current if integer else None
     for node in graph.nodes:
         data = [name for name in node.inputs if name and not graph.is_initializer(name)]
         if data != [current]:
@@ -79,9 +81,12 @@ def import_onnx(path: Path) -> Imported:
         fn = OPS.get(node.op)
         if fn is None:
             raise chain.fail(node, f"operator {node.op} is not supported (Stepper runs a chain of: {supported()})")
-        if integer and chain.first and node.op != "Gather":
-            raise chain.fail(node, f"takes the graph's {graph.input.dtype} input; Stepper reads whole-number "
-                                   "inputs only as the category numbers of an embedding (a Gather first)")
+        if current == chain.indices and node.op != "Gather":
+            if integer:
+                raise chain.fail(node, f"takes the graph's {graph.input.dtype} input; Stepper reads whole-number "
+                                       "inputs only as the category numbers of an embedding (a Gather first)")
+            raise chain.fail(node, "takes the whole numbers of the Cast before it; Stepper reads them only as the "
+                                   "category numbers of an embedding (a Gather right after the Cast)")
         consumed.add(current)
         fn(node, chain)
         chain.first = False

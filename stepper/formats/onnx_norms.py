@@ -1,5 +1,5 @@
 """ONNX operators of normalization, dropout and embedding: BatchNormalization, LayerNormalization,
-Dropout, Gather.
+Dropout, Cast and Gather.
 
 - ``BatchNormalization`` of an inference graph (``training_mode = 0``, one
   output): ``scale`` and ``B`` become batch norm's ``scale`` and ``shift``;
@@ -18,7 +18,9 @@ Dropout, Gather.
   initializer ``data`` ``(categories, size)``; each input column is one
   category column (``(N, k)`` input: columns 1 to k of the data, in order), and
   the vectors come out column by column, ``(N, k, size)`` as ONNX has it and
-  ``k * size`` flat entries in the same order in Stepper.
+  ``k * size`` flat entries in the same order in Stepper. A float input may
+  reach the Gather through a ``Cast`` to int64 or int32 (the data's columns
+  must hold whole numbers all the same).
 """
 
 from __future__ import annotations
@@ -145,14 +147,28 @@ def _dropout(node: Node, chain: Chain) -> None:
     chain.add_layer(Dropout(shape, rate, seed), {})
 
 
+#: ONNX's element type codes of the whole numbers a Cast may give a Gather (TensorProto.INT32, INT64).
+WHOLE_TYPES = (6, 7)
+
+
+@handler("Cast", "Cast (to whole numbers, for a Gather)")
+def _cast(node: Node, chain: Chain) -> None:
+    """A float input turned into category numbers for the Gather that follows (as Keras exports an embedding)."""
+    attributes_allowed(node, chain, ("saturate", "to"))
+    if not chain.first or chain.indices is not None or node.attributes.get("to") not in WHOLE_TYPES:
+        raise chain.fail(node, "Stepper reads Cast only on the graph's float input, to int64 or int32 category "
+                               "numbers for the Gather right after it")
+    chain.indices = node.outputs[0] if node.outputs else None
+
+
 @handler("Gather", "Gather (an embedding of the integer input)")
 def _gather(node: Node, chain: Chain) -> None:
     """Rows of an initializer table picked by the graph's integer input: an embedding."""
     attributes_allowed(node, chain, ("axis",))
     graph = chain.graph
-    if not chain.first or node.inputs[1:2] != (graph.input.name,) or not graph.input.dtype.startswith("int"):
+    if chain.layers or chain.indices is None or node.inputs[1:2] != (chain.indices,):
         raise chain.fail(node, "Stepper reads Gather only as an embedding: the first node, its indices the "
-                               "graph's integer input and its data an initializer table")
+                               "graph's integer input (or a Cast of it) and its data an initializer table")
     int_attribute(node, chain, "axis", 0, (0,))
     table, name = chain.weight(node, 0, "data (the embedding table)")
     if table.ndim != 2:
