@@ -80,14 +80,15 @@ def test_json_document(capsys: pytest.CaptureFixture[str], write_model: WriteMod
     path = write_model(MODEL, DATA)
     code, doc = run_json(capsys, str(path), "--method", "forward", "--delta", "1e-7")
     assert code == 0
-    model = doc["model"]
-    assert model["name"] == "cli net" and model["loss"] == "mean_squared_error"
-    assert model["inputs"] == 2 and model["parameters"] == 13
-    assert [{k: layer[k] for k in ("inputs", "units", "activation", "bias")} for layer in model["layers"]] == [
+    assert doc["model"]["name"] == "cli net" and doc["model"]["path"] == str(path)
+    network = doc["network"]
+    assert network["loss"] == "mean_squared_error"
+    assert network["inputs"] == 2 and network["parameters"] == 13
+    assert [{k: layer[k] for k in ("inputs", "units", "activation", "bias")} for layer in network["layers"]] == [
         {"inputs": 2, "units": 3, "activation": "tanh", "bias": True},
         {"inputs": 3, "units": 1, "activation": "identity", "bias": True},
     ]
-    assert doc["settings"] == {"method": "forward", "h": 1e-7}
+    assert doc["differences"] == {"method": "forward", "h": 1e-7}
     assert doc["samples"] == 4 and doc["passed"] is True
     weights = doc["weights"]
     assert [w["name"] for w in weights][:4] == ["L1.W[0,0]", "L1.W[0,1]", "L1.W[0,2]", "L1.W[1,0]"]
@@ -220,7 +221,7 @@ def test_cost_that_overflows_fails_with_valid_json(capsys: pytest.CaptureFixture
 
     doc = json.loads(out, parse_constant=refuse)
     assert doc["cost"] is None and doc["passed"] is False
-    assert doc["counts"]["disagree"] == doc["model"]["parameters"]
+    assert doc["counts"]["disagree"] == doc["network"]["parameters"]
     code, out, err = run(capsys, path)
     assert code == 1 and err == ""
     assert "(not a finite number: no slope can be checked here)" in out and "FAIL" in out

@@ -31,9 +31,9 @@ BAKERY = ROOT / "bakery-demand" / "model.toml"
 KILN = ROOT / "kiln-tiny" / "model.toml"
 
 JSON_FIELDS = {
-    "model", "steps_requested", "steps_done", "stopped_early", "refused", "runaway", "rate", "rule", "slope_source",
-    "batch_size", "cost_before", "cost_after", "validation_before", "validation_after", "moved_most", "checkpoint",
-    "l2_term_after", "settings", "rate_used_next", "metrics",
+    "schema_version", "model", "steps_requested", "steps_done", "stopped_early", "refused", "runaway", "rate", "rule",
+    "slope_source", "batch_size", "cost_before", "cost_after", "validation_before", "validation_after", "moved_most",
+    "saved", "l2_term_after", "settings", "rate_used_next", "task", "metrics_before", "metrics_after",
 }
 
 
@@ -74,16 +74,16 @@ def test_steps_and_rate_match_descent_recomputed_with_autograd(tmp_path: Path,
     assert doc["cost_before"] == pytest.approx(float(cost(setup.theta0)), rel=1e-13)
     assert doc["cost_after"] == pytest.approx(float(cost(theta)), rel=1e-10)
     assert doc["validation_before"] is None and doc["validation_after"] is None
-    assert doc["checkpoint"] == str(save)
+    assert doc["saved"] == str(save)
     np.testing.assert_allclose(loaded(save, KILN).theta, theta, rtol=1e-11, atol=1e-14)
     # moved_most: the five largest moves, largest first, with true before/after values.
     s = loaded(save, KILN)
-    moves = [abs(m["after"] - m["before"]) for m in doc["moved_most"]]
+    moves = [abs(m["to"] - m["from"]) for m in doc["moved_most"]]
     assert len(moves) == 5 and moves == sorted(moves, reverse=True)
     assert max(moves) == pytest.approx(float(np.max(np.abs(s.theta - setup.theta0))), rel=1e-15)
     for m in doc["moved_most"]:
         i = s.net.layout.index_of[m["name"]]
-        assert (m["before"], m["after"]) == (float(setup.theta0[i]), float(s.theta[i]))
+        assert (m["from"], m["to"]) == (float(setup.theta0[i]), float(s.theta[i]))
 
 
 def test_rule_slopes_batch_and_freeze(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
@@ -224,7 +224,7 @@ def test_ctrl_c_stops_after_the_current_step_and_still_saves(tmp_path: Path) -> 
     doc = json.loads(out)
     assert doc["stopped_early"] is True
     assert 1 <= doc["steps_done"] < steps
-    assert doc["checkpoint"] == str(save)
+    assert doc["saved"] == str(save)
     s = loaded(save)
     assert s.step_count == doc["steps_done"]
     assert s.train_cost() == doc["cost_after"]

@@ -58,7 +58,7 @@ def trained(tmp_path: Path, name: str, model: Path = SORTER, steps: int = 30, **
 def test_samples_lists_the_worst_rows_with_their_log_loss(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     ck = trained(tmp_path, "s.safetensors")
     doc = main_json(capsys, "samples", str(SORTER), "--resume", str(ck), "--worst", "7")
-    rows = doc["samples"]
+    rows = doc["rows"]
     assert len(rows) == 7 and doc["rows_total"] == 300
     losses = [r["loss"] for r in rows]
     assert losses == sorted(losses, reverse=True)
@@ -67,7 +67,7 @@ def test_samples_lists_the_worst_rows_with_their_log_loss(tmp_path: Path, capsys
         # sklearn.metrics.log_loss on the one row: -log of the probability given to its class.
         assert r["loss"] == pytest.approx(log_loss([true], [r["prediction"]], labels=[0, 1, 2]), rel=1e-9)
     # No listed row has a smaller loss than any row left out: check against every row.
-    every = main_json(capsys, "samples", str(SORTER), "--resume", str(ck), "--all")["samples"]
+    every = main_json(capsys, "samples", str(SORTER), "--resume", str(ck), "--all")["rows"]
     assert len(every) == 300
     assert min(losses) >= sorted((r["loss"] for r in every), reverse=True)[6]
 
@@ -75,7 +75,7 @@ def test_samples_lists_the_worst_rows_with_their_log_loss(tmp_path: Path, capsys
 def test_samples_metrics_match_sklearn(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     ck = trained(tmp_path, "s.safetensors")
     doc = main_json(capsys, "samples", str(SORTER), "--resume", str(ck), "--all", "--split", "validation")
-    rows = doc["samples"]
+    rows = doc["rows"]
     assert {r["set"] for r in rows} == {"validation"}
     true = [int(np.argmax(r["target"])) for r in rows]
     said = [int(np.argmax(r["prediction"])) for r in rows]
@@ -200,8 +200,8 @@ def test_run_settings_are_journaled_and_saved(tmp_path: Path, capsys: pytest.Cap
     assert rebuilt.theta.tobytes() == again.theta.tobytes()
     assert (rebuilt.l2, rebuilt.weight_decay, rebuilt.clip_norm, rebuilt.schedule) == \
         (again.l2, again.weight_decay, again.clip_norm, again.schedule)
-    assert doc["metrics"]["task"] == "classes"
-    assert doc["metrics"]["after"]["train"]["accuracy"] > doc["metrics"]["before"]["train"]["accuracy"]
+    assert doc["task"] == "classes"
+    assert doc["metrics_after"]["train"]["accuracy"] > doc["metrics_before"]["train"]["accuracy"]
     assert doc["l2_term_after"] == pytest.approx(again.penalty())
 
 
@@ -209,7 +209,7 @@ def test_run_without_steps_reports_a_checkpoint(tmp_path: Path, capsys: pytest.C
     ck = trained(tmp_path, "s.safetensors")
     doc = main_json(capsys, "run", str(SORTER), "--resume", str(ck), "--steps", "0")
     assert doc["steps_done"] == 0 and doc["cost_before"] == doc["cost_after"]
-    assert doc["metrics"]["before"] == doc["metrics"]["after"]
+    assert doc["metrics_before"] == doc["metrics_after"]
 
 
 def test_run_plot_writes_histograms_and_never_over_an_input(tmp_path: Path,

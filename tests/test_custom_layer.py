@@ -70,7 +70,7 @@ def test_the_buggy_scenario_fails_and_names_the_wrong_parameters(capsys) -> None
     assert code == 1 and report["passed"] is False
     wrong = {w["name"] for w in report["weights"] if w["verdict"] == "disagree"}
     assert wrong == {"L2.b[0]", "L2.b[1]", "L2.b[2]"}
-    assert report["counts"]["agree"] == report["model"]["parameters"] - 3
+    assert report["counts"]["agree"] == report["network"]["parameters"] - 3
     # The bug is in a parameter slope only: the layer's input slopes are right.
     assert [c["passed"] for c in report["input_slopes"]] == [True]
     code = cli.main(["check", str(SCENARIOS / "hive-gate-buggy"), "--worst", "3"])
@@ -84,7 +84,7 @@ def test_the_fixed_scenario_passes(capsys) -> None:
     code = cli.main(["check", str(SCENARIOS / "hive-gate-fixed"), "--json"])
     report = json.loads(capsys.readouterr().out)
     assert code == 0 and report["passed"] is True
-    assert report["counts"]["agree"] == report["model"]["parameters"]
+    assert report["counts"]["agree"] == report["network"]["parameters"]
     assert report["input_slopes"][0]["passed"] is True
     assert report["input_slopes"][0]["counts"]["agree"] == 8 * 5
 

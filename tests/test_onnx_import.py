@@ -154,8 +154,8 @@ def test_each_weight_is_named_both_ways_in_check_json(tmp_path: Path, capsys: py
     assert rows["L1.W[3,0]"] == "fc0.weight[0,3]"
     assert rows["L1.b[4]"] == "fc0.bias[4]"
     assert rows["L2.W[2,0]"] == "fc2.weight[0,2]"
-    assert doc["model"]["weights_from"] == {"file": str(onnx_path), "kind": "onnx", "layout": "onnx"}
-    assert doc["model"]["inputs"] == 4 and doc["passed"] is True
+    assert doc["network"]["weights_from"] == {"file": str(onnx_path), "kind": "onnx", "layout": "onnx"}
+    assert doc["network"]["inputs"] == 4 and doc["passed"] is True
 
 
 def test_open_check_and_run_take_an_onnx_file_with_data_options(tmp_path: Path,

@@ -114,7 +114,7 @@ def test_every_slope_agrees(name: str, capsys: pytest.CaptureFixture[str]) -> No
     report = json.loads(capsys.readouterr().out)
     assert code == 0
     assert report["passed"] is True
-    assert report["counts"]["agree"] == report["model"]["parameters"]
+    assert report["counts"]["agree"] == report["network"]["parameters"]
 
 
 #: Seeded scripts beside the files they write: (script, file).

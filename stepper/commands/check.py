@@ -13,6 +13,7 @@ import numpy as np
 from stepper.commands.common import load, progress_bar, resumed_weights, sample_limit
 from stepper.commands.parsers import HEALTH_RATE
 from stepper.commands.check_rows import WeightRows, dump_document, mark, name_width, write_table_rows
+from stepper.commands.json_output import document_head, json_safe
 from stepper.core.compare import AGREE_BELOW, DISAGREE_ABOVE, VERDICTS
 from stepper.core.diagnosis import Hint, diagnose
 from stepper.core.directional import DirectionalCheck, iter_directional_check
@@ -85,7 +86,7 @@ def handle(args: argparse.Namespace) -> int:
         doc["hints"] = [hint_document(h) for h in hints]
         doc["health"] = health_document(health, net)
         # JSON (RFC 8259) has no NaN or Infinity: non-finite numbers become null.
-        dump_document(_json_safe(doc), sys.stdout)
+        dump_document(json_safe(doc), sys.stdout)
     else:
         print_report(setup, result, X.shape[0], rows, choice, inputs, directions, theta, args.resume, hints)
         print_health(health, net)
@@ -142,9 +143,8 @@ def check_document(setup: Setup, result: CheckResult | None, n_samples: int, cho
     layout = net.layout
     none = {"count": 0, "of": net.n_params, "chosen": "none", "spec": None, "seed": None}
     return {
-        "model": {
-            "name": setup.name,
-            "file": str(setup.path),
+        **document_head(setup),
+        "network": {
             "weights_from": None if setup.origin is None else {
                 "file": str(setup.origin.file), "kind": setup.origin.kind, "layout": setup.origin.layout},
             "inputs": net.n_inputs,
@@ -154,8 +154,8 @@ def check_document(setup: Setup, result: CheckResult | None, n_samples: int, cho
         },
         "cost": result.cost if result is not None else None,
         "samples": n_samples,
-        "settings": {"method": result.method if result is not None else None,
-                     "h": result.h if result is not None else None},
+        "differences": {"method": result.method if result is not None else None,
+                        "h": result.h if result is not None else None},
         "checked": choice.as_dict() if choice is not None else none,
         "counts": result.counts if result is not None else {v: 0 for v in VERDICTS},
         "passed": result.passed if result is not None else True,
@@ -177,17 +177,6 @@ def hint_document(hint: Hint) -> dict[str, Any]:
 
 def _finite_or_none(value: float) -> float | None:
     return float(value) if np.isfinite(value) else None
-
-
-def _json_safe(value: Any) -> Any:
-    """``value`` with every float that is not finite replaced by None, at any depth."""
-    if isinstance(value, float):
-        return value if np.isfinite(value) else None
-    if isinstance(value, dict):
-        return {key: _json_safe(item) for key, item in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [_json_safe(item) for item in value]
-    return value
 
 
 def print_report(setup: Setup, result: CheckResult | None, n_samples: int,

@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import argparse
-import json
 import sys
 import tomllib
 from pathlib import Path
@@ -11,6 +10,7 @@ from typing import Any
 
 import numpy as np
 
+from stepper.commands.json_output import document_head, write_json
 from stepper.core.weightdiff import WeightDiff
 from stepper.errors import UsageError
 from stepper.formats.checkpoint import read_meta
@@ -75,8 +75,7 @@ def handle(args: argparse.Namespace) -> int:
     label_a = args.a if _is_checkpoint(args.a) else f"{args.a} (starting weights)"
     label_b = args.b if _is_checkpoint(args.b) else f"{args.b} (starting weights)"
     if args.json:
-        json.dump(document(setup, result, label_a, label_b), sys.stdout, indent=1)
-        sys.stdout.write("\n")
+        write_json(document(setup, result, label_a, label_b))
     else:
         lines = [f"{setup.name}: {data.n_train} training and {data.n_val} validation samples"]
         lines += diff_lines(result, setup.network.layout.names, label_a, label_b)
@@ -87,8 +86,7 @@ def handle(args: argparse.Namespace) -> int:
 def document(setup: Setup, d: WeightDiff, label_a: str, label_b: str) -> dict[str, Any]:
     names = setup.network.layout.names
     return {
-        "schema_version": 1,
-        "model": {"name": setup.name, "path": str(setup.path), "sha256": setup.digest},
+        **document_head(setup),
         "a": label_a,
         "b": label_b,
         "train_cost": {"a": d.cost_a, "b": d.cost_b},
@@ -98,6 +96,6 @@ def document(setup: Setup, d: WeightDiff, label_a: str, label_b: str) -> dict[st
                     "norm_b": m.after, "relative_change": finite_or_none(m.relative)} for m in d.layers],
         "cosine_with_slope_at_b": finite_or_none(d.cosine_b),
         "cosine_with_slope_at_a": finite_or_none(d.cosine_a),
-        "moved_most": [{"name": names[i], "a": float(d.a[i]), "b": float(d.b[i])} for i in d.moved],
+        "moved_most": [{"name": names[i], "from": float(d.a[i]), "to": float(d.b[i])} for i in d.moved],
         "unchanged": int(np.count_nonzero(d.a == d.b)),
     }

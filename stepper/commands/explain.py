@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import argparse
-import json
 import sys
 import textwrap
 from typing import Any
@@ -13,6 +12,7 @@ import numpy as np
 from stepper.commands.common import load, resumed_weights, sample_limit
 from stepper.commands.parsers import DEFAULT_RATE
 from stepper.commands.slice import weight_index
+from stepper.commands.json_output import document_head, write_json
 from stepper.core.breakdown import Breakdown, slope_breakdown
 from stepper.core.health import layer_health, unit_health, unit_of
 from stepper.core.layers import Conv
@@ -41,8 +41,7 @@ def handle(args: argparse.Namespace) -> int:
         return explain_channel(setup, net, theta, X, Y, index, str(exc), rate, args.json)
     name = setup.network.layout.names[index]
     if args.json:
-        json.dump(explain_document(setup, name, result, theta[index]), sys.stdout, indent=1)
-        sys.stdout.write("\n")
+        write_json(explain_document(setup, name, result, theta[index]))
     else:
         sys.stdout.write(report(setup, name, result, float(theta[index])))
     return 0
@@ -103,18 +102,12 @@ def _largest(b: Breakdown) -> int:
     return int(np.argmax(np.abs(b.products)))
 
 
-def model_document(setup: Setup) -> dict[str, str]:
-    """The ``model`` object of every JSON document: name, path and the model file's SHA-256."""
-    return {"name": setup.name, "path": str(setup.path), "sha256": setup.digest}
-
-
 def explain_document(setup: Setup, name: str, b: Breakdown, value: float) -> dict[str, Any]:
     """The JSON form of a breakdown."""
     e, f, a, p = b.means()
     se, sf, sa, sp = b.at(b.sample)
     return {
-        "schema_version": 1,
-        "model": model_document(setup),
+        **document_head(setup),
         "weight": name,
         "description": describe(setup, b),
         "value": float(value),
@@ -141,11 +134,9 @@ def explain_channel(setup: Setup, net: Network, theta: np.ndarray, X: np.ndarray
     name = net.layout.names[index]
     slope = net.cost_and_slopes(theta, X, Y)[1][index]
     if as_json:
-        json.dump({"schema_version": 1,
-                   "model": model_document(setup),
-                   "weight": name, "value": float(theta[index]), "analytic": float(slope), "samples": X.shape[0],
-                   "breakdown": None, "why_no_breakdown": why, "channel": unit_document(unit)}, sys.stdout, indent=1)
-        sys.stdout.write("\n")
+        write_json({**document_head(setup), "weight": name, "value": float(theta[index]), "analytic": float(slope),
+                    "samples": X.shape[0], "breakdown": None, "why_no_breakdown": why,
+                    "channel": unit_document(unit)})
         return 0
     lines = [f"{name} in {setup.name}: a weight of channel {channel} of layer {layer + 1} ({net.layers[layer].label})",
              f"value {float(theta[index]):.6g}, analytic slope {float(slope):.6e}, {X.shape[0]} samples", "",

@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import argparse
-import json
 import sys
 from pathlib import Path
 from typing import Any
@@ -11,6 +10,7 @@ from typing import Any
 from stepper.charts import range_text
 from stepper.commands.common import check_plot_target, progress_bar, write_plot
 from stepper.commands.session_options import open_session, settings_document
+from stepper.commands.json_output import document_head, write_json
 from stepper.core.numeric import run_to_end
 from stepper.core.ratetest import RangeResult, log_rates
 from stepper.errors import UsageError
@@ -40,8 +40,7 @@ def handle(args: argparse.Namespace) -> int:
             result = run_to_end(session.iter_range_test(rates.tolist(), args.steps), bar)
         assert result is not None
         if args.json:
-            json.dump(document(session, result), sys.stdout, indent=1)
-            sys.stdout.write("\n")
+            write_json(document(session, result))
         else:
             sys.stdout.write(report(session, result))
         if args.plot is not None:
@@ -67,8 +66,7 @@ def document(session: Session, result: RangeResult) -> dict[str, Any]:
     setup = session.setup
     best = result.best
     return {
-        "schema_version": 1,
-        "model": {"name": setup.name, "path": str(setup.path), "sha256": setup.digest},
+        **document_head(setup),
         "from_step": session.step_count,
         "rule": session.rule,
         "batch_size": session.batch_size,

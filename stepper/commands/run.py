@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import argparse
-import json
 import signal
 import sys
 from pathlib import Path
@@ -14,6 +13,7 @@ import numpy as np
 from stepper.charts import spreads_text
 from stepper.commands.common import StopFlag, check_plot_target, progress_bar, write_plot
 from stepper.commands.session_options import open_session, settings_document
+from stepper.commands.json_output import document_head, write_json
 from stepper.core.metrics import metrics_document
 from stepper.core.numeric import run_to_end
 from stepper.errors import CustomLayerError, DivergenceError, RunawayError
@@ -71,7 +71,7 @@ def _run(session: Session, args: argparse.Namespace) -> int:
     steps_done = session.step_count - start_step
     if args.json:
         doc = {
-            "model": str(session.setup.path),
+            **document_head(session.setup),
             "steps_requested": args.steps,
             "steps_done": steps_done,
             "stopped_early": stop.requested,
@@ -88,14 +88,14 @@ def _run(session: Session, args: argparse.Namespace) -> int:
             "l2_term_after": session.penalty(),
             "settings": settings_document(session),
             "rate_used_next": session.scheduled_rate(),
-            "metrics": {"task": session.task,
-                        "before": _metrics_document(start_metrics), "after": _metrics_document(end_metrics)},
-            "moved_most": [{"name": session.names[i], "before": float(start_theta[i]),
-                            "after": float(session.theta[i])} for i in top],
-            "checkpoint": None if saved is None else str(saved),
+            "task": session.task,
+            "metrics_before": _metrics_document(start_metrics),
+            "metrics_after": _metrics_document(end_metrics),
+            "moved_most": [{"name": session.names[i], "from": float(start_theta[i]),
+                            "to": float(session.theta[i])} for i in top],
+            "saved": None if saved is None else str(saved),
         }
-        json.dump(doc, sys.stdout, indent=1)
-        sys.stdout.write("\n")
+        write_json(doc)
     else:
         out = sys.stdout
         note = (" (the cost ran away)" if runaway is not None else " (a step was refused)" if refused is not None

@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import argparse
-import json
 import sys
 from typing import Any
 
@@ -11,6 +10,7 @@ import numpy as np
 
 from stepper.commands.common import load
 from stepper.core.metrics import Metrics, metrics_document
+from stepper.commands.json_output import document_head, write_json
 from stepper.core.rows import worst_rows
 from stepper.session import RowTable, Session
 from stepper.training_report import confusion_lines, finite_or_none, metric_words, number, row_words
@@ -36,8 +36,7 @@ def handle(args: argparse.Namespace) -> int:
         chosen = chosen[np.argsort(table.line[chosen], kind="stable")]
     found = session.metrics(args.threshold)
     if args.json:
-        json.dump(document(session, table, chosen, found.train, found.validation), sys.stdout, indent=1)
-        sys.stdout.write("\n")
+        write_json(document(session, table, chosen, found.train, found.validation))
     else:
         sys.stdout.write(report(session, table, chosen, found.train, found.validation))
     return 0
@@ -92,14 +91,13 @@ def document(session: Session, table: RowTable, chosen: np.ndarray[Any, Any],
             row["true_class"] = setup.data.target_names[int(np.argmax(table.target[i]))]
         rows.append(row)
     return {
-        "schema_version": 1,
-        "model": {"name": setup.name, "path": str(setup.path), "sha256": setup.digest},
+        **document_head(setup),
         "loss": setup.network.loss,
         "task": session.task,
         "outputs": list(setup.data.target_names),
         "rows_listed": len(rows),
         "rows_total": int(table.n),
-        "samples": rows,
+        "rows": rows,
         "metrics": {"train": metrics_document(train),
                     "validation": None if validation is None else metrics_document(validation)},
     }

@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import argparse
-import json
 import math
 import sys
 from pathlib import Path
@@ -13,6 +12,7 @@ import numpy as np
 
 from stepper.commands.common import load, resumed_weights, sample_limit, write_plot
 from stepper.commands.parsers import DEFAULT_RATE, PLOT_SIZE
+from stepper.commands.json_output import document_head, write_json
 from stepper.core.nearest import unknown_name
 from stepper.core.slice import CostSlice, cost_slice
 from stepper.errors import UsageError
@@ -50,8 +50,7 @@ def handle(args: argparse.Namespace) -> int:
     name = setup.network.layout.names[index]
     plot = render_plot(result, name, *args.size) if args.plot is not None else None
     if args.json:
-        json.dump(slice_document(setup, name, result, X.shape[0]), sys.stdout, indent=1)
-        sys.stdout.write("\n")
+        write_json(slice_document(setup, name, result, X.shape[0]))
     else:
         sys.stdout.write(report(setup, name, result, X.shape[0]))
     if plot is not None:
@@ -107,7 +106,7 @@ def slice_document(setup: Setup, name: str, s: CostSlice, n_samples: int) -> dic
     """The JSON form of a slice."""
     low_w, low_c = s.lowest
     return {
-        "model": {"name": setup.name, "file": str(setup.path)},
+        **document_head(setup),
         "weight": name,
         "samples": n_samples,
         "value": s.value,
