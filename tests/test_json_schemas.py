@@ -33,12 +33,16 @@ CASES: list[tuple[str, list[str], tuple[int, ...]]] = [
     ("check-onnx", ["check", "glasshouse-vents", "--method", "forward"], (0,)),
     ("check-share-and-directions", ["check", "seed-sorter", "--weights", "10%", "--directions", "2"], (0, 1)),
     ("check-directions-only", ["check", "sensor-drift", "--directions", "3"], (0, 1)),
+    # built-in layers: a 2-D convolution with pooling; a 1-D convolution with batch norm and dropout
+    ("check-conv2d", ["check", "glaze-defects", "--weights", "2%"], (0,)),
+    ("check-conv1d-norm", ["check", "fan-bearing", "--weights", "10%"], (0,)),
     ("check-resumed-problems-only", ["check", "bakery-demand", "--resume", "{ck}", "--problems-only"], (0, 1)),
     ("run-classes", ["run", "seed-sorter", "--steps", "5", "--rate", "0.3", "--save", "{ck}"], (0,)),
     ("run-binary-schedule", ["run", "sensor-drift", "--steps", "6", "--rule", "adam", "--rate", "0.01",
                              "--batch", "16", "--schedule", "cosine:steps=10,warmup=2", "--clip-norm", "1",
                              "--l2", "0.001", "--weight-decay", "0.01"], (0,)),
     ("run-no-steps", ["run", "bakery-demand", "--steps", "0", "--schedule", "step:every=5,factor=0.5"], (0,)),
+    ("run-conv1d-norm", ["run", "fan-bearing", "--steps", "3", "--batch", "16"], (0,)),
     ("run-runaway", ["run", "bakery-demand", "--steps", "20", "--rate", "5"], (1,)),
     ("slice", ["slice", "bakery-demand", "L2.b[0]"], (0,)),
     ("slice-diverges", ["slice", "kiln-tiny", "L1.W[0,0]", "--rate", "1000"], (0,)),
@@ -46,6 +50,7 @@ CASES: list[tuple[str, list[str], tuple[int, ...]]] = [
     ("explain-softmax", ["explain", "seed-sorter", "L2.b[1]", "--sample-index", "3"], (0,)),
     ("samples-classes", ["samples", "seed-sorter", "--worst", "4"], (0,)),
     ("samples-binary", ["samples", "sensor-drift", "--split", "both", "--threshold", "0.4"], (0,)),
+    ("samples-conv2d", ["samples", "glaze-defects", "--worst", "3"], (0,)),
     ("samples-regression", ["samples", "bakery-demand", "--all", "--sort", "line"], (0,)),
     ("diff", ["diff", "bakery-demand", "{ck}"], (0,)),
     # the largest rate's cost stops being finite at step 19 (diverged_at_step)
@@ -158,7 +163,7 @@ def at(doc: Any, path: tuple[Any, ...]) -> Any:
     return doc
 
 
-@pytest.mark.parametrize("case", ["check-custom-layer-fails", "check-onnx", "check-share-and-directions",
+@pytest.mark.parametrize("case", ["check-custom-layer-fails", "check-onnx", "check-share-and-directions", "check-conv2d",
                                   "run-binary-schedule", "slice", "explain", "samples-classes",
                                   "samples-binary", "diff", "rates"])
 def test_a_field_the_schema_does_not_declare_is_refused_at_every_level(
