@@ -58,7 +58,7 @@ def test_every_requirement_has_a_floor_and_the_schemas_validator_is_in_the_test_
     test = floors(PROJECT["optional-dependencies"]["test"])
     assert "jsonschema" in test
     assert "torch" not in test and "torch" not in floors(PROJECT["dependencies"])
-    assert floors(PYPROJECT["build-system"]["requires"]) == {"setuptools": "77"}
+    assert floors(PYPROJECT["build-system"]["requires"]) == {"setuptools": "77.0.3"}
 
 
 def test_the_license_is_an_spdx_expression_that_matches_the_license_file() -> None:
