@@ -242,6 +242,21 @@ def test_v_shows_the_rate_preview_and_shift_v_adopts_the_best(session: Session, 
     drive(session, check)
 
 
+@pytest.mark.parametrize("size", [(80, 24), (200, 50)])
+def test_v_with_a_panel_over_the_plot_shows_the_preview(session: Session, drive, size: tuple[int, int]) -> None:
+    # Below 140 columns a panel (here the histograms) stands where the plot and the preview are: v
+    # closes it rather than switch the preview on unseen. From 140 columns both are shown.
+    async def check(app: StepperApp, pilot: Pilot[Any], said: list[tuple[str, str]]) -> None:
+        panel = app.query_one(RatePanel)
+        await press(app, pilot, "H")
+        assert app.why == "histograms"
+        await press(app, pilot, "v")
+        assert panel.display and panel.region.width > 0 and panel.region.height > 0
+        assert app.why == (None if size[0] < 140 else "histograms")
+
+    drive(session, check, size)
+
+
 # -- slopes ----------------------------------------------------------------------------------
 
 

@@ -204,6 +204,10 @@ class AppBase(App[None]):
         """Draw the shown "why" panel (:mod:`stepper.ui.why` gives the body)."""
         raise NotImplementedError
 
+    def _toggle_why(self, name: str) -> None:
+        """Show the "why" panel ``name``, or hide it when it is shown (:mod:`stepper.ui.why`)."""
+        raise NotImplementedError
+
     def keep_numeric_current(self) -> None:
         """Recompute out-of-date numeric slopes when a pass fits the budget (:mod:`stepper.ui.slopes`)."""
         raise NotImplementedError

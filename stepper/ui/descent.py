@@ -103,7 +103,12 @@ class DescentKeys(AppBase):
     # -- rate preview ----------------------------------------------------------------------
 
     def action_toggle_preview(self) -> None:
-        self.show_preview(not self.show_rates)
+        shown = not self.show_rates
+        if shown and self.why is not None and not self.screen.has_class("-wide"):
+            # Below WIDE columns a panel (t, i, h, H, E, D) stands in place of the cost plot and
+            # of the preview beside it: close it, or the preview would be switched on unseen.
+            self._toggle_why(self.why)
+        self.show_preview(shown)
 
     def action_adopt_best_rate(self) -> None:
         if self.busy():
