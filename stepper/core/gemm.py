@@ -21,6 +21,7 @@ from numpy.typing import NDArray
 from stepper.core.activations import Activation
 from stepper.core.layers import DenseCache, ParamSpec, Params
 from stepper.core.layers.base import Activated
+from stepper.core.layers.dense import dense_specs
 
 Array = NDArray[np.float64]
 
@@ -64,10 +65,7 @@ class ScaledDense(Activated):
         return f"dense {self.n_in}->{self.n_out} {self.activation.name} ({scale})"
 
     def param_specs(self) -> tuple[ParamSpec, ...]:
-        specs = [ParamSpec("W", (self.n_in, self.n_out), "weight", fans=(self.n_in, self.n_out))]
-        if self.bias:
-            specs.append(ParamSpec("b", (self.n_out,), "bias"))
-        return tuple(specs)
+        return dense_specs(self.n_in, self.n_out, self.bias)
 
     def forward(self, params: Params, X: Array) -> tuple[Array, DenseCache]:
         """``X`` ``(..., n, n_in)`` to ``A`` ``(..., n, n_out)``."""

@@ -17,6 +17,14 @@ from stepper.core.activations import Activation
 from stepper.core.layers.base import Activated, Array, Flags, ParamSpec, Params
 
 
+def dense_specs(n_in: int, n_out: int, bias: bool) -> tuple[ParamSpec, ...]:
+    """The arrays of a layer ``Z = X W + b``: ``W`` ``(n_in, n_out)`` and, with ``bias``, ``b`` ``(n_out,)``."""
+    specs = [ParamSpec("W", (n_in, n_out), "weight", fans=(n_in, n_out))]
+    if bias:
+        specs.append(ParamSpec("b", (n_out,), "bias"))
+    return tuple(specs)
+
+
 @dataclass(frozen=True)
 class DenseCache:
     """What a dense layer keeps from its forward pass.
@@ -64,10 +72,7 @@ class Dense(Activated):
         return f"{self.activation.name} {self.n_in}->{self.n_out}"
 
     def param_specs(self) -> tuple[ParamSpec, ...]:
-        specs = [ParamSpec("W", (self.n_in, self.n_out), "weight", fans=(self.n_in, self.n_out))]
-        if self.bias:
-            specs.append(ParamSpec("b", (self.n_out,), "bias"))
-        return tuple(specs)
+        return dense_specs(self.n_in, self.n_out, self.bias)
 
     def pre_activation(self, params: Params, X: Array) -> Array:
         """``X @ W (+ b)`` for ``X`` of shape ``(..., n, n_in)``."""
