@@ -17,7 +17,7 @@ from textual.pilot import Pilot
 from stepper.formats.model_file import load_setup
 from stepper.scenarios import default_model
 from stepper.session import Session
-from stepper.session import core as session_core
+from stepper.session import checking as session_checking
 from stepper.ui.app import StepperApp
 from stepper.ui.panels import StatusLine
 
@@ -26,8 +26,8 @@ from pilot_keys import press
 
 @pytest.fixture
 def session(monkeypatch: pytest.MonkeyPatch) -> Session:
-    monkeypatch.setattr(session_core, "FULL_CHECK_UP_TO", 20)
-    monkeypatch.setattr(session_core, "CHECK_SAMPLE", 12)
+    monkeypatch.setattr(session_checking, "FULL_CHECK_UP_TO", 20)
+    monkeypatch.setattr(session_checking, "CHECK_SAMPLE", 12)
     return Session(load_setup(default_model()))
 
 

@@ -16,12 +16,13 @@ bar) decides how to show and cancel them. The session knows nothing of threads.
 
 The class is put together from small modules: :mod:`.core` (state, derived
 values, undo and journal machinery), :mod:`.edits` (settings, freezing,
-values), :mod:`.stepping` (updates and the rate preview; how a job ends and
-what it says), :mod:`.runaway` (when a job stops a running-away cost),
-:mod:`.training` (the L2 term, weight decay, clipping, the schedule),
-:mod:`.rates` (the rate range test), :mod:`.measures` (row losses, metrics,
-histograms, comparison with a checkpoint), :mod:`.history` (the cost history
-as arrays), :mod:`.files` (checkpoints) and :mod:`.folders` (default paths);
+values), :mod:`.checking` (numeric slopes of the weights), :mod:`.stepping`
+(updates and the rate preview; how a job ends and what it says),
+:mod:`.runaway` (when a job stops a running-away cost), :mod:`.training` (the
+L2 term, weight decay, clipping, the schedule), :mod:`.rates` (the rate range
+test), :mod:`.measures` (row losses, metrics, histograms, comparison with a
+checkpoint), :mod:`.history` (the cost history as arrays), :mod:`.files`
+(checkpoints) and :mod:`.folders` (default paths);
 replay of a journal entry is here, since it calls on all of them.
 """
 

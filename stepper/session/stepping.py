@@ -33,11 +33,12 @@ from stepper.core.optimizers import RuleState
 from stepper.core.rows import rows_of_output
 from stepper.errors import CheckpointError, DivergenceError, RunawayError, StepperError, UsageError
 from stepper.formats.journal import STEP_LINE_SECONDS
-from stepper.session.core import Array, SessionCore, StepReport, _Change
+from stepper.session.checking import Checking
+from stepper.session.core import Array, StepReport, _Change
 from stepper.session.runaway import RunawayRule
 
 
-class Stepping(SessionCore):
+class Stepping(Checking):
     """Updates (one or many, as one undoable operation) and the one-step rate preview."""
 
     #: The fields that drawing a mini-batch changes.
