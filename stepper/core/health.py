@@ -39,7 +39,7 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
-from stepper.core.layers import Conv, ConvCache, Dense, DenseCache
+from stepper.core.layers import ActivationLayer, Conv, ConvCache, Dense, DenseCache
 from stepper.core.network import Network
 
 Array = NDArray[np.float64]
@@ -184,7 +184,7 @@ def error_at_inputs(net: Network, layer: int, cache: Any, output_slope: Array, Y
     if isinstance(lay, Conv) and isinstance(cache, ConvCache):
         dZ = lay.activation.vjp(cache.Z, cache.A, output_slope.reshape(cache.Z.shape))
         return dZ.reshape(output_slope.shape), True
-    if not isinstance(lay, Dense) or not isinstance(cache, DenseCache):
+    if not isinstance(lay, (Dense, ActivationLayer)) or not isinstance(cache, DenseCache):
         return output_slope, False
     fused = net.fused
     if fused is not None and layer == len(net.layers) - 1:
@@ -223,11 +223,31 @@ def layer_health(net: Network, theta: Array, X: Array, Y: Array, rate: float) ->
             if act.name == "relu":
                 active = np.mean(cache.Z > 0.0, axis=axes)
             units = _per_unit(net, theta, grads, i, errors[i])
+        elif isinstance(lay, ActivationLayer) and isinstance(cache, DenseCache):
+            saturation, active, per = _entry_health(lay, cache, i == len(net.layers) - 1 and net.fused is not None)
         change = signals[i] / signals[i + 1] if i + 1 < len(signals) and signals[i + 1] > 0 else float("nan")
         out.append(LayerHealth(i, lay.label, w_norm, g_norm, ratio, saturation, active, signals[i], change, per,
                                *units))
     travel = signals[0] / signals[-1] if len(signals) > 1 and signals[-1] > 0 else float("nan")
     return HealthReport(float(rate), tuple(out), travel)
+
+
+def _entry_health(lay: ActivationLayer, cache: DenseCache, fused_output: bool) -> tuple[Array | None, Array | None, str]:
+    """Saturated and active shares of an activation layer: per entry of a flat row, per channel of a shaped one.
+
+    No weights, so no per-unit norms: a dead ReLU here is an entry (or channel) that the
+    layer before (a norm, a pooling) leaves at or below zero on every sample.
+    """
+    act = lay.activation
+    n = cache.Z.shape[0]
+    shaped = len(lay.in_shape) > 1
+    Z = cache.Z.reshape(n, lay.in_shape[0], -1) if shaped else cache.Z
+    axes = (0, 2) if shaped else (0,)
+    saturation = None
+    if act.saturates and act.derivative is not None and not fused_output:
+        saturation = np.mean(act.derivative(Z, cache.A.reshape(Z.shape)) < SATURATED_BELOW, axis=axes)
+    active = np.mean(Z > 0.0, axis=axes) if act.name == "relu" else None
+    return saturation, active, "channel" if shaped else "unit"
 
 
 def _per_unit(net: Network, theta: Array, grads: Array, layer: int,

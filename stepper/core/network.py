@@ -32,7 +32,7 @@ from typing import TYPE_CHECKING, Any, Sequence
 import numpy as np
 from numpy.typing import NDArray
 
-from stepper.core.layers import Builtin, Dense, DenseCache, Dropout, Layer, Mode, ParamSpec, Params
+from stepper.core.layers import ActivationLayer, Builtin, Dense, DenseCache, Dropout, Layer, Mode, ParamSpec, Params
 from stepper.core.losses import FUSED, LOSSES, FusedLoss, Loss
 
 if TYPE_CHECKING:
@@ -233,7 +233,7 @@ class Network:
     def fused(self) -> FusedLoss | None:
         """The logit form of the loss when the output layer's activation pairs with it."""
         last = self.layers[-1]
-        if isinstance(last, Dense):
+        if isinstance(last, (Dense, ActivationLayer)):
             return FUSED.get((last.activation.name, self.loss))
         return None
 
@@ -405,6 +405,9 @@ class Network:
             # the plain loss's one so the breakdown views can still show it.
             output_slopes[-1] = self.loss_fn.grad(A, Y)
             layer_grads, dA = last.backward_from_z(params[-1], cache, dZ, len(self.layers) > 1)
+        elif fused is not None and isinstance(last, ActivationLayer) and isinstance(cache, DenseCache):
+            output_slopes[-1] = self.loss_fn.grad(A, Y)
+            layer_grads, dA = last.backward_from_z(fused.grad_z(cache.Z, Y))
         else:
             dOut = self.loss_fn.grad(A, Y)
             output_slopes[-1] = dOut

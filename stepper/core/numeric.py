@@ -371,8 +371,8 @@ def _rerun_cost(
 ) -> tuple[float, bool]:
     """Cost with ``theta[flat] += delta``, running the network from ``layer`` on.
 
-    Also whether a unit of a later ReLU-like dense layer changed side of its kink
-    against the unperturbed ``trace`` (as for dense parameters).
+    Also whether a later built-in layer crossed a kink against the unperturbed
+    ``trace`` (a ReLU-like unit changed side, a max-pool window's largest entry changed).
     """
     saved = theta[flat]
     theta[flat] = saved + delta
@@ -381,8 +381,8 @@ def _rerun_cost(
         crossed = False
         for index in range(layer + 1, len(net.layers)):
             later = net.layers[index]
-            if isinstance(later, Dense) and later.activation.kink:
-                crossed = crossed or bool(np.any((run[index - layer][1].Z > 0.0) != (trace[index][1].Z > 0.0)))
+            if isinstance(later, Builtin) and later.has_kinks:
+                crossed = crossed or bool(later.crossed(trace[index][1], run[index - layer][1], 1)[0])
         A, cache = run[-1]
         return float(net.output_cost(A, cache, Y)) + net.penalty(theta), crossed
     finally:

@@ -28,6 +28,9 @@ depend on it (``stepper.formats.model_file``'s docstring shows them all)::
     momentum = 0.9         # optional: share of the running statistics kept at each step
     epsilon = 1e-5         # optional
 
+    type = "activation"    # an activation on its own, over flat or shaped rows; no weights
+    activation = "relu"    # any but softmax (which belongs to a dense output layer)
+
     type = "embedding"     # only as the first layer
     columns = ["weekday"]  # input columns holding category numbers 0 .. categories - 1
     categories = 7
@@ -45,7 +48,7 @@ from typing import Any
 
 from stepper.core.activations import ACTIVATIONS
 from stepper.core.layers import (
-    BatchNorm, Conv, Dense, Dropout, Embedding, Flatten, Grid, Layer, LayerNorm, Pool, same_padding, shape_text,
+    ActivationLayer, BatchNorm, Conv, Dense, Dropout, Embedding, Flatten, Grid, Layer, LayerNorm, Pool, same_padding, shape_text,
 )
 from stepper.core.layers.norm import EPSILON, MOMENTUM
 
@@ -61,9 +64,12 @@ KEYS: dict[str, tuple[str, ...]] = {
     "layer_norm": ("epsilon",),
     "batch_norm": ("momentum", "epsilon"),
     "embedding": ("columns", "categories", "size"),
+    "activation": ("activation",),
     "custom": ("file", "class", "units", "options"),
 }
 TYPES = tuple(KEYS)
+#: The activations that act entry by entry (all but softmax): convolutions and activation layers take these.
+ELEMENTWISE = tuple(name for name, act in ACTIVATIONS.items() if act.elementwise)
 #: Keys a custom layer refuses with a message of its own (stepper.formats.custom_layer).
 _CUSTOM_REFUSES = ("activation", "bias", "weights", "biases")
 #: The most categories an embedding may have (a typo guard, like model_file.MAX_PARAMETERS).
@@ -122,6 +128,8 @@ def build_layer(keys: Any, kind: str, index: int, shape: tuple[int, ...], model_
         return Pool(shape, grid, kind.split("_")[0])
     if kind == "flatten":
         return Flatten(shape)
+    if kind == "activation":
+        return ActivationLayer(shape, ACTIVATIONS[keys.choice("activation", ELEMENTWISE)])
     if kind == "dropout":
         rate = keys.get("rate", float)
         if not (math.isfinite(rate) and 0.0 <= rate < 1.0):
@@ -238,8 +246,7 @@ def _conv(keys: Any, kind: str, index: int, shape: tuple[int, ...]) -> Conv:
     else:
         keys.fail("padding", f"{padding!r} is not \"valid\", \"same\" or a number of zeros from 0 to the "
                              f"kernel size {max(window)}")
-    names = tuple(name for name in ACTIVATIONS if name != "softmax")
-    activation = keys.choice("activation", names, "identity")
+    activation = keys.choice("activation", ELEMENTWISE, "identity")
     grid = Grid(size, window, stride, pad)
     _fits(keys, "kernel", grid, shape)
     return Conv(shape, channels, grid, ACTIVATIONS[activation], keys.get("bias", bool, True))

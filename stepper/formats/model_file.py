@@ -30,7 +30,7 @@ Schema (every key is checked; unknown keys are refused so typos surface)::
 
     [[layers]]                            # other built-in layers: conv1d, conv2d, max_pool,
     type = "conv2d"                       # avg_pool, flatten, dropout, layer_norm, batch_norm,
-    channels = 8                          # embedding; their keys are in
+    channels = 8                          # embedding, activation; their keys are in
     kernel = 3                            # stepper.formats.layer_keys
     padding = "same"
     activation = "relu"
@@ -78,7 +78,7 @@ from numpy.typing import NDArray
 from stepper.core.activations import ACTIVATIONS
 from stepper.core.descent import Descent
 from stepper.core.init import SCHEMES, fill_constants, initial_params
-from stepper.core.layers import Dense, Layer, is_builtin
+from stepper.core.layers import ActivationLayer, Dense, Layer, is_builtin
 from stepper.core.losses import LOSSES
 from stepper.core.network import Network
 from stepper.core.schedules import CONSTANT, ScheduleError
@@ -386,8 +386,12 @@ def _check_output_pair(top: _Keys, loss: str, layers: list[Layer]) -> None:
     """
     wanted = CROSS_ENTROPY_OUTPUT.get(loss)
     last = layers[-1]
-    if wanted is None or not isinstance(last, Dense) or last.activation.name == wanted:
+    if wanted is None or not isinstance(last, (Dense, ActivationLayer)) or last.activation.name == wanted:
         return
+    if isinstance(last, ActivationLayer) and wanted == "softmax":
+        top.fail("loss", f"{loss} needs a softmax output, but layers[{len(layers) - 1}] is an activation layer "
+                         f"({last.activation.name}); softmax couples a row's units, so it belongs to a dense "
+                         "output layer: end with a dense layer with activation = \"softmax\"")
     other = {v: k for k, v in CROSS_ENTROPY_OUTPUT.items()}.get(last.activation.name)
     hint = f", or keep {last.activation.name} with loss = \"{other}\"" if other else ""
     top.fail("loss", f"{loss} needs a {wanted} output layer, but layers[{len(layers) - 1}] uses "

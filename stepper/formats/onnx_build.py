@@ -9,6 +9,9 @@ onnxruntime gives the outputs Stepper's evaluation gives:
   ``pads``, and its activation;
 - max_pool, avg_pool: ``MaxPool``, ``AveragePool`` (no padding);
 - flatten: ``Flatten``; a shaped tensor that meets a dense layer is flattened too;
+- activation: its operator (``Relu``, ``LeakyRelu`` with ``alpha``, ``Tanh``,
+  ``Sigmoid``, ``Softplus``), which an import reads back as an activation layer
+  because it follows no ``Gemm`` or ``Conv``; an identity one as ``Identity``;
 - dropout: ``Dropout`` with its ``ratio`` (an inference graph passes the input on);
 - layer_norm: ``LayerNormalization`` over every entry of a sample;
 - batch_norm: ``BatchNormalization`` with the running statistics as ``input_mean``
@@ -30,7 +33,7 @@ from typing import Any
 import numpy as np
 
 from stepper.core.gemm import ScaledDense
-from stepper.core.layers import BatchNorm, Conv, Dense, Dropout, Embedding, Flatten, LayerNorm, Layer, Params, Pool
+from stepper.core.layers import ActivationLayer, BatchNorm, Conv, Dense, Dropout, Embedding, Flatten, LayerNorm, Layer, Params, Pool
 from stepper.core.network import Network
 from stepper.errors import UsageError
 from stepper.formats.onnx_write import IR_VERSION, OPERATORS, OPSET, Array, np_dtype
@@ -126,6 +129,11 @@ def _layer(g: _Graph, layer: Layer, number: int, params: Params, kept: Params, o
                kernel_shape=list(layer.grid.window), strides=list(layer.grid.stride))
     elif isinstance(layer, Flatten):
         g.flat(label)
+    elif isinstance(layer, ActivationLayer):
+        if layer.activation.name == "identity":
+            g.node("Identity", [], label)
+        else:
+            _activation(g, layer, label)
     elif isinstance(layer, Dropout):
         g.node("Dropout", [g.tensor(f"{label}.ratio", np.array(layer.rate))], label)
     elif isinstance(layer, LayerNorm):
@@ -158,7 +166,7 @@ def _gemm(g: _Graph, layer: Dense | ScaledDense, number: int, params: Params, or
     _activation(g, layer, f"L{number}")
 
 
-def _activation(g: _Graph, layer: Dense | ScaledDense | Conv, label: str) -> None:
+def _activation(g: _Graph, layer: Dense | ScaledDense | Conv | ActivationLayer, label: str) -> None:
     act = layer.activation
     op = OPERATORS.get(act.name) or ("LeakyRelu" if act.name.startswith("leaky_relu") else None)
     if op is not None:

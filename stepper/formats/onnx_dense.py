@@ -3,7 +3,9 @@
 Dense layers are built in two moves: Gemm or MatMul opens a pending layer (its
 weights), and a following Add gives it its bias and an activation node its
 activation; the next node that makes a layer, or the end of the graph, closes
-it. The activations also finish a pending Conv (:mod:`.onnx_spatial`).
+it. The activations also finish a pending Conv (:mod:`.onnx_spatial`); one
+with no such layer open (after a norm, a pooling, a dropout, a flatten or
+another activation) becomes an activation layer of its own.
 
 Weights keep the values the file holds. Gemm's ``B`` with ``transB = 1``
 (PyTorch's ``(out, in)``) becomes Stepper's ``W`` ``(in, out)`` through the
@@ -16,6 +18,7 @@ are and applies the constants.
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 from typing import Callable
 
@@ -23,7 +26,7 @@ import numpy as np
 
 from stepper.core.activations import ACTIVATIONS, Activation, leaky_relu
 from stepper.core.gemm import ScaledDense
-from stepper.core.layers import Dense, Layer
+from stepper.core.layers import ActivationLayer, Dense, Layer
 from stepper.formats.onnx_chain import (
     Array, Chain, Handler, Pending, Sourced, float_attribute, handler, int_attribute, vector,
 )
@@ -128,17 +131,23 @@ def _add(node: Node, chain: Chain) -> None:
 def _activation(make: Callable[[Node, Chain], Activation]) -> Handler:
     def apply(node: Node, chain: Chain) -> None:
         p = chain.pending
-        if p is None:
-            raise chain.fail(node, "Stepper runs an activation only right after a Gemm, MatMul (and its Add) "
-                                   "or Conv, as part of that layer")
-        if p.activation is not None:
-            raise chain.fail(node, f"follows {p.activation.name} with no {p.opened_by} between; Stepper "
-                                   f"runs one activation after each {p.opened_by}")
         activation = make(node, chain)
-        if activation.name == "softmax" and not isinstance(p, DensePending):
-            raise chain.fail(node, f"follows a {p.opened_by}; Stepper runs Softmax only after a Gemm or MatMul "
-                                   "(over the features of each sample)")
-        p.activation = activation
+        if p is not None and p.activation is None:
+            if activation.name == "softmax" and not isinstance(p, DensePending):
+                raise chain.fail(node, f"follows a {p.opened_by}; Stepper runs Softmax only after a Gemm or "
+                                       "MatMul (over the features of each sample)")
+            p.activation = activation  # part of the dense layer or convolution just before
+            return
+        # After a norm, a pooling, a dropout, a flatten or another activation: a layer of its own.
+        if activation.name == "softmax":
+            raise chain.fail(node, "does not follow a Gemm or MatMul; Stepper runs Softmax only as the "
+                                   "activation of a dense layer (over the features of each sample)")
+        chain.close()
+        shape = chain.shape if chain.shape is not None else (chain.graph.input.dims[1] or 0,)
+        if not math.prod(shape):
+            raise chain.fail(node, "comes before the width of a sample is known; Stepper needs the graph "
+                                   "input's width here")
+        chain.add_layer(ActivationLayer(tuple(shape), activation), {})
 
     return apply
 

@@ -15,7 +15,7 @@ Safetensors layouts:
   and ``shift`` are ``weight`` and ``bias`` (``LayerNorm``, ``BatchNorm``, which
   also gets its ``running_mean`` and ``running_var``, and ``num_batches_tracked``
   as the step count), an embedding's table is ``weight`` ``(categories, size)``;
-  pooling, flatten and dropout take their index and hold nothing. Weights from
+  pooling, flatten, dropout and activation layers take their index and hold nothing. Weights from
   an ONNX file keep the initializers' names (PyTorch's, when PyTorch wrote it).
 - ``stepper``: Stepper's own names and arrangement, ``L1.W`` ``(in, out)`` and
   ``L1.b``, which ``[init] layout = "stepper"`` reads back.
@@ -125,7 +125,8 @@ def _sequential_index(network: Network, index: int) -> int:
     for layer in network.layers[:index]:
         position += 1
         activation = getattr(layer, "activation", None)
-        if activation is not None and activation.name != "identity":
+        # An activation layer is its own module (nn.ReLU); others' activations take the next index.
+        if activation is not None and activation.name != "identity" and not isinstance(layer, ActivationLayer):
             position += 1
     return position
 

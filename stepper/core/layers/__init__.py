@@ -7,9 +7,11 @@
 - :mod:`.conv`: 1-D and 2-D convolutions; :mod:`.pool`: max and average pooling;
   :mod:`.grid`: the window geometry they share;
 - :mod:`.reshape`: flatten; :mod:`.dropout`; :mod:`.norm`: layer and batch norm;
-- :mod:`.embedding`: category columns to learned vectors.
+- :mod:`.embedding`: category columns to learned vectors;
+- :mod:`.activation`: an activation on its own (after a norm, a pooling, a dropout).
 """
 
+from stepper.core.layers.activation import ActivationLayer
 from stepper.core.layers.base import Array, Builtin, Layer, Mode, ParamSpec, Params, is_builtin, shape_text
 from stepper.core.layers.conv import Conv, ConvCache
 from stepper.core.layers.dense import Dense, DenseCache
@@ -21,7 +23,7 @@ from stepper.core.layers.pool import Pool
 from stepper.core.layers.reshape import Flatten
 
 __all__ = [
-    "Array", "BatchNorm", "Builtin", "Conv", "ConvCache", "Dense", "DenseCache", "Dropout", "Embedding",
+    "ActivationLayer", "Array", "BatchNorm", "Builtin", "Conv", "ConvCache", "Dense", "DenseCache", "Dropout", "Embedding",
     "Flatten", "Grid", "Layer", "LayerNorm", "Mode", "ParamSpec", "Params", "Pool", "is_builtin",
     "same_padding", "shape_text",
 ]
