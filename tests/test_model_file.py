@@ -179,7 +179,7 @@ MISTAKES = [
      'layers[0].class (L1): only a layer with type = "custom" takes this key'),
     ('activation = "tanh"', 'activation = "tanh"\ntype = "conv"',
      "layers[0].type (L1): unknown 'conv' (expected one of: dense, conv1d, conv2d, max_pool, avg_pool, "
-     "flatten, dropout, layer_norm, batch_norm, embedding, custom)"),
+     "flatten, dropout, layer_norm, batch_norm, embedding, activation, custom)"),
     ("units = 1\n", "units = 2\n",
      "layers[1].units (L2): the last layer has 2 units but [data].targets names 1 column(s); they must match; "
      "if 'y' holds class numbers, end with a softmax layer of 2 units and Stepper builds the one-hot targets "

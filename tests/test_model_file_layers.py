@@ -174,7 +174,7 @@ IMAGE_MISTAKES = [
     ("epsilon = 1e-5", 'epsilon = "small"', "layers[5].epsilon (L6): expected a number, got the string 'small'"),
     ('type = "conv2d"', 'type = "conv3d"',
      "layers[0].type (L1): unknown 'conv3d' (expected one of: dense, conv1d, conv2d, max_pool, avg_pool, flatten, "
-     "dropout, layer_norm, batch_norm, embedding, custom)"),
+     "dropout, layer_norm, batch_norm, embedding, activation, custom)"),
     ('type = "conv2d"', "type = 3", "layers[0].type (L1): expected a string, got an integer"),
     ("kernel = 3", "kernel = [3, 0]", "layers[0].kernel (L1): [3, 0] is not positive"),
     ('padding = "same"', "padding = [1, 2]",

@@ -121,11 +121,11 @@ GRAPHS: dict[str, tuple[Callable[[], onnx.ModelProto], str]] = {
                    TensorProto.INT64),
         "node 'relu' (Relu): takes the graph's int64 input; Stepper reads whole-number inputs only as the category "
         "numbers of an embedding (a Gather first)"),
-    "activation after a pooling": (
+    "softmax after a pooling": (
         lambda: _g([_node("Conv", ["x", "K"], "c"), _node("MaxPool", ["c"], "p", kernel_shape=[2, 2]),
-                    _node("Relu", ["p"])], {"K": _w(3, 2, 3, 3)}, IMAGE),
-        "node 'relu' (Relu): Stepper runs an activation only right after a Gemm, MatMul (and its Add) or Conv, "
-        "as part of that layer"),
+                    _node("Softmax", ["p"])], {"K": _w(3, 2, 3, 3)}, IMAGE),
+        "node 'softmax' (Softmax): does not follow a Gemm or MatMul; Stepper runs Softmax only as the activation "
+        "of a dense layer (over the features of each sample)"),
     "softmax after a conv": (
         lambda: _g([_node("Conv", ["x", "K"], "c"), _node("Softmax", ["c"])], {"K": _w(3, 2, 3, 3)}, IMAGE),
         "node 'softmax' (Softmax): follows a Conv; Stepper runs Softmax only after a Gemm or MatMul (over the "

@@ -77,6 +77,12 @@ CASES: dict[str, tuple[tuple[int, ...], Steps]] = {
     "dropout with a ratio, and with none (0.5)": ((5,), [
         ("Gemm", {"units": 4}), ("Tanh", {}), ("Dropout", {"ratio": 0.3, "training_mode": False}),
         ("Gemm", {"units": 3}), ("Dropout", {}), ("Gemm", {"units": 2})]),
+    "gemm, batch norm, relu, gemm (an activation layer after a norm)": ((5,), [
+        ("Gemm", {"units": 4, "transB": 1}), ("BatchNormalization", {}), ("Relu", {}), ("Gemm", {"units": 2})]),
+    "conv, max pool, then tanh; dropout, then leaky relu; flatten, then sigmoid": ((2, 6, 6), [
+        ("Conv", {"channels": 2, "kernel": [3, 3]}), ("MaxPool", {"kernel_shape": [2, 2], "strides": [2, 2]}),
+        ("Tanh", {}), ("Dropout", {"ratio": 0.2}), ("LeakyRelu", {"alpha": 0.2}), ("Flatten", {}),
+        ("Sigmoid", {}), ("Gemm", {"units": 2}), ("Softplus", {}), ("Relu", {})]),
     "dropout on a conv's channels": ((1, 6, 6), [
         ("Conv", {"channels": 2, "kernel": [3, 3]}), ("Relu", {}), ("Dropout", {"ratio": 0.25}), ("Flatten", {}),
         ("Gemm", {"units": 2})]),

@@ -87,12 +87,12 @@ GRAPHS: dict[str, tuple[Callable[[], onnx.ModelProto], str]] = {
                        inputs=["x", "w"]),
         "initializer 'w' is also a graph input, so whoever runs the graph may replace it; Stepper reads weights "
         "only from initializers that are not inputs (export again with keep_initializers_as_inputs=False)"),
-    "two activations in a row": (
+    "softmax after another activation": (
         lambda: _graph([helper.make_node("Gemm", ["x", "w"], ["h"], name="fc"),
                         helper.make_node("Relu", ["h"], ["r"], name="r"),
-                        helper.make_node("Tanh", ["r"], ["y"], name="t")], [_w("w", (4, 2))]),
-        "node 't' (Tanh): follows relu with no Gemm or MatMul between; Stepper runs one activation after each "
-        "Gemm or MatMul"),
+                        helper.make_node("Softmax", ["r"], ["y"], name="t")], [_w("w", (4, 2))]),
+        "node 't' (Softmax): does not follow a Gemm or MatMul; Stepper runs Softmax only as the activation of a "
+        "dense layer (over the features of each sample)"),
     "weights made by a Constant node": (
         lambda: _graph([helper.make_node("Constant", [], ["w"], name="weights", value=_w("c", (4, 2))),
                         helper.make_node("Gemm", ["x", "w"], ["y"], name="fc")], []),

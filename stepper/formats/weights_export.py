@@ -33,7 +33,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from stepper.core.gemm import ScaledDense
-from stepper.core.layers import BatchNorm, Conv, Dense, Embedding, LayerNorm
+from stepper.core.layers import ActivationLayer, BatchNorm, Conv, Dense, Embedding, LayerNorm
 from stepper.core.network import Network
 from stepper.errors import UsageError
 from stepper.formats.weight_sources import TensorSource, WeightOrigin
