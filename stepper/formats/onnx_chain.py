@@ -171,6 +171,15 @@ class Chain:
             self.state_sources[f"L{number}.{key}"] = source
         self.shape = tuple(getattr(layer, "out_shape", (layer.n_out,)))
 
+    def known_shape(self, node: Node) -> tuple[int, ...]:
+        """The current shape, for a node that keeps it (a dropout, an activation); the graph input's
+        width while nothing has shaped it yet. Refused while that width is symbolic."""
+        shape = self.shape if self.shape is not None else (self.graph.input.dims[1] or 0,)
+        if not math.prod(shape):
+            raise self.fail(node, "comes before the width of a sample is known; Stepper needs the graph input's "
+                                  "width here")
+        return tuple(shape)
+
     def need_flat(self, node: Node) -> None:
         """Refuse a tensor that is not samples x features (a Gemm or MatMul takes only those)."""
         if self.shape is not None and len(self.shape) != 1:

@@ -18,7 +18,6 @@ are and applies the constants.
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass
 from typing import Callable
 
@@ -143,11 +142,7 @@ def _activation(make: Callable[[Node, Chain], Activation]) -> Handler:
             raise chain.fail(node, "does not follow a Gemm or MatMul; Stepper runs Softmax only as the "
                                    "activation of a dense layer (over the features of each sample)")
         chain.close()
-        shape = chain.shape if chain.shape is not None else (chain.graph.input.dims[1] or 0,)
-        if not math.prod(shape):
-            raise chain.fail(node, "comes before the width of a sample is known; Stepper needs the graph "
-                                   "input's width here")
-        chain.add_layer(ActivationLayer(tuple(shape), activation), {})
+        chain.add_layer(ActivationLayer(chain.known_shape(node), activation), {})
 
     return apply
 

@@ -25,8 +25,6 @@ Dropout, Cast and Gather.
 
 from __future__ import annotations
 
-import math
-
 import numpy as np
 
 from stepper.core.layers import BatchNorm, Dropout, Embedding, LayerNorm
@@ -140,11 +138,7 @@ def _dropout(node: Node, chain: Chain) -> None:
     seed = node.attributes.get("seed", len(chain.layers))
     if isinstance(seed, bool) or not isinstance(seed, int) or seed < 0:
         raise chain.fail(node, f"attribute seed is {seed!r}, not a whole number of 0 or more")
-    shape = chain.shape if chain.shape is not None else (chain.graph.input.dims[1] or 0,)
-    if not math.prod(shape):
-        raise chain.fail(node, "comes before the width of a sample is known; Stepper needs the graph input's "
-                               "width here")
-    chain.add_layer(Dropout(shape, rate, seed), {})
+    chain.add_layer(Dropout(chain.known_shape(node), rate, seed), {})
 
 
 #: ONNX's element type codes of the whole numbers a Cast may give a Gather (TensorProto.INT32, INT64).
