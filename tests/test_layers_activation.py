@@ -318,3 +318,29 @@ def test_onnx_gemm_batch_norm_relu_gemm_imports_and_goes_back(tmp_path: Path,
     assert [n.op_type for n in onnx.load(str(out)).graph.node][:4] == ["Gemm", "BatchNormalization", "Relu", "Gemm"]
     # ...and runs the written file with the same outputs.
     np.testing.assert_allclose(run_onnxruntime(out, X), run_onnxruntime(path, X), rtol=1e-12, atol=1e-13)
+
+
+@pytest.mark.parametrize("shaped", [False, True], ids=["entries", "channels"])
+def test_health_counts_dead_relu_entries_and_saturated_ones(shaped: bool) -> None:
+    from stepper.core.health import layer_health
+
+    net = _conv_network() if shaped else _network("relu")
+    rng = np.random.default_rng(9)
+    theta = rng.normal(size=net.n_params)
+    shift, scale = net.layout.find_block(1, "shift"), net.layout.find_block(1, "scale")
+    # Batch norm at scale 1, shift 0: each unit has mean 0 over the batch, so some sample is above 0...
+    theta[shift.start : shift.stop], theta[scale.start : scale.stop] = 0.0, 1.0
+    # ...except unit 1, whose output is at most sqrt(n - 1) = 3 from its shift: below 0 on every sample.
+    theta[shift.start + 1] = -50.0
+    X = rng.normal(size=(10, net.n_inputs))
+    report = layer_health(net, theta, X, rng.normal(size=(10, 2)), 0.1)
+    relu = report.layers[2]
+    assert relu.per == ("channel" if shaped else "unit")
+    # Unit (channel) 1 is below ReLU's kink on every sample: dead by the definition of a dead unit.
+    assert relu.dead_units.tolist() == [1]
+    assert relu.active is not None and relu.active.shape == ((2,) if shaped else (5,))
+    if not shaped:
+        tanh = _network("tanh")
+        theta[shift.start + 1] = 50.0  # tanh'(50) ~ 1e-43: below the 0.01 that counts as saturated
+        report = layer_health(tanh, theta, X, rng.normal(size=(10, 2)), 0.1)
+        assert report.layers[2].saturated_units.tolist() == [1]
