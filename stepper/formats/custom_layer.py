@@ -60,6 +60,7 @@ from stepper.core.network import Network
 from stepper.errors import CustomLayerError
 from stepper.formats import user_code
 from stepper.formats.reading import CODE_FILE_LIMIT, read_limited
+from stepper.formats.toml_keys import layer_label
 
 Array = NDArray[np.float64]
 
@@ -135,7 +136,7 @@ def build_custom_layer(keys: Any, n_in: int, model_path: Path) -> CustomLayer:
     """Load the class a ``[[layers]]`` table names and wrap it.
 
     Args:
-        keys: the layer's table (``stepper.formats.model_file._Keys``); its
+        keys: the layer's table (``stepper.formats.toml_keys.Keys``); its
             errors name the model file and the key.
         n_in: width of the layer's input.
         model_path: the model file; ``file`` is relative to its folder.
@@ -155,8 +156,6 @@ def build_custom_layer(keys: Any, n_in: int, model_path: Path) -> CustomLayer:
         keys.fail("file", f"'{file_name}' is not a Python file (expected a name ending in .py)")
     if not path.is_file():
         keys.fail("file", f"no such file '{file_name}' (looked for {path})")
-    from stepper.formats.model_file import layer_label  # model_file loads this module when it needs it
-
     where = f"{keys.file}: {keys.where} ({layer_label(keys.where)}, {path.name}:{class_name})"
 
     module = _load_module(path, f"{keys.file}: {keys.where} ({layer_label(keys.where)}, {path.name})")

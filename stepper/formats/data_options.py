@@ -40,7 +40,7 @@ DATA_KEYS = {"file", "inputs", "targets", "standardize", "validation_fraction", 
 
 
 def load_data(model_path: Path, keys: Any, categories: tuple[list[str] | None, int] | None = None) -> Dataset:
-    """The dataset that ``[data]`` describes; ``keys`` is its ``model_file._Keys``.
+    """The dataset that ``[data]`` describes; ``keys`` is its ``toml_keys.Keys``.
 
     ``categories``: an embedding's category columns (None: every input column,
     as for an ONNX graph's Gather) and category count, if the first layer is
@@ -123,7 +123,7 @@ def _file(model_path: Path, keys: Any, key: str) -> Path:
 def fit_data(top: Any, network: Network, data: Dataset) -> Dataset:
     """``data`` checked against the network's widths; class numbers made one-hot for a softmax output.
 
-    ``top`` is the model file's top-level ``_Keys``, whose errors name the file.
+    ``top`` is the model file's top-level ``toml_keys.Keys``, whose errors name the file.
     """
     graph = top.has("network")
     if len(data.input_names) != network.n_inputs:

@@ -8,7 +8,6 @@ the line (1-based, counting the header as line 1) and the column.
 from __future__ import annotations
 
 import csv
-import hashlib
 import io
 import math
 from dataclasses import dataclass, field

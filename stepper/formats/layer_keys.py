@@ -101,7 +101,7 @@ def build_layer(keys: Any, kind: str, index: int, shape: tuple[int, ...], model_
     """The layer a ``[[layers]]`` table describes, for input rows of ``shape``.
 
     Args:
-        keys: the table (``model_file._Keys``: its errors name the file and the key).
+        keys: the table (``toml_keys.Keys``: its errors name the file and the key).
         kind: the table's ``type``; index: its position (0-based).
         shape: the shape of the layer's input rows.
         model_path: the model file (custom layers' files are relative to it).

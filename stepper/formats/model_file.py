@@ -63,10 +63,8 @@ starting values (seeded by ``[init].seed``, or 0 without ``[init]``).
 from __future__ import annotations
 
 import dataclasses
-import datetime
 import hashlib
 import math
-import re
 import tomllib
 from dataclasses import dataclass
 from pathlib import Path
@@ -87,6 +85,7 @@ from stepper.errors import ModelFileError
 from stepper.formats.data_options import DATA_KEYS, fit_data, load_data
 from stepper.formats.dataset import Dataset
 from stepper.formats.reading import MODEL_FILE_LIMIT, collect_reads, read_limited
+from stepper.formats.toml_keys import Keys
 from stepper.formats.layer_keys import TYPES, build_layer, category_columns, check_keys, need_flat
 from stepper.formats.weight_sources import WeightOrigin
 
@@ -144,107 +143,6 @@ class Setup:
         return [("the model file", self.path)] + [("a file the model file reads", p) for p, _ in self.inputs]
 
 
-_LAYER_PATH = re.compile(r"^layers\[(\d+)\]")
-
-
-def layer_label(path: str) -> str | None:
-    """``"L2"`` for a key path inside ``layers[1]`` (TOML counts from 0, weight names from 1), else None."""
-    match = _LAYER_PATH.match(path)
-    return f"L{int(match[1]) + 1}" if match else None
-
-
-class _Keys:
-    """Typed access to one TOML table, with errors that name the file and key path."""
-
-    def __init__(self, file: str, where: str, table: Any, allowed: set[str]) -> None:
-        self.file = file
-        self.where = where
-        if not isinstance(table, dict):
-            self.fail("", f"expected a table, got {_kind(table)}")
-        self.table: dict[str, Any] = table
-        for key in table:
-            if key not in allowed:
-                self.fail(key, f"unknown key (allowed: {', '.join(sorted(allowed))})")
-
-    def path(self, key: str) -> str:
-        if not key:
-            return self.where
-        return f"{self.where}.{key}" if self.where else key
-
-    def fail(self, key: str, message: str) -> None:
-        where = self.path(key)
-        label = layer_label(where)
-        if label:
-            where += f" ({label})"
-        raise ModelFileError(f"{self.file}: {where}: {message}" if where else f"{self.file}: {message}")
-
-    def has(self, key: str) -> bool:
-        return key in self.table
-
-    def get(self, key: str, kind: type, default: Any = ...) -> Any:
-        if key not in self.table:
-            if default is ...:
-                self.fail(key, "missing")
-            return default
-        value = self.table[key]
-        if kind is float and isinstance(value, int) and not isinstance(value, bool):
-            value = float(value)
-        if kind is int and isinstance(value, bool):
-            self.fail(key, f"expected an integer, got {_kind(value)}")
-        if not isinstance(value, kind):
-            self.fail(key, f"expected {_noun(kind)}, got {_kind(value)}")
-        return value
-
-    def names(self, key: str) -> list[str]:
-        value = self.get(key, list)
-        if not value or not all(isinstance(v, str) for v in value):
-            self.fail(key, "expected a non-empty list of column names")
-        twice = sorted({v for v in value if value.count(v) > 1})
-        if twice:
-            self.fail(key, f"column(s) {', '.join(repr(v) for v in twice)} named more than once")
-        return list(value)
-
-    def seed(self, key: str) -> int:
-        """A random seed: a whole number, 0 or more (numpy refuses negative seeds); default 0."""
-        value: int = self.get(key, int, 0)
-        if value < 0:
-            self.fail(key, f"{value} is negative (a seed is a whole number, 0 or more)")
-        return value
-
-    def choice(self, key: str, allowed: dict[str, Any] | tuple[str, ...], default: Any = ...) -> str:
-        value = self.get(key, str, default)
-        if value not in allowed:
-            self.fail(key, f"unknown {value!r} (expected one of: {', '.join(allowed)})")
-        return str(value)
-
-
-def _noun(kind: type) -> str:
-    return {str: "a string", int: "an integer", float: "a number", bool: "true or false",
-            list: "a list", dict: "a table"}.get(kind, kind.__name__)
-
-
-def _kind(value: Any) -> str:
-    if isinstance(value, bool):
-        return "a boolean"
-    if isinstance(value, int):
-        return "an integer"
-    if isinstance(value, float):
-        return "a number"
-    if isinstance(value, str):
-        return f"the string {value!r}"
-    if isinstance(value, list):
-        return "a list"
-    if isinstance(value, dict):
-        return "a table"
-    if isinstance(value, datetime.datetime):  # before date: a datetime is also a date
-        return "a date-time"
-    if isinstance(value, datetime.date):
-        return "a date"
-    if isinstance(value, datetime.time):
-        return "a time of day"
-    return type(value).__name__
-
-
 def load_setup(path: str | Path) -> Setup:
     """Read and check a model file, its data and its initial weights."""
     path = Path(path)
@@ -282,7 +180,7 @@ def setup_from_doc(doc: Any, path: Path, raw: bytes, data: Dataset | None = None
         label: how messages name the document (default: ``path``).
     """
     label = label or str(path)
-    top = _Keys(label, "", doc, TOP_KEYS)
+    top = Keys(label, "", doc, TOP_KEYS)
     name = top.get("name", str, path.parent.name or path.stem)
     loss = top.choice("loss", LOSSES)
     graph = None
@@ -295,7 +193,7 @@ def setup_from_doc(doc: Any, path: Path, raw: bytes, data: Dataset | None = None
         graph = graph_network(top, path, loss)
     input_shape = None
     if data is None:
-        data_keys = _Keys(label, "data", top.get("data", dict), DATA_KEYS)
+        data_keys = Keys(label, "data", top.get("data", dict), DATA_KEYS)
         first = top.table.get("layers")
         categories = category_columns(first[0] if isinstance(first, list) and first else None) if graph is None \
             else graph_categories(graph[0])
@@ -319,7 +217,7 @@ def setup_from_doc(doc: Any, path: Path, raw: bytes, data: Dataset | None = None
     return Setup(path, name, network, theta0, data, digest, origin, descent=descent)
 
 
-def _described_network(label: str, top: _Keys, path: Path, data: Dataset, loss: str,
+def _described_network(label: str, top: Keys, path: Path, data: Dataset, loss: str,
                        input_shape: tuple[int, ...] | None = None) -> tuple[Network, Array, WeightOrigin | None]:
     """The network that ``[[layers]]`` describe, and its starting values.
 
@@ -330,11 +228,11 @@ def _described_network(label: str, top: _Keys, path: Path, data: Dataset, loss: 
         top.fail("layers", "expected at least one [[layers]] table")
     torch = _torch_state(label, top, len(layer_list))
     layers: list[Layer] = []
-    inline: list[tuple[int, _Keys]] = []
+    inline: list[tuple[int, Keys]] = []
     shape = input_shape or (len(data.input_names),)
     n_params = 0
     for i, entry in enumerate(layer_list):
-        keys = _Keys(label, f"layers[{i}]", entry, set(entry) if isinstance(entry, dict) else set())
+        keys = Keys(label, f"layers[{i}]", entry, set(entry) if isinstance(entry, dict) else set())
         kind = keys.choice("type", TYPES, "dense")
         if torch is None:
             layer = build_layer(keys, kind, i, shape, path, data.input_names)
@@ -355,11 +253,11 @@ def _described_network(label: str, top: _Keys, path: Path, data: Dataset, loss: 
     return network, theta0, origin
 
 
-def _training(label: str, top: _Keys) -> tuple[float, Descent]:
+def _training(label: str, top: Keys) -> tuple[float, Descent]:
     """The L2 strength and the other settings of ``[training]`` (defaults without the table)."""
     if not top.has("training"):
         return 0.0, Descent()
-    keys = _Keys(label, "training", top.get("training", dict), TRAINING_KEYS)
+    keys = Keys(label, "training", top.get("training", dict), TRAINING_KEYS)
     values = {}
     for key in ("l2", "weight_decay", "clip_norm"):
         value = keys.get(key, float, None)
@@ -377,7 +275,7 @@ def _training(label: str, top: _Keys) -> tuple[float, Descent]:
 CROSS_ENTROPY_OUTPUT = {"binary_cross_entropy": "sigmoid", "categorical_cross_entropy": "softmax"}
 
 
-def _check_output_pair(top: _Keys, loss: str, layers: list[Layer]) -> None:
+def _check_output_pair(top: Keys, loss: str, layers: list[Layer]) -> None:
     """A cross-entropy needs its own output activation (computed exactly from Z); any other is refused.
 
     Any other dense output would need its probabilities clipped away from 0 and
@@ -420,14 +318,14 @@ def declared_code(path: Path) -> list[Path]:
     return out
 
 
-def _torch_state(label: str, top: _Keys, n_layers: int) -> TorchState | None:
+def _torch_state(label: str, top: Keys, n_layers: int) -> TorchState | None:
     """The state_dict's Linear layers when ``[init] layout = "torch"``, one per ``[[layers]]`` table."""
     table = top.table.get("init")
     if not (isinstance(table, dict) and table.get("layout") == "torch"):
         return None
     from stepper.formats.weights_import import read_torch_layout
 
-    init = _Keys(label, "init", table, INIT_KEYS)
+    init = Keys(label, "init", table, INIT_KEYS)
     torch = read_torch_layout(label, init)
     if len(torch.linears) != n_layers:
         names = ", ".join(linear.weight for linear in torch.linears)
@@ -436,7 +334,7 @@ def _torch_state(label: str, top: _Keys, n_layers: int) -> TorchState | None:
     return torch
 
 
-def _torch_dense(keys: _Keys, kind: str, index: int, shape: tuple[int, ...], linear: TorchLinear) -> Layer:
+def _torch_dense(keys: Keys, kind: str, index: int, shape: tuple[int, ...], linear: TorchLinear) -> Layer:
     """A dense layer whose units and bias come from a state_dict's Linear layer (``layout = "torch"``)."""
     if kind != "dense":
         keys.fail("type", "layout = \"torch\" maps Linear layers to dense layers only")
@@ -449,7 +347,7 @@ def _torch_dense(keys: _Keys, kind: str, index: int, shape: tuple[int, ...], lin
     return Dense(shape[0], units, ACTIVATIONS[activation], bias)
 
 
-def _input_shape(keys: _Keys, n_inputs: int) -> tuple[int, ...] | None:
+def _input_shape(keys: Keys, n_inputs: int) -> tuple[int, ...] | None:
     """``[data].input_shape`` checked against the number of input columns; None when not given."""
     if not keys.has("input_shape"):
         return None
@@ -464,7 +362,7 @@ def _input_shape(keys: _Keys, n_inputs: int) -> tuple[int, ...] | None:
     return tuple(value)
 
 
-def _torch_shape(keys: _Keys, n_in: int, linear: TorchLinear) -> tuple[int, bool]:
+def _torch_shape(keys: Keys, n_in: int, linear: TorchLinear) -> tuple[int, bool]:
     """Units and bias of a dense layer read from its Linear layer's tensors (checked against the keys)."""
     shape = f"tensor '{linear.weight}' has shape {tuple(linear.W.shape)} (PyTorch's Linear stores (out, in))"
     if linear.n_in != n_in:
@@ -479,7 +377,7 @@ def _torch_shape(keys: _Keys, n_in: int, linear: TorchLinear) -> tuple[int, bool
     return units, bias
 
 
-def _initial_values(label: str, top: _Keys, network: Network, inline: list[tuple[int, _Keys]],
+def _initial_values(label: str, top: Keys, network: Network, inline: list[tuple[int, Keys]],
                     torch: TorchState | None = None) -> tuple[Array, WeightOrigin | None]:
     inline_layers = {i for i, _ in inline}
     # Custom layers draw their own starting values (stepper.formats.custom_layer).
@@ -492,7 +390,7 @@ def _initial_values(label: str, top: _Keys, network: Network, inline: list[tuple
     imported = False
     origin = None
     if top.has("init"):
-        init = _Keys(label, "init", top.get("init", dict), INIT_KEYS)
+        init = Keys(label, "init", top.get("init", dict), INIT_KEYS)
         if init.has("layout") and not init.has("file"):
             init.fail("layout", "only with [init].file: it says how that file names its tensors")
         if init.has("file"):
@@ -520,7 +418,7 @@ def _initial_values(label: str, top: _Keys, network: Network, inline: list[tuple
     return theta, origin
 
 
-def _apply_inline(keys: _Keys, network: Network, index: int, theta: Array) -> None:
+def _apply_inline(keys: Keys, network: Network, index: int, theta: Array) -> None:
     views = network.views(theta)[index]
     for key, array_key in (("weights", "W"), ("biases", "b")):
         if not keys.has(key):

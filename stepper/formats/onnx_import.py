@@ -34,7 +34,6 @@ import math
 from dataclasses import dataclass, field
 from pathlib import Path
 
-import numpy as np
 
 from stepper.core.layers import Layer
 from stepper.formats import onnx_dense, onnx_spatial, onnx_norms  # noqa: F401  (they fill OPS, in this order)

@@ -19,7 +19,7 @@ Array = NDArray[np.float64]
 def graph_network(top: Any, model_path: Path, loss: str) -> tuple[Network, Array, WeightOrigin]:
     """The network of the graph that ``network`` names, its weights ``(n_params,)`` and their origin.
 
-    ``top`` is the model file's top-level ``model_file._Keys``.
+    ``top`` is the model file's top-level ``toml_keys.Keys``.
     """
     name = top.get("network", str)
     if not name.strip() or "\0" in name:

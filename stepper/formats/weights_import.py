@@ -159,7 +159,7 @@ def import_weights(label: str, init: Any, network: Network,
                    torch: TorchState | None = None) -> tuple[Array, WeightOrigin]:
     """Parameters ``(n_params,)`` read from ``[init].file``, and where each array came from.
 
-    ``init`` is the model file's ``[init]`` table accessor (``model_file._Keys``);
+    ``init`` is the model file's ``[init]`` table accessor (``toml_keys.Keys``);
     ``torch`` the state_dict already read when ``layout = "torch"``.
     """
     for key in ("scheme", "seed", "range"):
