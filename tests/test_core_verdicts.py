@@ -8,7 +8,6 @@ Recipes, 3rd ed., section 5.7), for the unresolved verdict.
 
 from __future__ import annotations
 
-from pathlib import Path
 from typing import Any
 
 import numpy as np

@@ -13,7 +13,6 @@ import re
 from pathlib import Path
 from typing import Any
 
-import numpy as np
 import pytest
 
 from stepper import cli

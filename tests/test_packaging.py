@@ -8,7 +8,6 @@ version 77), PEP 561 (a ``py.typed`` marker makes a package's type hints count),
 from __future__ import annotations
 
 import ast
-import os
 import re
 import shutil
 import subprocess

@@ -21,7 +21,6 @@ from scipy.signal import correlate
 from test_onnx_layers_export import graph_model, trained
 
 from stepper import cli
-from stepper.formats.model_file import load_setup
 
 MODEL = """
 name = "tiles"

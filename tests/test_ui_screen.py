@@ -12,7 +12,6 @@ import math
 from pathlib import Path
 from typing import Any
 
-import numpy as np
 import pytest
 from textual.pilot import Pilot
 from textual.widgets import Label

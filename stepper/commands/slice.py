@@ -8,7 +8,6 @@ import sys
 from pathlib import Path
 from typing import Any
 
-import numpy as np
 
 from stepper.commands.common import load, resumed_weights, sample_limit, write_plot
 from stepper.commands.parsers import DEFAULT_RATE, PLOT_SIZE

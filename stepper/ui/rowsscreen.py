@@ -15,7 +15,6 @@ from typing import ClassVar, Sequence
 import numpy as np
 from numpy.typing import NDArray
 from rich.segment import Segment
-from rich.style import Style
 from rich.text import Text
 from textual.app import ComposeResult
 from textual.binding import BindingType

@@ -352,7 +352,6 @@ class WeightTable(CursorView, can_focus=True):
         assert snap is not None
         widths = self.widths()
         rel = snap.rel_error[index]
-        code = int(snap.verdict[index])
         # A numeric slope older than the weights is no verdict: the column says so in a word.
         verdict = STALE_TEXT if snap.stale and snap.has_check else verdict_text(snap, index)
         digits = self.digits
