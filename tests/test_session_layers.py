@@ -144,3 +144,25 @@ def test_undo_redo_replay_and_checkpoints_bring_the_running_statistics_back(setu
     assert fresh.step_count == 5
     fresh.undo()
     assert fresh.state.tobytes() == setup.network.initial_state().tobytes()
+
+
+@pytest.mark.parametrize("batch", [None, 8])
+def test_the_range_test_steps_as_the_session_does_with_dropout_and_batch_norm(setup: Setup,
+                                                                             batch: int | None) -> None:
+    # Our own contract (README, "A rate range test"): each rate takes its steps exactly as a real run
+    # would. With dropout and batch norm that means each step's masks, the running statistics moving
+    # with every batch, and the validation cost in evaluation (no dropout, running statistics); the
+    # reference is the session itself making the same steps.
+    session = Session(setup, rate=0.05, batch_size=batch)
+    session.step(2)
+    result = session.range_test([0.02, 0.3], steps=5)
+    start = session.train_cost()
+    assert result.start_cost == pytest.approx(start, rel=1e-12)
+    for index, rate in enumerate([0.02, 0.3]):
+        twin = Session(setup, rate=0.05, batch_size=batch)
+        twin.step(2)
+        twin.set_rate(rate)
+        twin.step(5, watch=False)  # the range test has no runaway rule: compare every step
+        assert result.train[index] == pytest.approx(twin.train_cost(), rel=1e-12)
+        assert result.val is not None
+        assert result.val[index] == pytest.approx(twin.val_cost(), rel=1e-12)

@@ -65,6 +65,8 @@ class Start:
         rng_state: the mini-batch generator's ``bit_generator.state``.
         settings: clipping, decay and schedule.
         position: where mini-batches stand in their epoch.
+        kept: the network's kept arrays (batch norm's running statistics), ``(n_state,)``;
+            None for the network's initial ones.
     """
 
     theta: Array
@@ -75,6 +77,7 @@ class Start:
     rng_state: Mapping[str, Any]
     settings: Descent
     position: EpochPosition = EpochPosition()
+    kept: Array | None = None
 
 
 @dataclass(frozen=True)
@@ -114,6 +117,7 @@ class _Run:
     state: RuleState
     rng: np.random.Generator
     position: EpochPosition
+    kept: Array
     diverged_at: int | None = None
 
 
@@ -140,8 +144,15 @@ def iter_range_test(
     rates = np.asarray(rates, dtype=np.float64)
     total = int(rates.size) * steps
     decay_mask = net.penalized
-    start_cost = net.cost(start.theta, X, Y)
-    runs = [_Run(start.theta.copy(), start.state.copy(), _generator(start.rng_state), start.position)
+    kept = net.initial_state() if start.kept is None else start.kept
+    by_step = net.varies_by_step or net.has_state
+
+    def training(step: int, state: Array) -> Network:
+        """The network as a run trains at update ``step``: that step's dropout masks, batch statistics."""
+        return net.at(True, step, state) if by_step else net
+
+    start_cost = training(start.step, kept).cost(start.theta, X, Y)
+    runs = [_Run(start.theta.copy(), start.state.copy(), _generator(start.rng_state), start.position, kept.copy())
             for _ in rates]
     spread = parallel_map if all(isinstance(layer, Dense) for layer in net.layers) else _one_by_one
 
@@ -155,14 +166,17 @@ def iter_range_test(
             pick, run.position = next_batch(run.rng, X.shape[0], start.batch_size, run.position)
             Xb, Yb = X[pick], Y[pick]
         with np.errstate(all="ignore"):
-            _, slopes = net.cost_and_slopes(run.theta, Xb, Yb)
+            at_step = training(start.step + s, run.kept)
+            _, slopes = at_step.cost_and_slopes(run.theta, Xb, Yb)
             update = descent_update(run.state, slopes, run.theta, float(rates[k]), start.step + s,
                                     start.settings, start.frozen, decay_mask)
             theta = run.theta + update.delta
+            # The running statistics move towards this step's batch, as the session's step does.
+            moved = at_step.next_state(run.theta, Xb, run.kept)
         if not np.all(np.isfinite(theta)):
             run.diverged_at = s + 1
             return
-        run.theta, run.state = theta, update.state
+        run.theta, run.state, run.kept = theta, update.state, moved
 
     yield 0, total
     for s in range(steps):
@@ -174,9 +188,12 @@ def iter_range_test(
         if run.diverged_at is not None:
             return math.inf, math.inf
         with np.errstate(all="ignore"):
-            train = net.cost(run.theta, X, Y)
-            val = net.cost(run.theta, X_val, Y_val) if X_val is not None and Y_val is not None and X_val.shape[0] \
-                else math.nan
+            # The costs the session would show after the steps: training at the next step's masks,
+            # validation in evaluation (no dropout, the running statistics).
+            train = training(start.step + steps, run.kept).cost(run.theta, X, Y)
+            evaluation = net.at(False, start.step + steps, run.kept) if by_step else net
+            val = evaluation.cost(run.theta, X_val, Y_val) \
+                if X_val is not None and Y_val is not None and X_val.shape[0] else math.nan
         if not math.isfinite(train):
             run.diverged_at = steps
         return (train if math.isfinite(train) else math.inf), (val if math.isfinite(val) or math.isnan(val)

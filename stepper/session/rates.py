@@ -63,7 +63,8 @@ class Rates(SessionCore):
             raise UsageError(f"a range test makes 1 to {MAX_STEPS} steps per rate, not {steps}")
         key = self._range_state()
         start = Start(self.theta.copy(), self.rule_state.copy(), self.frozen.copy(), self.step_count,
-                      self.batch_size, self.batch_rng.bit_generator.state, self.descent, self.epoch_position)
+                      self.batch_size, self.batch_rng.bit_generator.state, self.descent, self.epoch_position,
+                      self.state.copy())
         data = self.setup.data
         result = yield from iter_range_test(self.net, start, data.X, data.Y, data.X_val, data.Y_val, chosen, steps)
         if key == self._range_state():
