@@ -166,3 +166,15 @@ def test_the_range_test_steps_as_the_session_does_with_dropout_and_batch_norm(se
         assert result.train[index] == pytest.approx(twin.train_cost(), rel=1e-12)
         assert result.val is not None
         assert result.val[index] == pytest.approx(twin.val_cost(), rel=1e-12)
+
+
+def test_the_rows_of_each_split_run_as_that_splits_cost_does(setup: Setup) -> None:
+    # The loss is an average over rows (stepper.core.rows), so the mean of the row losses is the data
+    # term of the cost (L2 is 0 here): training rows at the step's dropout masks and batch statistics,
+    # validation rows in evaluation (no dropout, the running statistics), as the two costs run.
+    session = Session(setup, rate=0.05)
+    session.step(3)
+    assert float(np.mean(session.rows().loss)) == pytest.approx(session.train_cost(), rel=1e-12)
+    val = session.val_cost()
+    assert val is not None
+    assert float(np.mean(session.rows(validation=True).loss)) == pytest.approx(val, rel=1e-12)

@@ -65,11 +65,19 @@ class Measures(SessionCore):
         return task_of(self.net)
 
     def rows(self, validation: bool = False) -> RowLosses:
-        """Loss, output and target of every training (or validation) row."""
+        """Loss, output and target of every training (or validation) row.
+
+        The training rows run as the training cost does (the next step's dropout
+        masks, batch statistics), the validation rows as the validation cost
+        (no dropout, batch norm's running statistics), so each split's mean row
+        loss is its cost's data term.
+        """
         data = self.setup.data
         X, Y = (data.X_val, data.Y_val) if validation else (data.X, data.Y)
+        # Each split's rows run as its cost does: training at the step's masks, validation in evaluation.
+        net = self.evaluation_net() if validation else self.training_net()
         result: RowLosses = self._cached("rows-val" if validation else "rows",
-                                         lambda: row_losses(self.training_net(), self.theta, X, Y))
+                                         lambda: row_losses(net, self.theta, X, Y))
         return result
 
     def row_table(self, split: str = "both") -> RowTable:
