@@ -35,7 +35,10 @@ Memory. The stacked arrays of a chunk live in two buffers that are reused from
 chunk to chunk, and activations are applied in place: fresh multi-megabyte
 arrays for every chunk are handed back to the system when freed, and touching
 new pages again costs more than the arithmetic (it doubled the time of a pass
-over a 10-64-64-1 network).
+over a 10-64-64-1 network). The rank-one path runs a chunk's later layers a
+sub-block of copies at a time (about 1 MiB of stack), so its chunks can be
+large (the per-chunk work is shared by more moves) while the stack stays in
+the L2 cache.
 """
 
 from __future__ import annotations
@@ -354,13 +357,18 @@ def _chunk_size(net: Network, layer: int, n_samples: int, through: bool = False)
     """Moves per chunk, so that a chunk's stacked arrays fit in :data:`CHUNK_BYTES`.
 
     ``through``: the moves pass the next layer by :mod:`stepper.core.numeric_dense`'s ``G``.
+    Otherwise the rank-one path runs the later layers a sub-block of the chunk at a time
+    (:data:`stepper.core.numeric_dense.SUB_BYTES`), so only its moved columns ``(k, n)``
+    grow with the chunk.
     """
     this = net.layers[layer]
     rank_one = (isinstance(this, Dense) and this.activation.elementwise and layer + 1 < len(net.layers)
                 and isinstance(net.layers[layer + 1], Dense))
-    # With the rank-one update this layer's full output is never stacked (nor the next one's
-    # when going through it).
-    widest = max(l.n_out for l in net.layers[layer + (2 if through else 1 if rank_one else 0) :])
+    if rank_one and not through:
+        widest = 1  # only the moved columns (k, n); the stack is bounded by SUB_BYTES
+    else:
+        # Through the next layer, neither this layer's output nor the next one's is stacked.
+        widest = max(l.n_out for l in net.layers[layer + (2 if through else 0) :])
     per_item = 8 * n_samples * max(widest, 1) * 4  # two buffers and temporaries per perturbation
     return int(max(1, min(4096, CHUNK_BYTES // per_item)))
 

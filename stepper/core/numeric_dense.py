@@ -4,8 +4,8 @@ Moving weight ``W[i, j]`` of dense layer ``l`` by ``d`` changes only column ``j`
 its pre-activation, by ``d * X[:, i]`` (a bias ``b[j]`` by ``d``), so only unit
 ``j``'s output changes, by ``c = f(Z[:, j] + d X[:, i]) - A[:, j]`` ``(n,)``. The next
 dense layer's pre-activation takes the rank-one change ``c W_next[j, :]``
-``(n, n_next)``, and only the layers after that run in full, for a whole chunk of
-moves stacked on a leading axis ``(k, n, units)``. Each move has its own ``d``, so
+``(n, n_next)``, and only the layers after that run in full, for a chunk of moves
+stacked on a leading axis ``(k, n, units)``, a sub-block of :data:`SUB_BYTES` at a time. Each move has its own ``d``, so
 the two sides of a central difference run in one chunk.
 
 Through a piecewise-linear layer. When that next layer is piecewise linear
@@ -39,6 +39,11 @@ Trace = list[tuple[Array, Any]]
 
 #: Bytes of the temporaries one block of :func:`kink_reach` may take.
 BLOCK_BYTES = 4 * 1024 * 1024
+#: Bytes of the stacked pre-activations of one sub-block of the rank-one path: a chunk's
+#: copies run the later layers this many at a time, so the stack stays in the L2 cache
+#: (2 MiB per core on the machine it was tuned on) while the per-chunk work is shared
+#: by many more copies (tests/benchmarks/bench_numeric.py, 10-64-64-1 tanh).
+SUB_BYTES = 1024 * 1024
 #: Largest ``G`` a pass keeps (per layer), in bytes.
 THROUGH_BYTES = 64 * 1024 * 1024
 #: Activations that are linear on each side of zero (their slopes are read off the function).
@@ -237,10 +242,19 @@ def dense_costs(
     G = work.through.get(layer_index) if through else None
     if G is not None:
         return _through(net, params, trace, block, idx, delta, Y, work, change, units, near, G, kinked)
-    Z = work.array(0, (k, n, next_layer.n_out))
-    np.multiply(change[:, :, None], params[layer_index + 1]["W"][units][:, None, :], out=Z)
-    Z += trace[layer_index + 1][1].Z
-    return _run(net, params, trace, Z, layer_index + 1, 0, Y, work, kinked), kinked
+    W_next = params[layer_index + 1]["W"][units]  # (k, n_next)
+    widest = max(later.n_out for later in net.layers[layer_index + 1 :])
+    sub = max(1, SUB_BYTES // (8 * n * widest))
+    costs = np.empty(k)
+    for lo in range(0, k, sub):
+        part = slice(lo, lo + sub)
+        Z = work.array(0, (W_next[part].shape[0], n, next_layer.n_out))
+        # einsum's outer products: the same products as a broadcast multiply, in less time.
+        np.einsum("ks,kq->ksq", change[part], W_next[part], out=Z)
+        Z += trace[layer_index + 1][1].Z
+        # kinked[part] is a view: _run marks the copies of this sub-block in place.
+        costs[part] = _run(net, params, trace, Z, layer_index + 1, 0, Y, work, kinked[part])
+    return costs, kinked
 
 
 def _through(net: Network, params: list[dict[str, Array]], trace: Trace, block: Any, idx: NDArray[np.int64],
