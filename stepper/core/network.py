@@ -275,8 +275,11 @@ class Network:
 
         The copy shares the layout; only layers that depend on the mode change
         (dropout masks, batch norm's statistics). ``state`` defaults to
-        :meth:`initial_state`.
+        :meth:`initial_state`. A network with no such layer runs the same in
+        every mode: it is returned itself.
         """
+        if not (self.varies_by_step or self.has_state):
+            return self
         mode = Mode(training, step)
         views = self.state_views(self.initial_state() if state is None else state)
         twin = copy.copy(self)

@@ -145,13 +145,7 @@ def iter_range_test(
     total = int(rates.size) * steps
     decay_mask = net.penalized
     kept = net.initial_state() if start.kept is None else start.kept
-    by_step = net.varies_by_step or net.has_state
-
-    def training(step: int, state: Array) -> Network:
-        """The network as a run trains at update ``step``: that step's dropout masks, batch statistics."""
-        return net.at(True, step, state) if by_step else net
-
-    start_cost = training(start.step, kept).cost(start.theta, X, Y)
+    start_cost = net.at(True, start.step, kept).cost(start.theta, X, Y)
     runs = [_Run(start.theta.copy(), start.state.copy(), _generator(start.rng_state), start.position, kept.copy())
             for _ in rates]
     spread = parallel_map if all(isinstance(layer, Dense) for layer in net.layers) else _one_by_one
@@ -166,7 +160,7 @@ def iter_range_test(
             pick, run.position = next_batch(run.rng, X.shape[0], start.batch_size, run.position)
             Xb, Yb = X[pick], Y[pick]
         with np.errstate(all="ignore"):
-            at_step = training(start.step + s, run.kept)
+            at_step = net.at(True, start.step + s, run.kept)
             _, slopes = at_step.cost_and_slopes(run.theta, Xb, Yb)
             update = descent_update(run.state, slopes, run.theta, float(rates[k]), start.step + s,
                                     start.settings, start.frozen, decay_mask)
@@ -190,8 +184,8 @@ def iter_range_test(
         with np.errstate(all="ignore"):
             # The costs the session would show after the steps: training at the next step's masks,
             # validation in evaluation (no dropout, the running statistics).
-            train = training(start.step + steps, run.kept).cost(run.theta, X, Y)
-            evaluation = net.at(False, start.step + steps, run.kept) if by_step else net
+            train = net.at(True, start.step + steps, run.kept).cost(run.theta, X, Y)
+            evaluation = net.at(False, start.step + steps, run.kept)
             val = evaluation.cost(run.theta, X_val, Y_val) \
                 if X_val is not None and Y_val is not None and X_val.shape[0] else math.nan
         if not math.isfinite(train):

@@ -218,14 +218,10 @@ class SessionCore:
         analytic slopes and every numeric slope of one step share them); batch
         norm uses the statistics of the batch it is given.
         """
-        if not (self.net.varies_by_step or self.net.has_state):
-            return self.net
         return self.net.at(True, self.step_count if step is None else step, self.state)
 
     def evaluation_net(self) -> Network:
         """The network as the validation cost runs it: no dropout, batch norm on its running statistics."""
-        if not (self.net.varies_by_step or self.net.has_state):
-            return self.net
         return self.net.at(False, self.step_count, self.state)
 
     def train_cost(self) -> float:

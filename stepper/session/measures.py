@@ -144,8 +144,6 @@ class Measures(SessionCore):
 
     def nets_at(self, step: int, state: NDArray[np.float64]) -> Nets:
         """The network as it trains at update ``step`` and as it is evaluated, with kept arrays ``state``."""
-        if not (self.net.varies_by_step or self.net.has_state):
-            return self.net, self.net
         return self.net.at(True, step, state), self.net.at(False, step, state)
 
     def compare_with(self, path: Path | str, top: int = 10) -> WeightDiff:
