@@ -29,6 +29,7 @@ from stepper.session.runaway import RUN_ON, RunawayRule
 if TYPE_CHECKING:
     from stepper.session import Session
     from stepper.core.network import Network
+    from stepper.formats.checkpoint import CheckpointData
 
 
 
@@ -110,14 +111,24 @@ def resumed_weights(setup: Setup, checkpoint: Path | None, rate: float | None,
         value = data.meta.get("rate")
         if isinstance(value, (int, float)) and math.isfinite(value) and value > 0:
             saved_rate = float(value)
-        if net.varies_by_step or net.has_state:
-            from stepper.formats.saved_state import read_state
-            from stepper.session.core import SLOPE_SOURCES
-
-            saved = read_state(checkpoint, data, net.layout, setup.data.n_train, SLOPE_SOURCES)
-            net = net.at(True, saved.step_count, data.state)
+        net = net.at(True, saved_step(setup, checkpoint, data), data.state)
     chosen = rate if rate is not None else saved_rate if saved_rate is not None else default_rate
     return theta, chosen, net
+
+
+def saved_step(setup: Setup, checkpoint: Path, data: CheckpointData) -> int:
+    """The update count checkpoint ``data`` (read from ``checkpoint``) was saved at, checked against the model.
+
+    Read only where the network's cost depends on it (dropout masks, running
+    statistics); 0 otherwise.
+    """
+    net = setup.network
+    if not (net.varies_by_step or net.has_state):
+        return 0
+    from stepper.formats.saved_state import read_state
+    from stepper.session.core import SLOPE_SOURCES
+
+    return read_state(checkpoint, data, net.layout, setup.data.n_train, SLOPE_SOURCES).step_count
 
 
 def sample_limit(setup: Setup, limit: int | None) -> tuple[np.ndarray[Any, Any], np.ndarray[Any, Any]]:

@@ -6,7 +6,7 @@ import argparse
 import sys
 from pathlib import Path
 
-from stepper.commands.common import load
+from stepper.commands.common import load, saved_step
 from stepper.formats.checkpoint import load_checkpoint
 from stepper.formats.export import export_weights
 
@@ -21,11 +21,7 @@ def handle(args: argparse.Namespace) -> int:
         # the training cost printed is the one at the checkpoint's step (its dropout masks).
         data = load_checkpoint(args.resume, net.layout, net.state_layout)
         theta, state = data.theta, data.state
-        if net.varies_by_step or net.has_state:
-            from stepper.formats.saved_state import read_state
-            from stepper.session.core import SLOPE_SOURCES
-
-            step = read_state(args.resume, data, net.layout, setup.data.n_train, SLOPE_SOURCES).step_count
+        step = saved_step(setup, args.resume, data)
         inputs = (args.resume,)
     done = export_weights(setup, theta, args.to, args.layout, args.dtype, inputs, state=state, step=step)
     what = "ONNX" if done.kind == "onnx" else f"safetensors, {done.layout} layout"
